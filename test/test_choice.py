@@ -1,0 +1,167 @@
+"""Choice models against outside references (sources named beside each check)."""
+
+import numpy as np
+import pytest
+from scipy import optimize, stats
+
+from pref_learner import choice
+
+
+def _sets(rng, n_sets=60, k=6, d=3, true_b=(1.5, -1.0, 0.5)):
+    """Synthetic discrete-choice data drawn from a conditional logit with coefficients b."""
+    b = np.asarray(true_b)
+    feats, chosen = [], []
+    for _ in range(n_sets):
+        x = rng.standard_normal((k, d))
+        u = x @ b
+        p = np.exp(u - u.max())
+        p /= p.sum()
+        feats.append(x)
+        chosen.append(int(rng.choice(k, p=p)))
+    return feats, chosen
+
+
+def test_boltzmann_mle_equals_conditional_logit():
+    # Reference: McFadden (1974) conditional logit, as implemented by statsmodels
+    # ConditionalLogit; the Boltzmann model over a finite set is the same likelihood.
+    from statsmodels.discrete.conditional_models import ConditionalLogit
+    rng = np.random.default_rng(1)
+    feats, chosen = _sets(rng)
+
+    def nll(b):
+        nrm = np.linalg.norm(b)
+        return -sum(choice.boltzmann_loglik(x, c, b / nrm, beta=nrm)[0]
+                    for x, c in zip(feats, chosen))
+
+    ours = optimize.minimize(nll, np.array([0.3, 0.3, 0.3]), method='BFGS',
+                             options={'gtol': 1e-9}).x
+    endog = np.concatenate([np.eye(len(x))[c] for x, c in zip(feats, chosen)])
+    exog = np.concatenate(feats)
+    groups = np.repeat(np.arange(len(feats)), [len(x) for x in feats])
+    ref = ConditionalLogit(endog, exog, groups=groups).fit(disp=False).params
+    np.testing.assert_allclose(ours, ref, atol=1e-3)
+
+
+def test_probabilities_match_choix_luce():
+    # Reference: Luce (1959) choice axiom, choix.probabilities (strengths exp(params)).
+    import choix
+    rng = np.random.default_rng(2)
+    params = rng.normal(size=7)
+    items = [0, 2, 3, 6]
+    ref = choix.probabilities(items, params)
+    x = np.eye(7)[items]  # one-hot features: reward of item i = params[i]
+    nrm = np.linalg.norm(params)
+    ours = choice.choice_probabilities(x, params / nrm, beta=nrm, model='boltzmann')
+    np.testing.assert_allclose(ours, ref, rtol=1e-12)
+
+
+@pytest.mark.parametrize('n_copies', list(range(1, 21)))
+def test_duplicates_lone_option_share(n_copies):
+    # Reference: Debreu (1960) review of Luce, the duplicated-option example (from
+    # memory): Luce/Boltzmann gives the lone option 1/(N+1); a similarity-discounted
+    # model gives 1/2 when the copies are identical and far from the lone option.
+    x = np.vstack([[1.0, 0.0], np.tile([0.0, 1.0], (n_copies, 1))])
+    theta = np.array([1.0, 1.0]) / np.sqrt(2.0)  # equal rewards
+    pb = choice.choice_probabilities(x, theta, 1.0, 'boltzmann')
+    pl = choice.choice_probabilities(x, theta, 1.0, 'less', bandwidth=0.05)
+    assert pb[0] == pytest.approx(1.0 / (n_copies + 1), abs=1e-12)
+    assert pl[0] == pytest.approx(0.5, abs=1e-9)
+
+
+def test_similarity_sum_is_proportional_to_gaussian_kde():
+    # Reference: scipy.stats.gaussian_kde (Scott 1992 / Silverman 1986 rules); with the
+    # full-covariance metric our similarity sum is the KDE at the set's points up to a
+    # constant factor.
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal((80, 3)) @ np.array([[1, 0.3, 0], [0, 2, 0.5], [0, 0, 0.7]])
+    for rule in ('scott', 'silverman'):
+        kde = stats.gaussian_kde(x.T, bw_method=rule)
+        assert choice.resolve_bandwidth(rule, 80, 3) == pytest.approx(kde.factor, rel=1e-12)
+        ours = np.exp(choice.log_similarity_sums(x, rule, metric='full'))
+        ratio = ours / kde(x.T)
+        np.testing.assert_allclose(ratio, ratio[0], rtol=1e-10)
+
+
+def test_similarity_sum_diagonal_metric_matches_normal_mixture():
+    # Reference: sum of scipy.stats.multivariate_normal densities with a diagonal
+    # covariance h^2 diag(s^2) (a product-kernel KDE), proportional to ours.
+    rng = np.random.default_rng(4)
+    x = rng.standard_normal((40, 2)) * [1.0, 5.0]
+    h = 0.4
+    sd = x.std(axis=0, ddof=1)
+    cov = np.diag((h * sd) ** 2)
+    ref = np.array([stats.multivariate_normal(xi, cov).pdf(x).sum() for xi in x])
+    ours = np.exp(choice.log_similarity_sums(x, h))
+    ratio = ours / ref
+    np.testing.assert_allclose(ratio, ratio[0], rtol=1e-10)
+    assert np.all(ours >= 1.0)  # s(x, x) = 1
+
+
+def test_less_equals_boltzmann_when_options_are_far_apart():
+    # Worked example (from the definitions): if no two options are similar, every
+    # S_i = 1 and the two models coincide.
+    x = np.array([[0.0, 0.0], [10.0, 0.0], [0.0, 10.0], [10.0, 10.0]])
+    th = np.array([[0.6, 0.8], [-1.0, 0.0]])
+    a = choice.boltzmann_loglik(x, 2, th, 0.3)
+    b = choice.less_loglik(x, 2, th, 0.3, bandwidth=0.01)
+    np.testing.assert_allclose(a, b, atol=1e-12)
+
+
+def test_large_set_chunked_similarity_matches_direct():
+    rng = np.random.default_rng(5)
+    x = rng.standard_normal((3000, 6))
+    ours = choice.log_similarity_sums(x, 0.5)
+    z = choice.standardise(x)
+    idx = rng.choice(3000, 5, replace=False)
+    for i in idx:
+        direct = np.log(np.exp(-np.sum((z - z[i]) ** 2, axis=1) / (2 * 0.25)).sum())
+        assert ours[i] == pytest.approx(direct, rel=1e-12)
+
+
+def test_loglik_vectorised_and_normalised():
+    rng = np.random.default_rng(6)
+    x = rng.standard_normal((30, 4))
+    th = rng.standard_normal((50, 4))
+    th /= np.linalg.norm(th, axis=1, keepdims=True)
+    for name, fn in choice.MODELS.items():
+        total = np.logaddexp.reduce([fn(x, j, th, 2.0) for j in range(30)], axis=0)
+        np.testing.assert_allclose(total, 0.0, atol=1e-10, err_msg=name)
+        beta = rng.uniform(0.5, 3, 50)
+        ll = fn(x, 3, th, beta)
+        single = np.array([fn(x, 3, th[i], beta[i])[0] for i in range(50)])
+        np.testing.assert_allclose(ll, single, rtol=1e-12)
+
+
+def test_single_option_set_has_probability_one():
+    x = np.array([[0.3, -0.2]])
+    for fn in choice.MODELS.values():
+        np.testing.assert_allclose(fn(x, 0, np.array([[1.0, 0.0]]), 1.0), 0.0, atol=1e-15)
+
+
+@pytest.mark.parametrize('kwargs, word', [
+    (dict(features=np.array([[np.nan, 1.0], [0, 0]])), 'non-finite'),
+    (dict(features=np.array([[np.inf, 1.0], [0, 0]])), 'non-finite'),
+    (dict(features=np.zeros((0, 2))), 'empty'),
+    (dict(chosen=5), 'out of range'),
+    (dict(chosen=-1), 'out of range'),
+    (dict(theta=np.ones((3, 3))), 'columns'),
+    (dict(beta=0.0), 'beta'),
+    (dict(beta=-2.0), 'beta'),
+    (dict(theta=np.zeros((0, 2))), 'theta'),
+])
+def test_bad_input_names_the_argument(kwargs, word):
+    args = dict(features=np.array([[1.0, 0.0], [0.0, 1.0]]), chosen=0,
+                theta=np.array([[1.0, 0.0]]), beta=1.0)
+    args.update(kwargs)
+    for fn in choice.MODELS.values():
+        with pytest.raises(ValueError, match=word):
+            fn(args['features'], args['chosen'], args['theta'], args['beta'])
+
+
+def test_bad_bandwidth():
+    x = np.eye(3)
+    for bad in (0.0, -1.0, float('nan'), 'wide'):
+        with pytest.raises(ValueError, match='bandwidth'):
+            choice.log_similarity_sums(x, bad)
+    with pytest.raises(ValueError, match='model'):
+        choice.get_model('softmax')
