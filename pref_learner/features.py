@@ -1,0 +1,459 @@
+"""Task features of trajectories, from forward kinematics.
+
+A trajectory is ``q : (T, n)``; a batch is ``(M, T, n)``. A feature set maps a
+batch to ``(M, d)``, one column per feature, in the order of the YAML list (the
+order of every published weight vector). Kinematics run once per batch for all
+frames the set reads.
+
+Feature YAML (our format)::
+
+    features:
+      - name: tube_height            # unique, [a-z][a-z0-9_]*
+        type: height                 # see TYPES below, or "package.module:function"
+        frame: tool_tip              # frame (link) of the URDF
+        aggregate: mean              # mean | min | max | integral   (waypoint types)
+        params: {point: [0, 0, 0], normal: [0, 0, 1]}
+    scales: [0.1, ...]               # optional fixed scale per feature (else calibrated)
+
+Waypoint types give one value per waypoint, then the aggregate reduces them:
+``mean`` over waypoints, ``min``/``max``, or ``integral`` along the frame's path
+(trapezoid rule in arc length, metres x value).
+
+=================  ====================================================  ==========
+type               value                                                 params
+=================  ====================================================  ==========
+height             signed distance of the frame above a plane (m)        point, normal
+point_distance     distance to a point (m); ``horizontal`` ignores z     point, horizontal
+capsule_distance   distance to a capsule surface (m), < 0 inside it      a, b, radius
+tilt               sin^2 of the angle of a frame axis from vertical      axis (x|y|z)
+in_box             1 inside an axis-aligned box, 0 outside (smoothed)    min, max, softness
+=================  ====================================================  ==========
+
+Trajectory types (no aggregate), time normalised to [0, 1]:
+
+``path_length`` Cartesian length of the frame's path (m);
+``effort`` integral of the squared joint speeds, ``sum |dq/ds|^2 ds``;
+``jerk`` integral of the squared third derivative of the joint path.
+
+A user type is ``type: "my_pkg.my_module:my_feature"`` naming a callable
+``f(q, positions, rotations, params) -> (M,)`` with ``q (M, T, n)``,
+``positions (M, T, 3)`` and ``rotations (M, T, 3, 3)`` of the feature's frame.
+
+Scaling: the reward uses features divided by one fixed positive scale per
+feature for the whole session (given, or calibrated once from smooth
+trajectories over the scenario's tasks and stored with the state), never
+re-standardised per choice set.
+"""
+
+from __future__ import annotations
+
+import importlib
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Dict, List, Optional, Sequence, Tuple
+
+import numpy as np
+import yaml
+from scipy.special import expit
+
+from .robot import RobotModel
+
+WAYPOINT_TYPES = ('height', 'point_distance', 'capsule_distance', 'tilt', 'in_box')
+TRAJECTORY_TYPES = ('path_length', 'effort', 'jerk')
+AGGREGATES = ('mean', 'min', 'max', 'integral')
+_PARAMS = {
+    'height': {'point': [0.0, 0.0, 0.0], 'normal': [0.0, 0.0, 1.0]},
+    'point_distance': {'point': None, 'horizontal': False},
+    'capsule_distance': {'a': None, 'b': None, 'radius': None},
+    'tilt': {'axis': 'z'},
+    'in_box': {'min': None, 'max': None, 'softness': 0.005},
+    'path_length': {}, 'effort': {}, 'jerk': {},
+}
+_SPEC_KEYS = ('name', 'type', 'frame', 'aggregate', 'params')
+_NAME_RE = re.compile(r'^[a-z][a-z0-9_]*$')
+
+
+class FeatureConfigError(ValueError):
+    """A feature YAML that cannot be used; the message names file, key and allowed values."""
+
+
+@dataclass(frozen=True)
+class FeatureSpec:
+    name: str
+    type: str
+    frame: Optional[str]
+    aggregate: Optional[str]
+    params: Dict[str, object] = field(default_factory=dict)
+    func: Optional[Callable] = None
+
+
+def _vec3(v, where, key):
+    try:
+        a = np.asarray(v, dtype=np.float64) if v is not None else None
+    except (TypeError, ValueError):
+        a = None
+    if a is None or a.shape != (3,) or not np.all(np.isfinite(a)):
+        raise FeatureConfigError(f'{where}: params.{key} must be a list of 3 numbers, got {v!r}')
+    return a
+
+
+def _parse_spec(raw, i: int, source: str, robot: RobotModel) -> FeatureSpec:
+    where = f'{source}: features[{i}]'
+    if not isinstance(raw, dict):
+        raise FeatureConfigError(f'{where} must be a mapping with keys {list(_SPEC_KEYS)}')
+    unknown = sorted(set(raw) - set(_SPEC_KEYS))
+    if unknown:
+        raise FeatureConfigError(f'{where}: unknown key(s) {unknown}; allowed: {list(_SPEC_KEYS)}')
+    name = raw.get('name')
+    if not isinstance(name, str) or not _NAME_RE.match(name):
+        raise FeatureConfigError(f'{where}: name must match [a-z][a-z0-9_]*, got {name!r}')
+    where = f'{source}: feature {name!r}'
+    ftype = raw.get('type')
+    if not isinstance(ftype, str):
+        raise FeatureConfigError(f'{where}: type is required; allowed: '
+                                 f'{list(WAYPOINT_TYPES + TRAJECTORY_TYPES)} or "module:function"')
+    params = raw.get('params') or {}
+    if not isinstance(params, dict):
+        raise FeatureConfigError(f'{where}: params must be a mapping, got {params!r}')
+    func = None
+    if ':' in ftype:
+        mod, _, attr = ftype.partition(':')
+        try:
+            func = getattr(importlib.import_module(mod), attr)
+        except (ImportError, AttributeError) as exc:
+            raise FeatureConfigError(f'{where}: type {ftype!r} cannot be imported: {exc}') from None
+        if not callable(func):
+            raise FeatureConfigError(f'{where}: type {ftype!r} is not callable')
+    elif ftype not in _PARAMS:
+        raise FeatureConfigError(f'{where}: type {ftype!r} is unknown; allowed: '
+                                 f'{list(WAYPOINT_TYPES + TRAJECTORY_TYPES)} or "module:function"')
+    else:
+        allowed = _PARAMS[ftype]
+        extra = sorted(set(params) - set(allowed))
+        if extra:
+            raise FeatureConfigError(f'{where}: unknown params {extra}; allowed for {ftype}: '
+                                     f'{sorted(allowed)}')
+        merged = dict(allowed)
+        merged.update(params)
+        params = merged
+        _check_params(ftype, params, where)
+    frame = raw.get('frame', robot.tool_frame)
+    if ftype not in ('effort', 'jerk'):
+        if not isinstance(frame, str) or not robot.model.existFrame(frame):
+            raise FeatureConfigError(
+                f'{where}: frame {frame!r} is not a frame of {robot.source}; frames: '
+                f'{sorted(set(robot.frame_names) - {"universe"})}')
+    agg = raw.get('aggregate')
+    if ftype in WAYPOINT_TYPES:
+        agg = agg or 'mean'
+        if agg not in AGGREGATES:
+            raise FeatureConfigError(f'{where}: aggregate {agg!r} is unknown; allowed: '
+                                     f'{list(AGGREGATES)}')
+    elif agg is not None and func is None:
+        raise FeatureConfigError(f'{where}: type {ftype} takes no aggregate')
+    return FeatureSpec(name, ftype, frame, agg, params, func)
+
+
+def _check_params(ftype, p, where):
+    if ftype == 'height':
+        p['point'] = _vec3(p['point'], where, 'point')
+        n = _vec3(p['normal'], where, 'normal')
+        if np.linalg.norm(n) == 0:
+            raise FeatureConfigError(f'{where}: params.normal must be non-zero')
+        p['normal'] = n / np.linalg.norm(n)
+    elif ftype == 'point_distance':
+        p['point'] = _vec3(p['point'], where, 'point')
+        if not isinstance(p['horizontal'], bool):
+            raise FeatureConfigError(f'{where}: params.horizontal must be true or false')
+    elif ftype == 'capsule_distance':
+        p['a'] = _vec3(p['a'], where, 'a')
+        p['b'] = _vec3(p['b'], where, 'b')
+        r = p['radius']
+        if isinstance(r, bool) or not isinstance(r, (int, float)) or not r >= 0:
+            raise FeatureConfigError(f'{where}: params.radius must be a number >= 0, got {r!r}')
+        p['radius'] = float(r)
+    elif ftype == 'tilt':
+        if p['axis'] not in ('x', 'y', 'z'):
+            raise FeatureConfigError(f'{where}: params.axis must be x, y or z, got {p["axis"]!r}')
+    elif ftype == 'in_box':
+        lo = _vec3(p['min'], where, 'min')
+        hi = _vec3(p['max'], where, 'max')
+        if np.any(hi <= lo):
+            raise FeatureConfigError(f'{where}: params.max must exceed params.min on every axis')
+        s = p['softness']
+        if not isinstance(s, (int, float)) or not s > 0:
+            raise FeatureConfigError(f'{where}: params.softness must be > 0, got {s!r}')
+        p['min'], p['max'], p['softness'] = lo, hi, float(s)
+
+
+# ---------------------------------------------------------------- waypoint values
+def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
+    """Values g (..., T) and gradients dg/dpos (..., T, 3), dg/daxis (..., T, 3) or None."""
+    p = spec.params
+    t = spec.type
+    if t == 'height':
+        g = (pos - p['point']) @ p['normal']
+        return g, np.broadcast_to(p['normal'], pos.shape), None
+    if t == 'point_distance':
+        d = pos - p['point']
+        if p['horizontal']:
+            d = d * np.array([1.0, 1.0, 0.0])
+        g = np.linalg.norm(d, axis=-1)
+        return g, d / np.maximum(g, 1e-12)[..., None], None
+    if t == 'capsule_distance':
+        a, b = p['a'], p['b']
+        ab = b - a
+        L2 = float(ab @ ab)
+        s = np.clip(((pos - a) @ ab) / L2, 0.0, 1.0) if L2 > 0 else np.zeros(pos.shape[:-1])
+        d = pos - (a + s[..., None] * ab)
+        r = np.linalg.norm(d, axis=-1)
+        return r - p['radius'], d / np.maximum(r, 1e-12)[..., None], None
+    if t == 'tilt':
+        k = 'xyz'.index(p['axis'])
+        axis = rot[..., :, k]
+        g = 1.0 - axis[..., 2] ** 2
+        ga = np.zeros(axis.shape)
+        ga[..., 2] = -2.0 * axis[..., 2]
+        return g, None, ga
+    if t == 'in_box':
+        s = p['softness']
+        lo = expit((pos - p['min']) / s)
+        hi = expit((p['max'] - pos) / s)
+        f = lo * hi
+        g = np.prod(f, axis=-1)
+        # d f_i / d x_i = f_i * ((1 - lo_i) - (1 - hi_i)) / s
+        dlog = ((1.0 - lo) - (1.0 - hi)) / s
+        return g, g[..., None] * dlog, None
+    raise AssertionError(t)
+
+
+def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray):
+    """Aggregate g (..., T) -> (...,) and weights dA/dg (..., T); for integral also the
+    derivative with respect to positions (..., T, 3)."""
+    T = g.shape[-1]
+    if agg == 'mean':
+        return g.mean(axis=-1), np.full(g.shape, 1.0 / T), None
+    if agg in ('min', 'max'):
+        idx = np.argmin(g, axis=-1) if agg == 'min' else np.argmax(g, axis=-1)
+        val = np.take_along_axis(g, idx[..., None], axis=-1)[..., 0]
+        w = np.zeros(g.shape)
+        np.put_along_axis(w, idx[..., None], 1.0, axis=-1)
+        return val, w, None
+    if agg == 'integral':
+        seg = np.diff(pos, axis=-2)                         # (..., T-1, 3)
+        ln = np.linalg.norm(seg, axis=-1)                   # (..., T-1)
+        mid = 0.5 * (g[..., 1:] + g[..., :-1])
+        val = np.sum(mid * ln, axis=-1)
+        w = np.zeros(g.shape)
+        w[..., 1:] += 0.5 * ln
+        w[..., :-1] += 0.5 * ln
+        u = seg / np.maximum(ln, 1e-12)[..., None]
+        dpos = np.zeros(pos.shape)
+        dpos[..., 1:, :] += mid[..., None] * u
+        dpos[..., :-1, :] -= mid[..., None] * u
+        return val, w, dpos
+    raise AssertionError(agg)
+
+
+def _diff_matrix(T: int, order: int) -> np.ndarray:
+    D = np.eye(T)
+    for _ in range(order):
+        D = np.diff(D, axis=0)
+    return D
+
+
+class FeatureSet:
+    """An ordered set of features evaluated over batches of trajectories.
+
+    names : tuple of str -- column order of every feature matrix and weight vector.
+    scales : (d,) positive scale per feature; :meth:`__call__` returns raw / scales.
+    """
+
+    def __init__(self, robot: RobotModel, specs: Sequence[FeatureSpec],
+                 scales: Optional[Sequence[float]] = None, source: str = '<features>'):
+        if not specs:
+            raise FeatureConfigError(f'{source}: the feature list is empty')
+        names = [s.name for s in specs]
+        dup = sorted({n for n in names if names.count(n) > 1})
+        if dup:
+            raise FeatureConfigError(f'{source}: duplicate feature names {dup}')
+        self.robot = robot
+        self.specs = tuple(specs)
+        self.names = tuple(names)
+        self.source = source
+        self.frames = tuple(dict.fromkeys(s.frame for s in specs
+                                          if s.type not in ('effort', 'jerk')))
+        self.scales = None
+        if scales is not None:
+            self.scales = self._check_scales(scales)
+
+    @property
+    def d(self) -> int:
+        return len(self.specs)
+
+    def _check_scales(self, scales) -> np.ndarray:
+        s = np.asarray(scales, dtype=np.float64)
+        if s.shape != (self.d,) or not np.all(np.isfinite(s)) or np.any(s <= 0):
+            raise FeatureConfigError(f'{self.source}: scales must be {self.d} positive numbers '
+                                     f'(one per feature {list(self.names)}), got {scales!r}')
+        return s
+
+    def with_scales(self, scales) -> 'FeatureSet':
+        return FeatureSet(self.robot, self.specs, scales, self.source)
+
+    # ------------------------------------------------------------ construction
+    @classmethod
+    def from_yaml(cls, path_or_dict, robot: RobotModel) -> 'FeatureSet':
+        if isinstance(path_or_dict, dict):
+            doc, source = path_or_dict, '<features>'
+        else:
+            source = str(path_or_dict)
+            try:
+                doc = yaml.safe_load(Path(path_or_dict).read_text())
+            except OSError as exc:
+                raise FeatureConfigError(f'feature file {source} cannot be read: '
+                                         f'{exc.strerror}') from None
+            except yaml.YAMLError as exc:
+                raise FeatureConfigError(f'feature file {source} is not valid YAML: {exc}') \
+                    from None
+        if not isinstance(doc, dict):
+            raise FeatureConfigError(f'{source}: top level must be a mapping with key features')
+        extra = sorted(set(doc) - {'features', 'scales', 'scenario'})
+        if extra:
+            raise FeatureConfigError(f'{source}: unknown key(s) {extra}; allowed: '
+                                     "['features', 'scales', 'scenario']")
+        raw = doc.get('features')
+        if not isinstance(raw, list) or not raw:
+            raise FeatureConfigError(f'{source}: features must be a non-empty list')
+        specs = [_parse_spec(r, i, source, robot) for i, r in enumerate(raw)]
+        return cls(robot, specs, doc.get('scales'), source)
+
+    # ------------------------------------------------------------ evaluation
+    def raw(self, q: np.ndarray) -> np.ndarray:
+        """Unscaled features of trajectories ``q : (M, T, n)`` or ``(T, n)`` -> (M, d) / (d,)."""
+        q = np.asarray(q, dtype=np.float64)
+        single = q.ndim == 2
+        if single:
+            q = q[None]
+        if q.ndim != 3 or q.shape[1] < 2:
+            raise ValueError(f'trajectories must be (M, T, n) with T >= 2, got {q.shape}')
+        poses = self.robot.frame_poses(q, self.frames) if self.frames else None
+        out = np.empty((q.shape[0], self.d))
+        T = q.shape[1]
+        for j, s in enumerate(self.specs):
+            if s.type in ('effort', 'jerk'):
+                order = 1 if s.type == 'effort' else 3
+                if T <= order:
+                    raise ValueError(f'feature {s.name}: needs T > {order} waypoints')
+                h = 1.0 / (T - 1)
+                dq = np.diff(q, n=order, axis=1) / h ** order
+                out[:, j] = np.sum(dq * dq, axis=(1, 2)) * h
+                continue
+            k = poses.index(s.frame)
+            pos = poses.positions[:, :, k]
+            rot = poses.rotations[:, :, k]
+            if s.func is not None:
+                v = np.asarray(s.func(q, pos, rot, s.params), dtype=np.float64)
+                if v.shape != (q.shape[0],):
+                    raise ValueError(f'feature {s.name}: user function returned shape {v.shape}, '
+                                     f'expected ({q.shape[0]},)')
+                out[:, j] = v
+            elif s.type == 'path_length':
+                out[:, j] = np.linalg.norm(np.diff(pos, axis=1), axis=-1).sum(axis=1)
+            else:
+                g, _, _ = _waypoint_value(s, pos, rot)
+                out[:, j] = _aggregate(s.aggregate, g, pos)[0]
+        if not np.all(np.isfinite(out)):
+            raise ValueError('features are not finite for some trajectories')
+        return out[0] if single else out
+
+    def __call__(self, q: np.ndarray) -> np.ndarray:
+        """Scaled features (raw / scales)."""
+        if self.scales is None:
+            raise ValueError('the feature set has no scales yet; calibrate or give scales')
+        return self.raw(q) / self.scales
+
+    # ------------------------------------------------------------ gradients
+    def gradient(self, q: np.ndarray) -> np.ndarray:
+        """Gradient of every raw feature for one trajectory ``q : (T, n)`` -> (d, T, n).
+
+        Analytic: waypoint values through the frame Jacobians, chained
+        through each aggregate. Min and max use the subgradient at the
+        extreme waypoint.
+        """
+        q = np.asarray(q, dtype=np.float64)
+        T, n = q.shape
+        grads = np.zeros((self.d, T, n))
+        poses, (jp, jr) = self.robot.frame_poses(q, self.frames, with_jacobian=True) \
+            if self.frames else (None, (None, None))
+        for j, s in enumerate(self.specs):
+            if s.func is not None:
+                gfun = getattr(s.func, 'gradient', None)
+                if gfun is None:
+                    raise ValueError(f'feature {s.name}: user type has no .gradient; the '
+                                     'planner needs one')
+                grads[j] = gfun(q, s.params)
+                continue
+            if s.type in ('effort', 'jerk'):
+                order = 1 if s.type == 'effort' else 3
+                h = 1.0 / (T - 1)
+                D = _diff_matrix(T, order) / h ** order
+                grads[j] = 2.0 * h * (D.T @ (D @ q))
+                continue
+            k = poses.index(s.frame)
+            pos, rot = poses.positions[:, k], poses.rotations[:, k]
+            Jp, Jr = jp[:, k], jr[:, k]                       # (T, 3, n)
+            if s.type == 'path_length':
+                seg = np.diff(pos, axis=0)
+                u = seg / np.maximum(np.linalg.norm(seg, axis=-1), 1e-12)[:, None]
+                dpos = np.zeros((T, 3))
+                dpos[1:] += u
+                dpos[:-1] -= u
+                grads[j] = np.einsum('ti,tin->tn', dpos, Jp)
+                continue
+            g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot)
+            _, w, dpos_agg = _aggregate(s.aggregate, g, pos)
+            total = np.zeros((T, n))
+            if dg_dpos is not None:
+                total += w[:, None] * np.einsum('ti,tin->tn', dg_dpos, Jp)
+            if dg_daxis is not None:
+                kx = 'xyz'.index(s.params['axis'])
+                axis = rot[:, :, kx]
+                # d axis / d q_j = omega_j x axis
+                dax = np.cross(np.moveaxis(Jr, 2, 1), axis[:, None, :])  # (T, n, 3)
+                total += w[:, None] * np.einsum('ti,tni->tn', dg_daxis, dax)
+            if dpos_agg is not None:
+                total += np.einsum('ti,tin->tn', dpos_agg, Jp)
+            grads[j] = total
+        return grads
+
+    def describe(self) -> List[dict]:
+        out = []
+        for s in self.specs:
+            params = {k: (v.tolist() if isinstance(v, np.ndarray) else v)
+                      for k, v in s.params.items()}
+            out.append({'name': s.name, 'type': s.type, 'frame': s.frame,
+                        'aggregate': s.aggregate, 'params': params})
+        return out
+
+
+def default_features_path() -> Path:
+    from .robot import data_path
+    return data_path('bench_scenario.yaml')
+
+
+def load_scenario(path=None) -> dict:
+    """The ``scenario`` block of a feature YAML (tasks: start/goal pairs)."""
+    path = Path(path) if path else default_features_path()
+    doc = yaml.safe_load(path.read_text())
+    sc = doc.get('scenario') or {}
+    tasks = sc.get('tasks') or []
+    out = []
+    for i, t in enumerate(tasks):
+        try:
+            out.append((t['name'], np.asarray(t['start'], float), np.asarray(t['goal'], float)))
+        except (KeyError, TypeError):
+            raise FeatureConfigError(f'{path}: scenario.tasks[{i}] needs name, start and goal') \
+                from None
+    return {'tasks': out, 'duration': float(sc.get('duration', 3.0))}

@@ -1,0 +1,359 @@
+"""Robot model: URDF -> pinocchio model -> batched forward kinematics of named frames.
+
+Pinocchio parses the URDF and is the reference for kinematics. The actuated
+chain is a selection of its joints, in a given order; every other joint
+(gripper fingers, a second arm) is locked at its neutral position through
+``pinocchio.buildReducedModel``. Configurations ``q : (..., n)`` hold one
+value per chain joint, in chain order: radians for revolute and continuous
+joints (pinocchio stores a continuous joint as (cos, sin); the conversion
+happens only at the pinocchio boundary, :meth:`RobotModel.to_pinocchio`),
+metres for prismatic ones.
+
+Batched kinematics over thousands of configurations
+(:meth:`RobotModel.frame_poses`) runs the same joint recursion as pinocchio,
+vectorised in numpy over the leading axes, with the joint placements read
+from the pinocchio model; the test suite checks it against pinocchio itself
+and against an independent URDF implementation (yourdfpy).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Dict, Optional, Sequence, Tuple
+
+import numpy as np
+
+DEFAULT_URDF = 'bench_arm7.urdf'
+DEFAULT_TOOL_FRAME = 'tool_tip'
+
+
+def data_path(name: str) -> Path:
+    """Path of a file shipped in ``pref_learner/data`` (pip or colcon install)."""
+    return Path(str(resources.files('pref_learner') / 'data' / name))
+
+
+def default_urdf_path() -> Path:
+    return data_path(DEFAULT_URDF)
+
+
+_AXES = {'X': np.array([1.0, 0, 0]), 'Y': np.array([0, 1.0, 0]), 'Z': np.array([0, 0, 1.0])}
+
+
+def _joint_kind(jmodel) -> Tuple[str, np.ndarray]:
+    """('revolute' | 'continuous' | 'prismatic', unit axis) of a 1-DoF pinocchio joint."""
+    name = jmodel.shortname()
+    short = name.replace('JointModel', '')
+    if short in ('RX', 'RY', 'RZ'):
+        return 'revolute', _AXES[short[1]]
+    if short in ('RUBX', 'RUBY', 'RUBZ'):
+        return 'continuous', _AXES[short[3]]
+    if short in ('PX', 'PY', 'PZ'):
+        return 'prismatic', _AXES[short[1]]
+    if short == 'RevoluteUnaligned':
+        return 'revolute', np.asarray(jmodel.extract().axis, dtype=np.float64)
+    if short == 'RevoluteUnboundedUnaligned':
+        return 'continuous', np.asarray(jmodel.extract().axis, dtype=np.float64)
+    if short == 'PrismaticUnaligned':
+        return 'prismatic', np.asarray(jmodel.extract().axis, dtype=np.float64)
+    raise ValueError(f'joint type {name} is not supported in a chain; supported: revolute, '
+                     'continuous and prismatic joints')
+
+
+def _rotate(r: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """``r @ v`` for a batch of rotations ``r (b, 3, 3)`` and one vector ``v (3,)``."""
+    nz = np.flatnonzero(v)
+    if nz.size == 0:
+        return np.zeros(r.shape[:-1])
+    out = r[:, :, nz[0]] * v[nz[0]]
+    for i in nz[1:]:
+        out = out + r[:, :, i] * v[i]
+    return out
+
+
+def _skew(a: np.ndarray) -> np.ndarray:
+    return np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
+
+
+@dataclass(frozen=True)
+class FramePoses:
+    """Batched poses of named frames.
+
+    positions : (..., F, 3) origin of each frame in the root frame (metres).
+    rotations : (..., F, 3, 3) orientation of each frame (columns = frame axes).
+    """
+
+    names: Tuple[str, ...]
+    positions: np.ndarray
+    rotations: np.ndarray
+
+    def index(self, name: str) -> int:
+        return self.names.index(name)
+
+
+class RobotModel:
+    """A URDF's actuated chain, its limits and batched kinematics.
+
+    Parameters
+    ----------
+    urdf : str or Path
+        A URDF file path, or the URDF text itself (as published on
+        ``robot_description``).
+    joint_names : sequence of str, optional
+        The chain joints, in the order configurations use. Default: the
+        movable joints from the root to ``tool_frame``.
+    tool_frame : str
+        Frame (link) read by default by the features.
+    clamp : bool
+        Clamp configurations outside the limits instead of refusing them.
+    """
+
+    def __init__(self, urdf, joint_names: Optional[Sequence[str]] = None,
+                 tool_frame: str = DEFAULT_TOOL_FRAME, clamp: bool = False):
+        import pinocchio as pin
+        self._pin = pin
+        text, source = self._read(urdf)
+        try:
+            full = pin.buildModelFromXML(text)
+        except Exception as exc:  # pinocchio raises several types
+            raise ValueError(f'URDF {source} does not parse: {exc}') from None
+        self.source = source
+        self.urdf_text = text
+        self.clamp = bool(clamp)
+        if not full.existFrame(tool_frame):
+            raise ValueError(f'URDF {source}: tool frame {tool_frame!r} not found; frames: '
+                             f'{sorted(f.name for f in full.frames if f.name != "universe")}')
+        self.tool_frame = tool_frame
+        movable = [n for n in list(full.names)[1:]]
+        if joint_names is None:
+            fid = full.getFrameId(tool_frame)
+            jid = full.frames[fid].parentJoint
+            chain = []
+            while jid > 0:
+                chain.append(full.names[jid])
+                jid = full.parents[jid]
+            joint_names = list(reversed(chain))
+            if not joint_names:
+                raise ValueError(f'URDF {source}: no movable joint between the root and '
+                                 f'{tool_frame!r}')
+        joint_names = list(joint_names)
+        if len(set(joint_names)) != len(joint_names):
+            raise ValueError(f'joint_names has duplicates: {joint_names}')
+        unknown = [j for j in joint_names if j not in movable]
+        if unknown:
+            raise ValueError(f'URDF {source}: joints {unknown} are not movable joints of the '
+                             f'model; movable joints: {movable}')
+        lock = [full.getJointId(n) for n in movable if n not in joint_names]
+        q0 = pin.neutral(full)
+        self.model = pin.buildReducedModel(full, lock, q0) if lock else full
+        self.data = self.model.createData()
+        self.joint_names = tuple(joint_names)
+        self.n = len(joint_names)
+        # chain order -> pinocchio joint ids (pinocchio orders topologically)
+        self._jid = [self.model.getJointId(n) for n in joint_names]
+        kinds, axes = {}, {}
+        for jid in range(1, self.model.njoints):
+            kinds[jid], axes[jid] = _joint_kind(self.model.joints[jid])
+        self._kinds, self._axes = kinds, axes
+        self.joint_types = tuple(kinds[j] for j in self._jid)
+        lo = np.empty(self.n)
+        hi = np.empty(self.n)
+        for i, jid in enumerate(self._jid):
+            iq = self.model.joints[jid].idx_q
+            if kinds[jid] == 'continuous':
+                lo[i], hi[i] = -np.inf, np.inf
+            else:
+                lo[i] = self.model.lowerPositionLimit[iq]
+                hi[i] = self.model.upperPositionLimit[iq]
+        self.lower, self.upper = lo, hi
+        self.velocity_limit = np.array([self.model.velocityLimit[self.model.joints[j].idx_v]
+                                        for j in self._jid])
+        # position in our q vector of each pinocchio joint
+        self._q_of_jid = {jid: i for i, jid in enumerate(self._jid)}
+        self._placements = {j: (np.array(self.model.jointPlacements[j].rotation),
+                                np.array(self.model.jointPlacements[j].translation))
+                            for j in range(1, self.model.njoints)}
+        self._identity = {j: bool(np.array_equal(r, np.eye(3)))
+                          for j, (r, _) in self._placements.items()}
+
+    @staticmethod
+    def _read(urdf) -> Tuple[str, str]:
+        if isinstance(urdf, Path) or (isinstance(urdf, str) and '<robot' not in urdf):
+            p = Path(urdf)
+            try:
+                return p.read_text(), str(p)
+            except OSError as exc:
+                raise ValueError(f'URDF file {p} cannot be read: {exc.strerror}') from None
+        if not isinstance(urdf, str):
+            raise ValueError(f'urdf must be a path or URDF text, got {type(urdf).__name__}')
+        return urdf, '<robot_description string>'
+
+    @classmethod
+    def default(cls, **kwargs) -> 'RobotModel':
+        """The shipped 7-DoF bench arm."""
+        return cls(default_urdf_path(), **kwargs)
+
+    # ------------------------------------------------------------ configurations
+    @property
+    def frame_names(self) -> Tuple[str, ...]:
+        return tuple(f.name for f in self.model.frames)
+
+    def check_configurations(self, q: np.ndarray, name: str = 'q') -> np.ndarray:
+        """Validate ``q : (..., n)``; outside the limits is an error unless ``clamp``."""
+        q = np.asarray(q, dtype=np.float64)
+        if q.shape[-1:] != (self.n,):
+            raise ValueError(f'{name} has {q.shape[-1] if q.ndim else 0} joint values per '
+                             f'configuration; the chain {list(self.joint_names)} has {self.n}')
+        if not np.all(np.isfinite(q)):
+            raise ValueError(f'{name} contains non-finite joint values')
+        tol = 1e-9
+        bad = (q < self.lower - tol) | (q > self.upper + tol)
+        if np.any(bad):
+            if self.clamp:
+                return np.clip(q, self.lower, self.upper)
+            j = int(np.argwhere(bad)[0][-1])
+            v = q[..., j][bad[..., j]].ravel()[0]
+            raise ValueError(f'{name}: joint {self.joint_names[j]} = {v:.6g} is outside its '
+                             f'limits [{self.lower[j]:.6g}, {self.upper[j]:.6g}]')
+        return q
+
+    def to_pinocchio(self, q: np.ndarray) -> np.ndarray:
+        """One chain configuration ``(n,)`` -> pinocchio ``q`` ``(nq,)``."""
+        out = self._pin.neutral(self.model)
+        for i, jid in enumerate(self._jid):
+            iq = self.model.joints[jid].idx_q
+            if self._kinds[jid] == 'continuous':
+                out[iq], out[iq + 1] = np.cos(q[i]), np.sin(q[i])
+            else:
+                out[iq] = q[i]
+        return out
+
+    def random_configurations(self, n: int, rng: np.random.Generator,
+                              margin: float = 0.0) -> np.ndarray:
+        lo = np.where(np.isfinite(self.lower), self.lower + margin, -np.pi)
+        hi = np.where(np.isfinite(self.upper), self.upper - margin, np.pi)
+        return rng.uniform(lo, hi, (n, self.n))
+
+    def frame_id(self, name: str) -> int:
+        if not self.model.existFrame(name):
+            raise ValueError(f'frame {name!r} not found in {self.source}; frames: '
+                             f'{sorted(set(self.frame_names) - {"universe"})}')
+        return self.model.getFrameId(name)
+
+    # ------------------------------------------------------------ kinematics
+    def pin_frame_pose(self, q: np.ndarray, frame: str) -> Tuple[np.ndarray, np.ndarray]:
+        """Pose of one frame at one configuration by pinocchio (reference path)."""
+        pin = self._pin
+        fid = self.frame_id(frame)
+        pin.framesForwardKinematics(self.model, self.data, self.to_pinocchio(q))
+        oMf = self.data.oMf[fid]
+        return np.array(oMf.translation), np.array(oMf.rotation)
+
+    def frame_poses(self, q: np.ndarray, frames: Sequence[str],
+                    with_jacobian: bool = False):
+        """Poses of ``frames`` for configurations ``q : (..., n)``.
+
+        Returns :class:`FramePoses` with ``positions (..., F, 3)`` and
+        ``rotations (..., F, 3, 3)``. With ``with_jacobian`` also returns
+        ``(jac_pos, jac_rot)``: ``jac_pos (..., F, 3, n)`` is d position / d q
+        and ``jac_rot (..., F, 3, n)`` the world angular velocity per unit
+        joint velocity (the rows of pinocchio's LOCAL_WORLD_ALIGNED frame
+        Jacobian), so that d R / d q_j = skew(jac_rot[..., j]) R.
+        """
+        q = self.check_configurations(q)
+        lead = q.shape[:-1]
+        qf = q.reshape(-1, self.n)
+        b = qf.shape[0]
+        model = self.model
+        eye = np.broadcast_to(np.eye(3), (b, 3, 3))
+        rot = {0: eye}
+        pos = {0: np.zeros((b, 3))}
+        axis_w, origin_w = {}, {}
+        for jid in range(1, model.njoints):
+            parent = model.parents[jid]
+            rp, tp = self._placements[jid]
+            rpar = rot[parent]
+            r0 = rpar if self._identity[jid] else rpar @ rp      # (b, 3, 3)
+            p0 = pos[parent] + _rotate(rpar, tp)                   # (b, 3)
+            kind, a = self._kinds[jid], self._axes[jid]
+            iq = self._q_of_jid.get(jid)
+            qj = qf[:, iq] if iq is not None else np.zeros(b)
+            if kind == 'prismatic':
+                r = r0
+                p = p0 + (r0 @ a) * qj[:, None]
+            else:
+                c, s = np.cos(qj), np.sin(qj)
+                if np.array_equal(a, _AXES['Z']):
+                    r = np.empty_like(r0)
+                    r[:, :, 0] = r0[:, :, 0] * c[:, None] + r0[:, :, 1] * s[:, None]
+                    r[:, :, 1] = r0[:, :, 1] * c[:, None] - r0[:, :, 0] * s[:, None]
+                    r[:, :, 2] = r0[:, :, 2]
+                elif np.array_equal(a, _AXES['Y']):
+                    r = np.empty_like(r0)
+                    r[:, :, 0] = r0[:, :, 0] * c[:, None] - r0[:, :, 2] * s[:, None]
+                    r[:, :, 2] = r0[:, :, 2] * c[:, None] + r0[:, :, 0] * s[:, None]
+                    r[:, :, 1] = r0[:, :, 1]
+                elif np.array_equal(a, _AXES['X']):
+                    r = np.empty_like(r0)
+                    r[:, :, 1] = r0[:, :, 1] * c[:, None] + r0[:, :, 2] * s[:, None]
+                    r[:, :, 2] = r0[:, :, 2] * c[:, None] - r0[:, :, 1] * s[:, None]
+                    r[:, :, 0] = r0[:, :, 0]
+                else:
+                    k = _skew(a)
+                    rq = (np.eye(3)[None] + s[:, None, None] * k[None]
+                          + (1 - c)[:, None, None] * (k @ k)[None])
+                    r = r0 @ rq
+                p = p0
+            rot[jid], pos[jid] = r, p
+            if with_jacobian and iq is not None:
+                axis_w[jid] = r0 @ a
+                origin_w[jid] = p
+        names = tuple(frames)
+        fpos = np.empty((b, len(names), 3))
+        frot = np.empty((b, len(names), 3, 3))
+        jp = jr = None
+        if with_jacobian:
+            jp = np.zeros((b, len(names), 3, self.n))
+            jr = np.zeros((b, len(names), 3, self.n))
+        for k, name in enumerate(names):
+            fr = model.frames[self.frame_id(name)]
+            j = fr.parentJoint
+            rf = np.array(fr.placement.rotation)
+            tf = np.array(fr.placement.translation)
+            fpos[:, k] = pos[j] + _rotate(rot[j], tf)
+            frot[:, k] = rot[j] if np.array_equal(rf, np.eye(3)) else rot[j] @ rf
+            if with_jacobian:
+                anc = j
+                while anc > 0:
+                    iq = self._q_of_jid.get(anc)
+                    if iq is not None:
+                        w = axis_w[anc]
+                        if self._kinds[anc] == 'prismatic':
+                            jp[:, k, :, iq] = w
+                        else:
+                            jp[:, k, :, iq] = np.cross(w, fpos[:, k] - origin_w[anc])
+                            jr[:, k, :, iq] = w
+                    anc = model.parents[anc]
+        out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),
+                         frot.reshape(lead + (len(names), 3, 3)))
+        if with_jacobian:
+            return out, (jp.reshape(lead + (len(names), 3, self.n)),
+                         jr.reshape(lead + (len(names), 3, self.n)))
+        return out
+
+    def pin_frame_jacobian(self, q: np.ndarray, frame: str) -> np.ndarray:
+        """6 x n frame Jacobian (LOCAL_WORLD_ALIGNED) by pinocchio, chain columns only."""
+        pin = self._pin
+        fid = self.frame_id(frame)
+        qp = self.to_pinocchio(q)
+        pin.computeJointJacobians(self.model, self.data, qp)
+        pin.framesForwardKinematics(self.model, self.data, qp)
+        jac = pin.getFrameJacobian(self.model, self.data, fid, pin.LOCAL_WORLD_ALIGNED)
+        cols = [self.model.joints[j].idx_v for j in self._jid]
+        return np.array(jac[:, cols])
+
+    def describe(self) -> Dict[str, object]:
+        return {'source': self.source, 'joint_names': list(self.joint_names),
+                'tool_frame': self.tool_frame,
+                'lower': self.lower.tolist(), 'upper': self.upper.tolist()}

@@ -1,0 +1,200 @@
+"""Task features: hand-computable cases, geometry, minimum-jerk closed forms."""
+
+import numpy as np
+import pytest
+from scipy.optimize import check_grad
+
+from pref_learner.features import FeatureConfigError, FeatureSet, default_features_path
+from pref_learner.robot import RobotModel
+
+GANTRY = """<?xml version="1.0"?>
+<robot name="gantry">
+  <link name="base_link"/><link name="lx"/><link name="ly"/><link name="carriage"/>
+  <joint name="x" type="prismatic"><parent link="base_link"/><child link="lx"/>
+    <axis xyz="1 0 0"/><limit lower="-5" upper="5" velocity="1" effort="1"/></joint>
+  <joint name="y" type="prismatic"><parent link="lx"/><child link="ly"/>
+    <axis xyz="0 1 0"/><limit lower="-5" upper="5" velocity="1" effort="1"/></joint>
+  <joint name="z" type="prismatic"><parent link="ly"/><child link="carriage"/>
+    <axis xyz="0 0 1"/><limit lower="-5" upper="5" velocity="1" effort="1"/></joint>
+</robot>"""
+
+TURNTABLE = """<?xml version="1.0"?>
+<robot name="turntable">
+  <link name="base_link"/><link name="plate"/><link name="pin"/>
+  <joint name="spin" type="revolute"><parent link="base_link"/><child link="plate"/>
+    <axis xyz="0 0 1"/><limit lower="-3.1" upper="3.1" velocity="1" effort="1"/></joint>
+  <joint name="pin_joint" type="fixed"><parent link="plate"/><child link="pin"/>
+    <origin xyz="0.5 0 0"/></joint>
+</robot>"""
+
+
+@pytest.fixture(scope='module')
+def gantry():
+    return RobotModel(GANTRY, tool_frame='carriage')
+
+
+def _one(robot, ftype, params=None, aggregate=None, frame=None):
+    spec = {'name': 'f', 'type': ftype, 'params': params or {}}
+    if aggregate:
+        spec['aggregate'] = aggregate
+    if frame:
+        spec['frame'] = frame
+    return FeatureSet.from_yaml({'features': [spec]}, robot)
+
+
+def test_height_point_capsule_box_by_hand(gantry):
+    # Hand-computed geometry (common practice): the gantry's carriage is at q.
+    q = np.array([[0.5, 0.0, 0.5], [0.0, 0.0, 2.0], [0.3, 0.4, 0.25]])
+    cap = {'a': [0, 0, 0], 'b': [0, 0, 1], 'radius': 0.1}
+    f = _one(gantry, 'capsule_distance', cap, 'max')
+    assert f.raw(q[:2])[0] == pytest.approx(0.9)          # beyond the end: 1.0 - 0.1
+    assert f.raw(q[[0, 0]])[0] == pytest.approx(0.4)      # beside the middle: 0.5 - 0.1
+    f = _one(gantry, 'capsule_distance', cap, 'min')
+    assert f.raw(q[:2])[0] == pytest.approx(0.4)
+    h = _one(gantry, 'height', {'point': [0, 0, 0.2], 'normal': [0, 0, 2]}, 'mean')
+    assert h.raw(q)[0] == pytest.approx(np.mean([0.3, 1.8, 0.05]))
+    d = _one(gantry, 'point_distance', {'point': [0, 0, 0.25]}, 'max')
+    assert d.raw(q)[0] == pytest.approx(1.75)
+    dh = _one(gantry, 'point_distance', {'point': [0, 0, 9.0], 'horizontal': True}, 'mean')
+    assert dh.raw(q)[0] == pytest.approx(np.mean([0.5, 0.0, 0.5]))
+    box = _one(gantry, 'in_box', {'min': [-1, -1, 0], 'max': [1, 1, 1], 'softness': 1e-4})
+    assert box.raw(q)[0] == pytest.approx(2.0 / 3.0, abs=1e-6)
+
+
+def test_integral_aggregate_by_hand(gantry):
+    # A straight 2 m path at constant height 0.5 above the plane: integral = 1.0 m^2.
+    q = np.stack([np.linspace(0, 2, 11), np.zeros(11), np.full(11, 0.5)], 1)
+    f = _one(gantry, 'height', {}, 'integral')
+    assert f.raw(q)[0] == pytest.approx(1.0)
+
+
+def test_path_length_segment_and_arc(gantry):
+    # Geometry: a straight segment's length; a circular arc of radius r and angle a
+    # traced with T waypoints has polygon length 2 r (T-1) sin(a / (2 (T-1))) -> r a.
+    q = np.linspace([0.1, -0.2, 0.3], [1.1, 0.8, -0.7], 40)
+    f = _one(gantry, 'path_length')
+    assert f.raw(q)[0] == pytest.approx(np.sqrt(3.0), rel=1e-12)
+    table = RobotModel(TURNTABLE, tool_frame='pin')
+    T, a = 200, 2.5
+    qa = np.linspace(-1.25, 1.25, T)[:, None]
+    g = _one(table, 'path_length').raw(qa)[0]
+    assert g == pytest.approx(2 * 0.5 * (T - 1) * np.sin(a / (2 * (T - 1))), rel=1e-12)
+    assert g == pytest.approx(0.5 * a, rel=1e-4)
+
+
+def test_tilt_by_hand():
+    # A frame tipped by angle a from vertical has tilt sin^2(a) (geometry).
+    table = RobotModel(TURNTABLE.replace('axis xyz="0 0 1"', 'axis xyz="1 0 0"'),
+                       tool_frame='pin')
+    a = np.array([[0.0], [np.pi / 6], [np.pi / 3]])
+    f = _one(table, 'tilt', {'axis': 'z'}, 'max')
+    assert f.raw(a)[0] == pytest.approx(np.sin(np.pi / 3) ** 2)
+    f = _one(table, 'tilt', {'axis': 'z'}, 'min')
+    assert f.raw(a)[0] == pytest.approx(0.0, abs=1e-15)
+
+
+def test_minimum_jerk_profile(gantry):
+    # Flash & Hogan (1985), minimum-jerk model (from memory): x = D (10 s^3 - 15 s^4 + 6 s^5),
+    # peak speed = 1.875 x mean speed, zero velocity and acceleration at both ends,
+    # and integral of squared jerk over normalised time = 720 D^2.
+    T = 2001
+    s = np.linspace(0, 1, T)
+    D = np.array([0.4, -0.3, 0.2])
+    prof = 10 * s ** 3 - 15 * s ** 4 + 6 * s ** 5
+    q = prof[:, None] * D
+    v = np.gradient(prof, s)
+    assert v.max() / 1.0 == pytest.approx(1.875, rel=1e-5)
+    assert abs(v[0]) < 1e-5 and abs(v[-1]) < 1e-5
+    f = FeatureSet.from_yaml({'features': [{'name': 'j', 'type': 'jerk'},
+                                           {'name': 'e', 'type': 'effort'}]}, gantry)
+    jerk, effort = f.raw(q)
+    assert jerk == pytest.approx(720 * np.sum(D ** 2), rel=1e-2)
+    # effort of the same profile: integral of (30 s^2 (1 - s)^2)^2 ds = 10/7 (closed form)
+    assert effort == pytest.approx(10 / 7 * np.sum(D ** 2), rel=1e-3)
+
+
+def test_batch_equals_single_and_shipped_set():
+    robot = RobotModel.default()
+    fs = FeatureSet.from_yaml(default_features_path(), robot)
+    assert fs.d == 6 and fs.names[0] == 'tube_height'
+    rng = np.random.default_rng(3)
+    qs = robot.random_configurations(5 * 16, rng, margin=0.1).reshape(5, 16, 7)
+    batch = fs.raw(qs)
+    for i in range(5):
+        np.testing.assert_allclose(fs.raw(qs[i]), batch[i], rtol=1e-13)
+    with pytest.raises(ValueError, match='no scales'):
+        fs(qs)
+    np.testing.assert_allclose(fs.with_scales(np.full(6, 2.0))(qs), batch / 2.0)
+
+
+def test_feature_gradients_against_finite_differences():
+    # scipy.optimize.check_grad (central reference by finite differences): every
+    # feature of the shipped set, random smooth trajectories, relative error < 1e-5.
+    robot = RobotModel.default()
+    fs = FeatureSet.from_yaml(default_features_path(), robot)
+    fs = FeatureSet(robot, [s if s.aggregate != 'min' else
+                            type(s)(s.name, s.type, s.frame, 'mean', s.params)
+                            for s in fs.specs])  # min/max have subgradients only
+    extra = FeatureSet.from_yaml({'features': [
+        {'name': 'jerk', 'type': 'jerk'},
+        {'name': 'box', 'type': 'in_box', 'params': {'min': [0, -1, 0], 'max': [1, 1, 1],
+                                                     'softness': 0.2}},
+        {'name': 'h_int', 'type': 'height', 'aggregate': 'integral'}]}, robot)
+    rng = np.random.default_rng(4)
+    T = 8
+    for fset in (fs, extra):
+        for trial in range(3):
+            a, b = robot.random_configurations(2, rng, margin=0.5)
+            base = np.linspace(a, b, T) + 0.05 * rng.standard_normal((T, 7))
+            for j in range(fset.d):
+                def f(x):
+                    return fset.raw(x.reshape(T, 7))[j]
+
+                def g(x):
+                    return fset.gradient(x.reshape(T, 7))[j].ravel()
+                err = check_grad(f, g, base.ravel(), epsilon=1e-7)
+                scale = max(np.linalg.norm(g(base.ravel())), 1e-8)
+                assert err / scale < 1e-5, (fset.names[j], err, scale)
+
+
+@pytest.mark.parametrize('spec, word', [
+    ({'name': 'a', 'type': 'height', 'colour': 1}, "unknown key.*colour"),
+    ({'name': 'a', 'type': 'warp'}, "type 'warp' is unknown"),
+    ({'name': 'a', 'type': 'height', 'frame': 'camera'}, "frame 'camera'"),
+    ({'name': 'a', 'type': 'capsule_distance',
+      'params': {'a': [0, 0, 0], 'b': [0, 0, 1], 'radius': -1}}, 'radius must be'),
+    ({'name': 'a', 'type': 'height', 'aggregate': 'median'}, "aggregate 'median'"),
+    ({'name': 'a', 'type': 'height', 'params': {'normal': 'up'}}, 'normal'),
+    ({'name': 'A b', 'type': 'height'}, 'name must match'),
+    ({'name': 'a', 'type': 'tilt', 'params': {'axis': 'w'}}, 'axis'),
+    ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, 'cannot be imported'),
+])
+def test_bad_feature_yaml(spec, word):
+    robot = RobotModel.default()
+    with pytest.raises(FeatureConfigError, match=word):
+        FeatureSet.from_yaml({'features': [spec]}, robot)
+
+
+def test_bad_feature_file(tmp_path):
+    robot = RobotModel.default()
+    with pytest.raises(FeatureConfigError, match='empty'):
+        FeatureSet.from_yaml({'features': []}, robot)
+    p = tmp_path / 'f.yaml'
+    p.write_text('features: [')
+    with pytest.raises(FeatureConfigError, match=str(p)):
+        FeatureSet.from_yaml(p, robot)
+    with pytest.raises(FeatureConfigError, match='cannot be read'):
+        FeatureSet.from_yaml(tmp_path / 'none.yaml', robot)
+
+
+def user_height(q, positions, rotations, params):
+    """A user feature type: mean z plus an offset (used by the test below)."""
+    return positions[..., 2].mean(axis=1) + params.get('offset', 0.0)
+
+
+def test_user_feature_type(gantry):
+    fs = FeatureSet.from_yaml({'features': [
+        {'name': 'u', 'type': 'test_features:user_height', 'params': {'offset': 1.0}}]}, gantry)
+    q = np.zeros((4, 3))
+    q[:, 2] = [0, 1, 2, 3]
+    assert fs.raw(q)[0] == pytest.approx(2.5)
