@@ -1,0 +1,446 @@
+"""From a joint-state stream to clean, resampled demonstrations.
+
+A :class:`Recorder` takes samples one at a time as a ``joint_states`` topic
+delivers them (``feed(stamp_ns, names, positions)``: any joint order, extra
+joints, duplicates, out-of-order stamps, gaps, NaN) and segments them into
+demonstrations by one of three modes:
+
+``manual``  :meth:`Recorder.start` / :meth:`Recorder.stop` calls (services);
+``signal``  a boolean teaching signal, :meth:`Recorder.set_teaching`;
+``motion``  automatic: a windowed joint speed above ``speed_start`` starts a
+            segment, below ``speed_stop`` for ``dwell`` seconds ends it
+            (hysteresis); the onset and end are then refined by extrapolating
+            the speed profile to zero, assuming a motion that starts and ends
+            with zero velocity and acceleration (speed ~ (t - t0)^2 near the
+            ends, as in minimum-jerk motion).
+
+Each finished segment becomes a :class:`Demonstration` or a
+:class:`Rejection` with a reason; nothing is dropped silently. While idle the
+recorder keeps only a short pre-roll ring, so memory is bounded however long
+the stream runs.
+
+:func:`prepare` cleans a segment and resamples it to T waypoints (by time,
+or by arc length of the tool path; linear interpolation between samples;
+the first and last samples are kept exactly). :func:`smooth_batch` is the
+endpoint-preserving smoother applied identically to a demonstration and to
+its alternatives, so sensor noise cannot tell them apart.
+"""
+
+from __future__ import annotations
+
+import collections
+from dataclasses import dataclass, field
+from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
+
+import numpy as np
+
+REASONS = ('too_short', 'too_little_motion', 'too_many_gaps', 'too_many_invalid',
+           'too_long', 'stop_without_start', 'start_while_recording')
+
+
+@dataclass(frozen=True)
+class Demonstration:
+    """A demonstration in the model's joint order.
+
+    t : (T,) seconds since the first sample.
+    q : (T, n) joint positions.
+    stamp_ns : absolute time of the first sample (ns).
+    """
+
+    t: np.ndarray
+    q: np.ndarray
+    joint_names: Tuple[str, ...]
+    stamp_ns: int = 0
+
+    @property
+    def duration(self) -> float:
+        return float(self.t[-1] - self.t[0])
+
+
+@dataclass(frozen=True)
+class Rejection:
+    reason: str
+    detail: str
+    stamp_ns: int = 0
+
+
+@dataclass(frozen=True)
+class SegmentConfig:
+    """Segmentation and acceptance thresholds (SI units)."""
+
+    mode: str = 'signal'                 # manual | signal | motion
+    speed_start: float = 0.15            # rad/s, windowed max joint speed that starts
+    speed_stop: float = 0.05             # rad/s, below this for `dwell` ends
+    dwell: float = 0.4                   # s
+    speed_window: float = 0.05           # s, window of the speed estimate
+    pre_roll: float = 1.0                # s kept while idle
+    min_duration: float = 0.3            # s
+    max_duration: float = 120.0          # s
+    min_motion: float = 0.05             # rad, largest joint excursion
+    max_gap: float = 0.1                 # s between consecutive samples
+    max_invalid_fraction: float = 0.2    # of samples in the segment
+    refine: bool = True                  # refine motion-mode bounds
+
+    def __post_init__(self):
+        if self.mode not in ('manual', 'signal', 'motion'):
+            raise ValueError(f'segmentation mode {self.mode!r} is unknown; allowed: manual, '
+                             'signal, motion')
+        for k in ('speed_start', 'speed_stop', 'dwell', 'speed_window', 'min_duration',
+                  'max_duration', 'max_gap'):
+            if not getattr(self, k) > 0:
+                raise ValueError(f'{k} must be > 0, got {getattr(self, k)!r}')
+        if self.speed_stop > self.speed_start:
+            raise ValueError('speed_stop must not exceed speed_start (hysteresis)')
+        if not 0 <= self.max_invalid_fraction <= 1:
+            raise ValueError('max_invalid_fraction must be in [0, 1]')
+
+
+class Recorder:
+    """Segments a joint-state stream into demonstrations (see module docstring)."""
+
+    def __init__(self, joint_names: Sequence[str], config: SegmentConfig = SegmentConfig()):
+        self.joint_names = tuple(joint_names)
+        self.n = len(self.joint_names)
+        self.config = config
+        self.counters: Dict[str, int] = collections.Counter()
+        self._index_cache: Dict[Tuple[str, ...], Optional[np.ndarray]] = {}
+        self._last_stamp: Optional[int] = None
+        self._ring: Deque[Tuple[int, np.ndarray]] = collections.deque()
+        self._seg: Optional[List[Tuple[int, np.ndarray]]] = None
+        self._seg_invalid = 0
+        self._quiet_since: Optional[int] = None
+        self._win: Deque[Tuple[int, np.ndarray]] = collections.deque()
+        self._ema: Optional[np.ndarray] = None
+        self._ema_t = 0
+        self.last_reason: str = ''
+
+    # ------------------------------------------------------------ state
+    @property
+    def recording(self) -> bool:
+        return self._seg is not None
+
+    @property
+    def buffered(self) -> int:
+        return len(self._ring) + (len(self._seg) if self._seg is not None else 0)
+
+    def _map(self, names: Sequence[str]) -> Optional[np.ndarray]:
+        key = tuple(names)
+        idx = self._index_cache.get(key, False)
+        if idx is False:
+            pos = {n: i for i, n in enumerate(key)}
+            if all(j in pos for j in self.joint_names):
+                idx = np.array([pos[j] for j in self.joint_names])
+            else:
+                idx = None
+            if len(self._index_cache) > 64:
+                self._index_cache.clear()
+            self._index_cache[key] = idx
+        return idx
+
+    # ------------------------------------------------------------ input
+    def feed(self, stamp_ns: int, names: Sequence[str], positions: Sequence[float]) -> list:
+        """Add one sample; returns finished demonstrations / rejections (usually [])."""
+        if len(names) != len(positions):
+            self.counters['mismatched_lengths'] += 1
+            return []
+        idx = self._map(names)
+        if idx is None:
+            self.counters['missing_joint'] += 1
+            return []
+        if self._last_stamp is not None and stamp_ns <= self._last_stamp:
+            self.counters['duplicate' if stamp_ns == self._last_stamp else 'out_of_order'] += 1
+            return []
+        q = np.asarray(positions, dtype=np.float64)[idx]
+        self._last_stamp = stamp_ns
+        if not np.all(np.isfinite(q)):
+            self.counters['invalid'] += 1
+            if self._seg is not None:
+                self._seg_invalid += 1
+            return []
+        self.counters['samples'] += 1
+        sample = (int(stamp_ns), q)
+        out = []
+        if self._seg is not None:
+            if self._seg and (stamp_ns - self._seg[0][0]) * 1e-9 > self.config.max_duration:
+                out.append(self._reject('too_long', f'longer than {self.config.max_duration} s',
+                                        self._seg[0][0]))
+                self._seg = None
+            else:
+                self._seg.append(sample)
+        else:
+            self._ring.append(sample)
+            while self._ring and (stamp_ns - self._ring[0][0]) * 1e-9 > self.config.pre_roll:
+                self._ring.popleft()
+        if self.config.mode == 'motion':
+            out.extend(self._motion_step(sample))
+        return out
+
+    def _speed(self, sample) -> Optional[float]:
+        # exponential moving average (time constant speed_window / 2) suppresses
+        # sensor noise; the speed is its displacement over speed_window
+        tau = 0.5 * self.config.speed_window
+        if self._ema is None:
+            self._ema = sample[1].copy()
+        else:
+            dt = (sample[0] - self._ema_t) * 1e-9
+            a = 1.0 - np.exp(-dt / tau)
+            self._ema += a * (sample[1] - self._ema)
+        self._ema_t = sample[0]
+        sample = (sample[0], self._ema.copy())
+        w = self._win
+        w.append(sample)
+        horizon = self.config.speed_window
+        while len(w) > 2 and (sample[0] - w[1][0]) * 1e-9 >= horizon:
+            w.popleft()
+        dt = (sample[0] - w[0][0]) * 1e-9
+        if dt < 0.5 * horizon:
+            return None
+        return float(np.max(np.abs(sample[1] - w[0][1])) / dt)
+
+    def _motion_step(self, sample) -> list:
+        v = self._speed(sample)
+        if v is None:
+            return []
+        c = self.config
+        if self._seg is None:
+            if v > c.speed_start:
+                self._seg = list(self._ring)
+                self._ring.clear()
+                self._seg_invalid = 0
+                self._quiet_since = None
+            return []
+        if v < c.speed_stop:
+            if self._quiet_since is None:
+                self._quiet_since = sample[0]
+            elif (sample[0] - self._quiet_since) * 1e-9 >= c.dwell:
+                return self._finish()
+        else:
+            self._quiet_since = None
+        return []
+
+    def start(self) -> list:
+        """Begin a segment now (manual mode or a teaching signal)."""
+        if self._seg is not None:
+            self.counters['start_while_recording'] += 1
+            self.last_reason = 'start_while_recording'
+            return []
+        self._seg = []
+        if self._ring:
+            self._seg.append(self._ring[-1])  # the last sample before the start
+        self._ring.clear()
+        self._seg_invalid = 0
+        return []
+
+    def stop(self) -> list:
+        """End the current segment; returns [Demonstration] or [Rejection]."""
+        if self._seg is None:
+            self.counters['stop_without_start'] += 1
+            self.last_reason = 'stop_without_start'
+            return [Rejection('stop_without_start', 'stop requested while not recording',
+                              self._last_stamp or 0)]
+        return self._finish()
+
+    def set_teaching(self, on: bool) -> list:
+        if on and self._seg is None:
+            return self.start()
+        if not on and self._seg is not None:
+            return self.stop()
+        return []
+
+    def cancel(self) -> None:
+        self._seg = None
+        self._ring.clear()
+
+    # ------------------------------------------------------------ finishing
+    def _reject(self, reason, detail, stamp):
+        self.counters['rejected'] += 1
+        self.counters['rejected_' + reason] += 1
+        self.last_reason = f'{reason}: {detail}'
+        return Rejection(reason, detail, int(stamp))
+
+    def _finish(self) -> list:
+        seg, invalid = self._seg, self._seg_invalid
+        self._seg = None
+        self._quiet_since = None
+        if not seg:
+            return [self._reject('too_short', 'no samples', self._last_stamp or 0)]
+        stamps = np.array([s[0] for s in seg], dtype=np.int64)
+        q = np.stack([s[1] for s in seg])
+        if self.config.mode == 'motion' and self.config.refine and len(stamps) > 8:
+            a, b = refine_bounds((stamps - stamps[0]) * 1e-9, q, self.config.speed_window)
+            stamps, q = stamps[a:b + 1], q[a:b + 1]
+        result = check_segment(stamps, q, invalid, self.config)
+        if isinstance(result, Rejection):
+            return [self._reject(result.reason, result.detail, result.stamp_ns)]
+        self.counters['accepted'] += 1
+        t = (stamps - stamps[0]) * 1e-9
+        return [Demonstration(t, q, self.joint_names, int(stamps[0]))]
+
+
+def check_segment(stamps: np.ndarray, q: np.ndarray, n_invalid: int,
+                  config: SegmentConfig) -> Union[Rejection, None]:
+    """Acceptance checks of a raw segment; a :class:`Rejection` or None."""
+    s0 = int(stamps[0])
+    n = len(stamps)
+    if n < 2:
+        return Rejection('too_short', f'{n} valid sample(s)', s0)
+    dur = (stamps[-1] - stamps[0]) * 1e-9
+    if dur < config.min_duration:
+        return Rejection('too_short', f'{dur:.3f} s < min_duration {config.min_duration} s', s0)
+    frac = n_invalid / (n + n_invalid)
+    if frac > config.max_invalid_fraction:
+        return Rejection('too_many_invalid', f'{frac:.0%} of samples invalid (NaN/inf) > '
+                         f'{config.max_invalid_fraction:.0%}', s0)
+    gaps = np.diff(stamps) * 1e-9
+    if gaps.max() > config.max_gap:
+        return Rejection('too_many_gaps', f'gap of {gaps.max():.3f} s > max_gap '
+                         f'{config.max_gap} s', s0)
+    motion = float(np.max(q.max(axis=0) - q.min(axis=0)))
+    if motion < config.min_motion:
+        return Rejection('too_little_motion', f'largest joint excursion {motion:.4f} rad < '
+                         f'min_motion {config.min_motion} rad', s0)
+    return None
+
+
+def refine_bounds(t: np.ndarray, q: np.ndarray, window: float) -> Tuple[int, int]:
+    """Indices of the refined onset and end of a point-to-point motion.
+
+    The progress along the start->end direction is low-passed (zero-phase,
+    8 Hz) and differentiated; at each end the times where the speed first
+    reaches 3% and 12% of its peak are found. A speed that grows as
+    (t - t0)^2 from rest (zero velocity and acceleration at the onset)
+    reaches 4x the speed at twice the time from t0, so
+    t0 = 2 t(3%) - t(12%), and symmetrically at the end.
+    """
+    d = q[-1] - q[0]
+    nrm = np.linalg.norm(d)
+    if nrm == 0 or len(t) < 16:
+        return 0, len(t) - 1
+    s = lowpass(t, ((q - q[0]) @ (d / nrm))[:, None], 8.0)[:, 0]
+    v = np.gradient(s, t)
+    peak_i = int(np.argmax(v))
+    vp = v[peak_i]
+    if vp <= 0:
+        return 0, len(t) - 1
+    up = v[:peak_i + 1]
+    i1 = int(np.argmax(up >= 0.03 * vp))
+    i2 = int(np.argmax(up >= 0.12 * vp))
+    t0 = 2 * t[i1] - t[i2]
+    down = v[peak_i:][::-1]
+    j1 = len(v) - 1 - int(np.argmax(down >= 0.03 * vp))
+    j2 = len(v) - 1 - int(np.argmax(down >= 0.12 * vp))
+    t1 = 2 * t[j1] - t[j2]
+    a = int(np.clip(np.searchsorted(t, t0), 0, len(t) - 1))
+    b = int(np.clip(np.searchsorted(t, t1), a, len(t) - 1))
+    return a, b
+
+
+# ---------------------------------------------------------------- preparation
+@dataclass(frozen=True)
+class PrepareConfig:
+    """How a raw segment becomes T waypoints (shared by the demonstration and alternatives)."""
+
+    n_waypoints: int = 64
+    resample: str = 'time'        # time | arc_length
+    lowpass_hz: float = 0.0       # 0 = off; zero-phase Butterworth (scipy.signal) before
+    smooth: float = 1e-4          # weight of the endpoint-preserving smoother (0 = off)
+
+    def __post_init__(self):
+        if self.n_waypoints < 4:
+            raise ValueError(f'n_waypoints must be >= 4, got {self.n_waypoints}')
+        if self.resample not in ('time', 'arc_length'):
+            raise ValueError(f'resample {self.resample!r} is unknown; allowed: time, arc_length')
+        if self.lowpass_hz < 0 or self.smooth < 0:
+            raise ValueError('lowpass_hz and smooth must be >= 0')
+
+
+def _interp_rows(x_new: np.ndarray, x: np.ndarray, q: np.ndarray) -> np.ndarray:
+    out = np.empty((len(x_new), q.shape[1]))
+    for j in range(q.shape[1]):
+        out[:, j] = np.interp(x_new, x, q[:, j])
+    out[0], out[-1] = q[0], q[-1]
+    return out
+
+
+def resample(t: np.ndarray, q: np.ndarray, n_waypoints: int, method: str = 'time',
+             tool_positions: Optional[np.ndarray] = None) -> np.ndarray:
+    """Resample ``q : (S, n)`` at times ``t : (S,)`` to ``(n_waypoints, n)``.
+
+    ``time``: equally spaced in time; ``arc_length``: equally spaced along the
+    tool path ``tool_positions : (S, 3)``. Linear interpolation between
+    samples; the first and last samples are kept exactly.
+    """
+    if method == 'time':
+        return _interp_rows(np.linspace(t[0], t[-1], n_waypoints), t, q)
+    if tool_positions is None:
+        raise ValueError('arc_length resampling needs tool positions')
+    s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(tool_positions, axis=0),
+                                                        axis=1))])
+    keep = np.concatenate([[True], np.diff(s) > 0])
+    return _interp_rows(np.linspace(0.0, s[-1], n_waypoints), s[keep], q[keep])
+
+
+def lowpass(t: np.ndarray, q: np.ndarray, cutoff_hz: float) -> np.ndarray:
+    """Zero-phase 2nd-order Butterworth low-pass; endpoints kept exactly."""
+    from scipy.signal import butter, sosfiltfilt
+    fs = 1.0 / np.median(np.diff(t))
+    if cutoff_hz <= 0 or cutoff_hz >= 0.45 * fs or len(t) < 16:
+        return q
+    sos = butter(2, cutoff_hz, fs=fs, output='sos')
+    out = sosfiltfilt(sos, q, axis=0, padtype='odd', padlen=min(len(t) - 1, 3 * 6))
+    out[0], out[-1] = q[0], q[-1]
+    return out
+
+
+_SMOOTHERS: Dict[Tuple[int, float], np.ndarray] = {}
+
+
+def smoother_matrix(T: int, weight: float) -> np.ndarray:
+    """(T, T) linear smoother: argmin |x - y|^2 + w |D2 x|^2 with x_0, x_T-1 fixed.
+
+    A Whittaker smoother in normalised time (w in units of the squared second
+    difference per waypoint spacing^-4); rows 0 and T-1 are the identity.
+    """
+    key = (T, float(weight))
+    if key not in _SMOOTHERS:
+        h = 1.0 / (T - 1)
+        D = np.diff(np.eye(T), n=2, axis=0) / h ** 2
+        A = np.eye(T) + weight * h * (D.T @ D)
+        S = np.zeros((T, T))
+        inner = slice(1, T - 1)
+        # solve for the interior with endpoints pinned
+        Aii = A[inner, inner]
+        rhs = np.eye(T)[inner] - A[inner][:, [0, T - 1]] @ np.eye(T)[[0, T - 1]]
+        S[inner] = np.linalg.solve(Aii, rhs)
+        S[0, 0] = S[-1, -1] = 1.0
+        _SMOOTHERS[key] = S
+    return _SMOOTHERS[key]
+
+
+def smooth_batch(q: np.ndarray, weight: float) -> np.ndarray:
+    """Apply the endpoint-preserving smoother to ``q : (..., T, n)``."""
+    if weight <= 0:
+        return np.asarray(q, dtype=np.float64)
+    q = np.asarray(q, dtype=np.float64)
+    S = smoother_matrix(q.shape[-2], weight)
+    return np.einsum('st,...tn->...sn', S, q)
+
+
+def prepare(demo: Demonstration, config: PrepareConfig, robot=None) -> np.ndarray:
+    """Clean, filter and resample a demonstration to ``(T, n)`` (no smoothing yet;
+    :func:`smooth_batch` is applied together with the alternatives)."""
+    t, q = demo.t, demo.q
+    q = lowpass(t, q, config.lowpass_hz)
+    tool = None
+    if config.resample == 'arc_length':
+        if robot is None:
+            raise ValueError('arc_length resampling needs the robot model')
+        tool = robot.frame_poses(q, [robot.tool_frame]).positions[:, 0]
+    return resample(t, q, config.n_waypoints, config.resample, tool)
+
+
+def condition(q: np.ndarray, weight: float, lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
+    """The conditioning shared by a demonstration and its alternatives:
+    :func:`smooth_batch`, then clipping to the joint limits (the smoother may
+    overshoot a limit by a hair where a trajectory runs along it)."""
+    return np.clip(smooth_batch(q, weight), lower, upper)
