@@ -444,3 +444,25 @@ def condition(q: np.ndarray, weight: float, lower: np.ndarray, upper: np.ndarray
     :func:`smooth_batch`, then clipping to the joint limits (the smoother may
     overshoot a limit by a hair where a trajectory runs along it)."""
     return np.clip(smooth_batch(q, weight), lower, upper)
+
+
+def reparametrize_arc_length(q: np.ndarray, tool: np.ndarray) -> np.ndarray:
+    """Re-time trajectories ``q : (M, T, n)`` so waypoints are equally spaced along
+    their tool paths ``tool : (M, T, 3)`` (linear interpolation; endpoints kept;
+    a trajectory whose tool does not move is returned unchanged)."""
+    M, T, n = q.shape
+    seg = np.linalg.norm(np.diff(tool, axis=1), axis=-1)
+    s = np.concatenate([np.zeros((M, 1)), np.cumsum(seg, axis=1)], axis=1)
+    total = s[:, -1:]
+    ok = total[:, 0] > 1e-9
+    u = np.where(ok[:, None], s / np.where(ok[:, None], total, 1.0), np.linspace(0, 1, T))
+    g = np.linspace(0.0, 1.0, T)
+    idx = np.clip((u[:, None, :] <= g[None, :, None]).sum(-1) - 1, 0, T - 2)   # (M, T)
+    u0 = np.take_along_axis(u, idx, 1)
+    u1 = np.take_along_axis(u, idx + 1, 1)
+    w = np.where(u1 > u0, (g[None] - u0) / np.where(u1 > u0, u1 - u0, 1.0), 0.0)
+    q0 = np.take_along_axis(q, idx[..., None], 1)
+    q1 = np.take_along_axis(q, (idx + 1)[..., None], 1)
+    out = q0 + w[..., None] * (q1 - q0)
+    out[:, 0], out[:, -1] = q[:, 0], q[:, -1]
+    return np.where(ok[:, None, None], out, q)

@@ -1,0 +1,173 @@
+"""rosbag2 bags through the pure-Python ``rosbags`` library (no ROS install needed).
+
+Reading: :func:`read_stream` yields the learner's inputs from a bag (joint
+states and teaching signals, sqlite3 or MCAP storage) in the order they were
+logged. Writing: :class:`BagWriter` writes MCAP by default, with standard
+message types, CDR encoding and offered-QoS metadata, so any rosbag2 tool
+reads it; :func:`estimate_messages` builds the estimate topics the node
+publishes (the same types, names and layouts).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterator, List, Optional, Sequence, Tuple
+
+import numpy as np
+
+STORE = 'ros2_kilted'
+
+
+def typestore():
+    from rosbags.typesys import Stores, get_typestore
+    return get_typestore(Stores(STORE))
+
+
+@dataclass(frozen=True)
+class StreamEvent:
+    """One input of the learner: kind 'joint_states' or 'teaching'."""
+
+    kind: str
+    log_ns: int
+    stamp_ns: int = 0
+    names: Tuple[str, ...] = ()
+    positions: Optional[np.ndarray] = None
+    value: bool = False
+
+
+class BagWriter:
+    """Write messages into a new rosbag2 bag directory (MCAP unless told sqlite3)."""
+
+    def __init__(self, path, storage: str = 'mcap'):
+        from rosbags.rosbag2 import StoragePlugin, Writer
+        path = Path(path)
+        if path.exists():
+            raise ValueError(f'bag {path} already exists; choose a new path')
+        plugin = {'mcap': StoragePlugin.MCAP, 'sqlite3': StoragePlugin.SQLITE3}.get(storage)
+        if plugin is None:
+            raise ValueError(f'storage {storage!r} is unknown; allowed: mcap, sqlite3')
+        self.path = path
+        self.ts = typestore()
+        self._w = Writer(path, version=9, storage_plugin=plugin)
+        self._w.open()
+        self._conns = {}
+        self._last = 0
+
+    def _conn(self, topic: str, msgtype: str):
+        c = self._conns.get(topic)
+        if c is None:
+            c = self._w.add_connection(topic, msgtype, typestore=self.ts)
+            self._conns[topic] = c
+        return c
+
+    def write_raw(self, topic: str, msgtype: str, log_ns: int, data: bytes) -> None:
+        log_ns = max(int(log_ns), self._last)
+        self._last = log_ns
+        self._w.write(self._conn(topic, msgtype), log_ns, bytes(data))
+
+    def write(self, topic: str, msg, log_ns: int) -> None:
+        self.write_raw(topic, msg.__msgtype__, log_ns,
+                       self.ts.serialize_cdr(msg, msg.__msgtype__))
+
+    # builders for the message types we use ------------------------------------
+    def joint_state(self, stamp_ns: int, names, positions, frame_id=''):
+        T = self.ts.types
+        stamp = T['builtin_interfaces/msg/Time'](sec=int(stamp_ns // 10**9),
+                                                 nanosec=int(stamp_ns % 10**9))
+        header = T['std_msgs/msg/Header'](stamp=stamp, frame_id=frame_id)
+        return T['sensor_msgs/msg/JointState'](
+            header=header, name=list(names), position=np.asarray(positions, dtype=np.float64),
+            velocity=np.zeros(0), effort=np.zeros(0))
+
+    def boolean(self, value: bool):
+        return self.ts.types['std_msgs/msg/Bool'](data=bool(value))
+
+    def float_array(self, data, dims: Sequence[Tuple[str, int, int]] = ()):
+        T = self.ts.types
+        layout = T['std_msgs/msg/MultiArrayLayout'](
+            dim=[T['std_msgs/msg/MultiArrayDimension'](label=l, size=s, stride=st)
+                 for l, s, st in dims], data_offset=0)
+        return T['std_msgs/msg/Float64MultiArray'](
+            layout=layout, data=np.asarray(data, dtype=np.float64).ravel())
+
+    def close(self) -> None:
+        self._w.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+def read_stream(path, joint_topic: Optional[str] = None,
+                teaching_topic: Optional[str] = None) -> Iterator[StreamEvent]:
+    """Joint states and teaching signals of a bag, in log-time order.
+
+    Without explicit topics, the joint-state topic is the one of type
+    ``sensor_msgs/msg/JointState`` (there must be exactly one) and the
+    teaching topic any ``std_msgs/msg/Bool`` topic whose name ends in
+    ``teaching``.
+    """
+    from rosbags.rosbag2 import Reader
+    path = Path(path)
+    if not path.exists():
+        raise ValueError(f'bag {path} does not exist')
+    ts = typestore()
+    try:
+        reader = Reader(path)
+        reader.open()
+    except Exception as exc:
+        raise ValueError(f'bag {path} cannot be opened: {exc}') from None
+    try:
+        conns = reader.connections
+        js = [c for c in conns if c.msgtype == 'sensor_msgs/msg/JointState'
+              and (joint_topic is None or c.topic == joint_topic)]
+        if not js:
+            raise ValueError(f'bag {path} has no sensor_msgs/JointState topic'
+                             + (f' named {joint_topic}' if joint_topic else ''))
+        if len({c.topic for c in js}) > 1:
+            raise ValueError(f'bag {path} has several joint-state topics '
+                             f'{sorted({c.topic for c in js})}; choose one')
+        tc = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool'
+              and (c.topic == teaching_topic if teaching_topic else c.topic.endswith('teaching'))]
+        js_ids = {c.id for c in js}
+        for conn, log_ns, raw in reader.messages(connections=js + tc):
+            msg = ts.deserialize_cdr(raw, conn.msgtype)
+            if conn.id in js_ids:
+                st = msg.header.stamp
+                yield StreamEvent('joint_states', int(log_ns), st.sec * 10**9 + st.nanosec,
+                                  tuple(msg.name), np.asarray(msg.position, dtype=np.float64))
+            else:
+                yield StreamEvent('teaching', int(log_ns), value=bool(msg.data))
+    finally:
+        reader.close()
+
+
+def read_messages(path) -> List[Tuple[str, str, int, object]]:
+    """Every message of a bag as (topic, msgtype, log_ns, message) (for tests and reports)."""
+    from rosbags.rosbag2 import Reader
+    ts = typestore()
+    out = []
+    with Reader(Path(path)) as reader:
+        for conn, log_ns, raw in reader.messages():
+            out.append((conn.topic, conn.msgtype, int(log_ns),
+                        ts.deserialize_cdr(raw, conn.msgtype)))
+    return out
+
+
+def estimate_arrays(summary, posterior) -> dict:
+    """The arrays the node publishes for one model: name -> (data, dims)."""
+    d = summary.mean.shape[0]
+    parts = [posterior.theta]
+    if posterior.log_beta is not None:
+        parts.append(posterior.log_beta[:, None])
+    parts.append(posterior.log_weights[:, None])
+    parts = np.concatenate(parts, axis=1)
+    return {
+        'weights': (summary.mean, [('feature', d, d)]),
+        'weights_covariance': (summary.covariance, [('row', d, d * d), ('col', d, d)]),
+        'particles': (parts, [('particle', parts.shape[0], parts.size),
+                              ('column', parts.shape[1], parts.shape[1])]),
+    }

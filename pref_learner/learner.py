@@ -1,0 +1,415 @@
+"""THE learning pipeline: samples -> demonstration -> alternatives -> features -> posterior.
+
+:class:`Learner` is the one object that the ROS node, the offline ``learn``
+command, the simulated studies and the benchmarks all drive. It owns the
+robot model, the feature set (with its fixed session scale), the recorder,
+the alternative sampler, one posterior per model, and the state store.
+
+Determinism: demonstration i uses generators derived from
+``SeedSequence([seed, i, ...])``, so replaying the stored (or bagged)
+demonstrations reproduces the posterior exactly, whatever the timing of
+their arrival.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import time
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import Dict, List, Optional, Tuple
+
+import numpy as np
+
+from . import __version__
+from .alternatives import AlternativeSampler, SamplerConfig, set_diagnostics
+from .demonstrations import (Demonstration, PrepareConfig, Recorder, Rejection, SegmentConfig,
+                             condition, prepare, reparametrize_arc_length)
+from .features import FeatureSet, default_features_path, load_scenario
+from .posterior import ParticlePosterior, PosteriorConfig, Summary
+from .robot import RobotModel
+from .store import StateStore
+
+log = logging.getLogger('pref_learner')
+
+MODEL_CHOICES = ('boltzmann', 'less', 'both')
+
+
+@dataclass(frozen=True)
+class LearnerConfig:
+    """Every setting of the pipeline, checked on construction (SI units)."""
+
+    urdf: str = ''                      # path or URDF text; '' = the shipped bench arm
+    joint_names: Tuple[str, ...] = ()   # chain joints in order; () = root to tool frame
+    tool_frame: str = 'tool_tip'
+    features: str = ''                  # feature YAML path; '' = the shipped scenario
+    model: str = 'less'                 # boltzmann | less | both
+    beta: float = 5.0
+    beta_min: float = 0.0               # > 0 together with beta_max: infer beta
+    beta_max: float = 0.0
+    n_particles: int = 4000
+    n_alternatives: int = 500
+    mix_smooth: float = 0.8
+    mix_perturb: float = 0.2
+    noise_scale: float = 0.08
+    n_waypoints: int = 64
+    resample: str = 'arc_length'
+    lowpass_hz: float = 0.0
+    smooth: float = 1e-4
+    bandwidth: str = 'scott'
+    segmentation: str = 'signal'        # manual | signal | motion
+    speed_start: float = 0.15
+    speed_stop: float = 0.05
+    dwell: float = 0.4
+    min_duration: float = 0.3
+    min_motion: float = 0.05
+    max_gap: float = 0.1
+    state_dir: str = ''
+    seed: int = 0
+    calibration_seed: int = 0
+    n_calibration: int = 200
+    clamp: bool = False
+
+    def __post_init__(self):
+        if self.model not in MODEL_CHOICES:
+            raise ValueError(f'model {self.model!r} is unknown; allowed: {list(MODEL_CHOICES)}')
+        if self.n_particles < 1:
+            raise ValueError(f'n_particles must be >= 1, got {self.n_particles}')
+        if self.n_alternatives < 1:
+            raise ValueError(f'n_alternatives must be >= 1, got {self.n_alternatives}')
+        if (self.beta_min > 0) != (self.beta_max > 0):
+            raise ValueError('set both beta_min and beta_max (> 0) to infer beta, or neither')
+        if self.resample not in ('time', 'arc_length'):
+            raise ValueError(f'resample {self.resample!r} is unknown; allowed: time, arc_length')
+        if self.seed < 0:
+            raise ValueError(f'seed must be >= 0, got {self.seed}')
+        # the component configs check the rest
+        self.segment_config()
+        self.prepare_config()
+        self.sampler_config()
+        for m in self.models:
+            self.posterior_config(m)
+
+    @property
+    def models(self) -> Tuple[str, ...]:
+        return ('boltzmann', 'less') if self.model == 'both' else (self.model,)
+
+    def segment_config(self) -> SegmentConfig:
+        return SegmentConfig(mode=self.segmentation, speed_start=self.speed_start,
+                             speed_stop=self.speed_stop, dwell=self.dwell,
+                             min_duration=self.min_duration, min_motion=self.min_motion,
+                             max_gap=self.max_gap)
+
+    def prepare_config(self) -> PrepareConfig:
+        return PrepareConfig(self.n_waypoints, self.resample, self.lowpass_hz, self.smooth)
+
+    def sampler_config(self) -> SamplerConfig:
+        return SamplerConfig(self.n_alternatives, {'smooth': self.mix_smooth,
+                                                   'perturb': self.mix_perturb},
+                             self.noise_scale)
+
+    def posterior_config(self, model: str) -> PosteriorConfig:
+        br = (self.beta_min, self.beta_max) if self.beta_min > 0 else None
+        bw = self.bandwidth
+        try:
+            bw = float(bw)
+        except ValueError:
+            pass
+        return PosteriorConfig(n_particles=self.n_particles, model=model, beta=self.beta,
+                               beta_range=br, bandwidth=bw)
+
+    def learning_hash(self) -> str:
+        """Hash of every setting that changes what is learned (not state_dir)."""
+        d = asdict(self)
+        d.pop('state_dir')
+        urdf = d.pop('urdf')
+        d['urdf_sha'] = hashlib.sha256(urdf.encode()).hexdigest()
+        feats = Path(self.features) if self.features else default_features_path()
+        try:
+            d['features_sha'] = hashlib.sha256(feats.read_bytes()).hexdigest()
+        except OSError:
+            d['features_sha'] = ''
+        return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
+
+    @classmethod
+    def from_dict(cls, d: dict) -> 'LearnerConfig':
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - names)
+        if unknown:
+            raise ValueError(f'unknown setting(s) {unknown}; allowed: {sorted(names)}')
+        d = dict(d)
+        if 'joint_names' in d:
+            d['joint_names'] = tuple(d['joint_names'])
+        return cls(**d)
+
+
+@dataclass
+class StepResult:
+    """What processing one demonstration produced."""
+
+    index: int
+    summaries: Dict[str, Summary]
+    infos: Dict[str, object]
+    latency_s: float
+    diagnostics: dict
+    tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
+
+
+def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n: int,
+                     rng: np.random.Generator, smooth: float) -> np.ndarray:
+    """One fixed scale per feature: the std of raw features over smooth trajectories
+    across the scenario's tasks (1 where a feature does not vary)."""
+    robot = features.robot
+    rows = []
+    for _, start, goal in tasks:
+        alts = sampler.sample(start, goal, rng, m=n)
+        tool = robot.frame_poses(alts, [robot.tool_frame]).positions[:, :, 0]
+        alts = condition(reparametrize_arc_length(alts, tool), smooth, robot.lower, robot.upper)
+        rows.append(features.raw(alts))
+    sd = np.concatenate(rows).std(axis=0)
+    return np.where(sd > 1e-12, sd, 1.0)
+
+
+class Learner:
+    """The pipeline (see module docstring)."""
+
+    def __init__(self, config: LearnerConfig = LearnerConfig()):
+        self.config = config
+        urdf = config.urdf or str(RobotModel.default().source)
+        self.robot = RobotModel(urdf, joint_names=config.joint_names or None,
+                                tool_frame=config.tool_frame, clamp=config.clamp)
+        fpath = config.features or str(default_features_path())
+        fs = FeatureSet.from_yaml(fpath, self.robot)
+        self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
+                                          config.sampler_config(), n_features=fs.d)
+        if fs.scales is None:
+            tasks = self._tasks(fpath)
+            scales = calibrate_scales(fs, AlternativeSampler(self.robot, config.n_waypoints,
+                                                             SamplerConfig(config.n_calibration)),
+                                      tasks, config.n_calibration,
+                                      np.random.default_rng(config.calibration_seed),
+                                      config.smooth)
+            fs = fs.with_scales(scales)
+        self.features = fs
+        self.recorder = Recorder(self.robot.joint_names, config.segment_config())
+        self.prepare_config = config.prepare_config()
+        self.store = StateStore(config.state_dir) if config.state_dir else None
+        self.hash = config.learning_hash()
+        self.rejections: List[dict] = []
+        self.n_accepted = 0
+        self.last_result: Optional[StepResult] = None
+        self._demos: List[Demonstration] = []
+        self._reset_posteriors()
+        self.messages: List[str] = []
+        if self.store is not None:
+            self._load_state()
+
+    # ------------------------------------------------------------ setup
+    def _tasks(self, fpath):
+        try:
+            tasks = load_scenario(fpath)['tasks']
+        except Exception:
+            tasks = []
+        tasks = [t for t in tasks if t[1].shape == (self.robot.n,)]
+        if not tasks:  # a user robot: random in-limit pairs
+            rng = np.random.default_rng(self.config.calibration_seed)
+            qs = self.robot.random_configurations(8, rng, margin=0.2)
+            tasks = [(f'random_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(4)]
+        return tasks
+
+    def _reset_posteriors(self):
+        self.posteriors: Dict[str, ParticlePosterior] = {}
+        for k, m in enumerate(self.config.models):
+            rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, 0, k]))
+            self.posteriors[m] = ParticlePosterior.create(self.config.posterior_config(m),
+                                                          self.features.d, rng)
+
+    @property
+    def names(self) -> Tuple[str, ...]:
+        return self.features.names
+
+    @property
+    def n_demonstrations(self) -> int:
+        return len(self._demos)
+
+    def _load_state(self):
+        store = self.store
+        try:
+            manifest = store.read_manifest()
+        except ValueError as exc:
+            raise ValueError(f'state directory {store.root}: {exc}') from None
+        raw = store.read_demos()
+        demos = [Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
+                               int(d['stamp_ns'])) for d in raw]
+        if not demos and manifest is None:
+            return
+        same = manifest is not None and manifest.get('learning_hash') == self.hash
+        loaded = False
+        if same:
+            try:
+                posts = {m: ParticlePosterior.load(store.posterior_path(m))
+                         for m in self.config.models}
+                if all(len(p.records) == len(demos) for p in posts.values()):
+                    self.posteriors = posts
+                    self._demos = demos
+                    self.n_accepted = len(demos)
+                    loaded = True
+                    self.messages.append(f'loaded state: {len(demos)} demonstrations from '
+                                         f'{store.root}')
+            except (OSError, ValueError, KeyError) as exc:
+                self.messages.append(f'stored posterior unusable ({exc}); rebuilding')
+        if not loaded:
+            why = 'configuration changed' if manifest is not None and not same \
+                else 'posterior behind the stored demonstrations'
+            self.messages.append(f'{why}: rebuilding the posterior by replaying '
+                                 f'{len(demos)} stored demonstrations')
+            history = []
+            for d in demos:
+                res = self._learn(d, persist=False)
+                history.append(self._history_entry(res))
+            if self.store is not None:
+                self._save_posteriors()
+                self.store.rewrite_history(history)
+        self.rejections = store.read_rejections()
+
+    # ------------------------------------------------------------ stream input
+    def feed(self, stamp_ns: int, names, positions) -> List[object]:
+        return self._handle(self.recorder.feed(stamp_ns, names, positions))
+
+    def start(self) -> List[object]:
+        return self._handle(self.recorder.start())
+
+    def stop(self) -> List[object]:
+        return self._handle(self.recorder.stop())
+
+    def set_teaching(self, on: bool) -> List[object]:
+        return self._handle(self.recorder.set_teaching(on))
+
+    def _handle(self, events) -> List[object]:
+        out = []
+        for ev in events:
+            if isinstance(ev, Demonstration):
+                try:
+                    out.append(self.process(ev))
+                except ValueError as exc:
+                    out.append(self._record_rejection(Rejection('invalid', str(exc),
+                                                                ev.stamp_ns)))
+            else:
+                out.append(self._record_rejection(ev))
+        return out
+
+    def _record_rejection(self, rej: Rejection) -> Rejection:
+        entry = {'time': time.time(), 'stamp_ns': rej.stamp_ns, 'reason': rej.reason,
+                 'detail': rej.detail}
+        self.rejections.append(entry)
+        if self.store is not None:
+            self.store.append_rejection(entry)
+        log.warning('demonstration rejected: %s (%s)', rej.reason, rej.detail)
+        return rej
+
+    # ------------------------------------------------------------ learning
+    def choice_set(self, q_demo: np.ndarray, index: int) -> Tuple[np.ndarray, np.ndarray]:
+        """Conditioned demonstration + alternatives ``(1 + M, T, n)`` and their scaled
+        features ``(1 + M, d)``; row 0 is the demonstration."""
+        rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
+        robot = self.robot
+        alts = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo)
+        tool = robot.frame_poses(alts, [robot.tool_frame]).positions[:, :, 0]
+        alts = reparametrize_arc_length(alts, tool)
+        allq = np.concatenate([q_demo[None], alts])
+        allq = condition(allq, self.config.smooth, robot.lower, robot.upper)
+        return allq, self.features(allq)
+
+    def process(self, demo: Demonstration) -> StepResult:
+        """Learn from one accepted demonstration (stored first, then the posterior)."""
+        if tuple(demo.joint_names) != self.robot.joint_names:
+            raise ValueError(f'demonstration joints {demo.joint_names} differ from the chain '
+                             f'{self.robot.joint_names}')
+        self.robot.check_configurations(demo.q, 'demonstration')
+        index = len(self._demos)
+        if self.store is not None:
+            self.store.write_demo(index, {'t': demo.t, 'q': demo.q,
+                                          'joint_names': np.array(demo.joint_names),
+                                          'stamp_ns': np.int64(demo.stamp_ns),
+                                          'seed': np.int64(self.config.seed)})
+        res = self._learn(demo, persist=True)
+        return res
+
+    def _learn(self, demo: Demonstration, persist: bool) -> StepResult:
+        t0 = time.perf_counter()
+        index = len(self._demos)
+        q = prepare(demo, self.prepare_config, self.robot)
+        allq, feats = self.choice_set(q, index)
+        new, infos, summaries = {}, {}, {}
+        for k, (m, post) in enumerate(self.posteriors.items()):
+            rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1,
+                                                                k + 1]))
+            new[m], infos[m] = post.update((feats, 0), rng)
+        self.posteriors.update(new)  # only after every model accepted the update
+        self._demos.append(demo)
+        self.n_accepted = len(self._demos)
+        for m, p in self.posteriors.items():
+            summaries[m] = p.summary()
+        rec = next(iter(self.posteriors.values())).records[-1]
+        ls = rec.log_sim if rec.log_sim is not None else None
+        diag = set_diagnostics(feats, 0, ls)
+        pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
+        paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
+                                       [self.robot.tool_frame]).positions[:, :, 0]
+        res = StepResult(index, summaries, infos, time.perf_counter() - t0, diag, paths)
+        self.last_result = res
+        if persist and self.store is not None:
+            self._save_posteriors()
+            self.store.append_history(self._history_entry(res))
+        return res
+
+    def _history_entry(self, res: StepResult) -> dict:
+        return {'index': res.index, 'latency_s': res.latency_s, 'diagnostics': res.diagnostics,
+                'summaries': {m: s.to_dict() for m, s in res.summaries.items()}}
+
+    def _save_posteriors(self):
+        for m, p in self.posteriors.items():
+            p.save(self.store.posterior_path(m))
+        self.store.write_manifest({
+            'learning_hash': self.hash, 'models': list(self.config.models),
+            'seed': self.config.seed, 'calibration_seed': self.config.calibration_seed,
+            'feature_names': list(self.names), 'scales': self.features.scales.tolist(),
+            'n_demonstrations': len(self._demos), 'version': __version__,
+            'config': {k: v for k, v in asdict(self.config).items() if k != 'urdf'},
+            'features': self.features.describe()})
+
+    # ------------------------------------------------------------ editing
+    def discard_last(self) -> bool:
+        """Remove the last demonstration and rebuild the posterior by replay."""
+        if not self._demos:
+            return False
+        demos = self._demos[:-1]
+        if self.store is not None:
+            self.store.remove_last_demo()
+        self._rebuild(demos)
+        return True
+
+    def _rebuild(self, demos):
+        self._demos = []
+        self._reset_posteriors()
+        history = []
+        for d in demos:
+            history.append(self._history_entry(self._learn(d, persist=False)))
+        if self.store is not None:
+            self._save_posteriors()
+            self.store.rewrite_history(history)
+
+    def reset(self) -> Optional[Path]:
+        """Forget everything learned; the state directory is archived, not deleted."""
+        where = self.store.archive() if self.store is not None else None
+        self._demos = []
+        self.rejections = []
+        self.recorder.cancel()
+        self._reset_posteriors()
+        self.last_result = None
+        return where
+
+    def summaries(self) -> Dict[str, Summary]:
+        return {m: p.summary() for m, p in self.posteriors.items()}
