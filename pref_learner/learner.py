@@ -56,7 +56,7 @@ class LearnerConfig:
     noise_scale: float = 0.08
     n_waypoints: int = 64
     resample: str = 'arc_length'
-    lowpass_hz: float = 0.0
+    lowpass_hz: float = 10.0
     smooth: float = 1e-4
     bandwidth: str = 'scott'
     segmentation: str = 'signal'        # manual | signal | motion

@@ -1,0 +1,488 @@
+"""ROS 2 learner node: a thin adapter around :class:`pref_learner.learner.Learner`.
+
+Callbacks only copy messages into one ordered queue; a plain worker thread
+owns the pipeline, segments, learns, stores and publishes (see DESIGN.md §3).
+"""
+
+from __future__ import annotations
+
+import collections
+import json
+import os
+import threading
+import time
+from dataclasses import fields
+
+import numpy as np
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
+from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
+                                SetParametersResult)
+from rclpy.node import Node
+from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy)
+from rclpy.serialization import deserialize_message
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension
+from std_srvs.srv import Trigger
+from trajectory_msgs.msg import JointTrajectory
+from visualization_msgs.msg import Marker, MarkerArray
+
+from ..bags import estimate_arrays
+from ..learner import Learner, LearnerConfig, StepResult
+
+ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                          durability=DurabilityPolicy.TRANSIENT_LOCAL,
+                          history=HistoryPolicy.KEEP_LAST)
+SENSOR_QOS = QoSProfile(depth=100, reliability=ReliabilityPolicy.BEST_EFFORT,
+                        durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_LAST)
+
+# name -> (description, range or None, read_only)
+_PARAMS = {
+    'urdf': ('URDF text (as robot_description) or a file path; empty: shipped bench arm',
+             None, True),
+    'joint_names': ('chain joints in order; empty: root to tool_frame', None, True),
+    'tool_frame': ('frame the features read by default', None, True),
+    'features': ('feature-set YAML path; empty: shipped bench scenario', None, True),
+    'model': ('choice model: boltzmann, less or both', None, True),
+    'beta': ('rationality (inverse temperature) when not inferred', (1e-3, 1e3), True),
+    'beta_min': ('lower end of the inferred beta range (0: beta fixed)', (0.0, 1e3), True),
+    'beta_max': ('upper end of the inferred beta range (0: beta fixed)', (0.0, 1e4), True),
+    'n_particles': ('particles of the posterior', (1, 200000), True),
+    'n_alternatives': ('alternatives per demonstration', (1, 20000), True),
+    'mix_smooth': ('share of smooth random alternatives', (0.0, 1.0), True),
+    'mix_perturb': ('share of perturbed-demonstration alternatives', (0.0, 1.0), True),
+    'noise_scale': ('alternative noise, fraction of each joint range', (1e-4, 1.0), True),
+    'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
+    'resample': ('demonstration resampling: time or arc_length', None, True),
+    'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
+    'smooth': ('weight of the shared endpoint-preserving smoother', (0.0, 1.0), True),
+    'bandwidth': ('LESS kernel bandwidth: scott, silverman or a number', None, True),
+    'segmentation': ('manual (services), signal (~/teaching) or motion', None, False),
+    'speed_start': ('motion segmentation: start speed, rad/s', (1e-4, 10.0), False),
+    'speed_stop': ('motion segmentation: stop speed, rad/s', (1e-4, 10.0), False),
+    'dwell': ('motion segmentation: quiet time that ends a demonstration, s', (0.01, 10.0),
+              False),
+    'min_duration': ('shortest accepted demonstration, s', (0.01, 60.0), False),
+    'min_motion': ('smallest accepted joint excursion, rad', (0.0, 10.0), False),
+    'max_gap': ('largest accepted gap between samples, s', (0.001, 10.0), False),
+    'state_dir': ('state directory (demonstrations, posterior); empty: none', None, True),
+    'seed': ('seed of every random draw', (0, 2**31 - 1), True),
+    'calibration_seed': ('seed of the feature-scale calibration', (0, 2**31 - 1), True),
+    'record_bag': ('write inputs and estimates into this new bag (MCAP); empty: off', None,
+                   True),
+    'publish_period': ('republish estimates and diagnostics every this many s', (0.05, 60.0),
+                       True),
+    'max_stamp_skew': ('reject samples stamped further than this from now, s (0: off)',
+                       (0.0, 1e9), False),
+}
+_RUNTIME = {k for k, v in _PARAMS.items() if not v[2]}
+
+
+def _array_msg(data, dims) -> Float64MultiArray:
+    m = Float64MultiArray()
+    m.layout.dim = [MultiArrayDimension(label=l, size=int(s), stride=int(st)) for l, s, st in dims]
+    m.data = np.asarray(data, dtype=np.float64).ravel().tolist()
+    return m
+
+
+class LearnerNode(Node):
+    """Subscribes to joint states, learns on a worker thread, publishes estimates."""
+
+    def __init__(self, **kwargs):
+        super().__init__('pref_learner', **kwargs)
+        self._queue = collections.deque(maxlen=200_000)
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._lock = threading.Lock()
+        self.counters = collections.Counter()
+        self.last_warning = ''
+        self._declare_parameters()
+        self.config = self._config_from_parameters()
+        self.learner = Learner(self.config)
+        for m in self.learner.messages:
+            self.get_logger().info(m)
+        self.declare_parameter('feature_names', list(self.learner.names), ParameterDescriptor(
+            description='order of every published weight vector', read_only=True))
+        self._bag = None
+        bag = self.get_parameter('record_bag').value
+        if bag:
+            from ..bags import BagWriter
+            self._bag = BagWriter(bag)
+        self._make_interfaces()
+        self._cache = {}
+        self._latency = float('nan')
+        self._worker = threading.Thread(target=self._run, name='pref_learner_worker',
+                                        daemon=True)
+        self._worker.start()
+        self._publish_estimates()
+        period = self.get_parameter('publish_period').value
+        self.create_timer(period, self._republish)
+        self.get_logger().info(
+            f'learning {list(self.learner.names)} with model {self.config.model}; '
+            f'{self.learner.n_demonstrations} demonstrations loaded')
+
+    # ------------------------------------------------------------ parameters
+    def _declare_parameters(self):
+        self.add_on_set_parameters_callback(self._on_set)
+        defaults = LearnerConfig()
+        extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0}
+        for name, (desc, rng, ro) in _PARAMS.items():
+            default = extra[name] if name in extra else getattr(defaults, name)
+            if name == 'joint_names':
+                default = list(default) or ['']
+            d = ParameterDescriptor(description=desc, read_only=ro)
+            if rng is not None:
+                if isinstance(default, bool):
+                    pass
+                elif isinstance(default, int):
+                    d.integer_range = [IntegerRange(from_value=int(rng[0]), to_value=int(rng[1]),
+                                                    step=0)]
+                else:
+                    d.floating_point_range = [FloatingPointRange(
+                        from_value=float(rng[0]), to_value=float(rng[1]), step=0.0)]
+            self.declare_parameter(name, default, d)
+
+    def _config_from_parameters(self) -> LearnerConfig:
+        vals = {}
+        for f in fields(LearnerConfig):
+            if self.has_parameter(f.name):
+                v = self.get_parameter(f.name).value
+                if f.name == 'joint_names':
+                    v = tuple(x for x in v if x)
+                vals[f.name] = v
+        return LearnerConfig(**vals)
+
+    def _on_set(self, params):
+        if not hasattr(self, 'config'):
+            # declaration time: check the value's own constraints only
+            for p in params:
+                if p.name == 'model' and p.value not in ('boltzmann', 'less', 'both'):
+                    return SetParametersResult(successful=False, reason=(
+                        f'model {p.value!r} is unknown; allowed: boltzmann, less, both'))
+                if p.name == 'segmentation' and p.value not in ('manual', 'signal', 'motion'):
+                    return SetParametersResult(successful=False, reason=(
+                        f'segmentation {p.value!r} is unknown; allowed: manual, signal, motion'))
+            return SetParametersResult(successful=True)
+        changes = {p.name: p.value for p in params if p.name in _RUNTIME}
+        if not changes:
+            return SetParametersResult(successful=True)
+        try:
+            d = {f.name: getattr(self.config, f.name) for f in fields(LearnerConfig)}
+            d.update({k: v for k, v in changes.items() if k in d})
+            cfg = LearnerConfig(**d)
+        except (ValueError, TypeError) as exc:
+            return SetParametersResult(successful=False, reason=str(exc))
+        self._enqueue(('config', cfg))
+        return SetParametersResult(successful=True)
+
+    # ------------------------------------------------------------ interfaces
+    def _make_interfaces(self):
+        self.create_subscription(JointState, 'joint_states', self._on_joint_states, SENSOR_QOS,
+                                 raw=True)
+        self.create_subscription(Bool, '~/teaching', self._on_teaching, 10)
+        self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10)
+        for name, kind in (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
+                           ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard')):
+            self.create_service(Trigger, f'~/{name}',
+                                lambda req, resp, k=kind: self._on_service(k, resp))
+        self._pubs = {}
+        prefixes = [''] if len(self.config.models) == 1 else [f'{m}/' for m in self.config.models]
+        for m, pre in zip(self.config.models, prefixes):
+            for topic in ('weights', 'weights_covariance', 'particles'):
+                self._pubs[(m, topic)] = self.create_publisher(
+                    Float64MultiArray, f'~/{pre}{topic}', ESTIMATE_QOS)
+        self._status_pub = self.create_publisher(DiagnosticArray, '~/status', ESTIMATE_QOS)
+        self._diag_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
+        self._marker_pub = self.create_publisher(MarkerArray, '~/markers', ESTIMATE_QOS)
+
+    def _enqueue(self, item):
+        if len(self._queue) == self._queue.maxlen:
+            self.counters['dropped_queue_full'] += 1
+        self._queue.append(item)
+        self._wake.set()
+
+    def _on_joint_states(self, raw: bytes):
+        self._enqueue(('js', time.time_ns(), raw))
+
+    def _on_teaching(self, msg: Bool):
+        self._enqueue(('teach', time.time_ns(), bool(msg.data)))
+
+    def _on_trajectory(self, msg: JointTrajectory):
+        self._enqueue(('traj', time.time_ns(), msg))
+
+    def _on_service(self, kind, resp):
+        rec = self.learner.recorder.recording
+        if kind == 'stop' and not rec:
+            resp.success = False
+            resp.message = 'not recording: call start_demonstration first'
+            self._warn('stop_without_start', resp.message)
+            return resp
+        if kind == 'start' and rec:
+            resp.success = False
+            resp.message = 'already recording a demonstration'
+            self._warn('start_while_recording', resp.message)
+            return resp
+        done = threading.Event()
+        box = {}
+        self._enqueue(('srv', time.time_ns(), kind, done, box))
+        if kind in ('start', 'stop'):
+            resp.success = True
+            resp.message = f'{kind} queued'
+            return resp
+        done.wait(timeout=30.0)
+        resp.success = bool(box.get('ok', False))
+        resp.message = str(box.get('message', 'timed out'))
+        return resp
+
+    def _warn(self, key, text):
+        self.counters[key] += 1
+        self.last_warning = f'{key}: {text}'
+        self.get_logger().warning(text)
+
+    # ------------------------------------------------------------ worker
+    def _run(self):
+        while not self._stop.is_set():
+            if not self._queue:
+                self._wake.wait(0.05)
+                self._wake.clear()
+                continue
+            item = self._queue.popleft()
+            try:
+                self._handle(item)
+            except Exception as exc:  # the node keeps running whatever one input does
+                self._warn('internal_error', f'{type(exc).__name__}: {exc}')
+
+    def _handle(self, item):
+        kind = item[0]
+        if kind == 'js':
+            _, recv, raw = item
+            msg = deserialize_message(raw, JointState)
+            if self._bag is not None:
+                self._bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState', recv, raw)
+            stamp = msg.header.stamp.sec * 10**9 + msg.header.stamp.nanosec
+            skew = self.get_parameter('max_stamp_skew').value
+            if skew > 0 and abs(stamp - time.time_ns()) * 1e-9 > skew:
+                self._warn('stamp_out_of_range', f'joint_states stamp {stamp * 1e-9:.3f} s is '
+                           f'more than {skew} s from now')
+                return
+            if len(msg.name) != len(msg.position):
+                self._warn('mismatched_lengths', f'joint_states has {len(msg.name)} names but '
+                           f'{len(msg.position)} positions')
+                return
+            self._results(self.learner.feed(stamp, msg.name, msg.position))
+        elif kind == 'teach':
+            _, recv, on = item
+            if self._bag is not None:
+                self._bag.write(self._teach_topic(),
+                                self._bag.boolean(on), recv)
+            self._results(self.learner.set_teaching(on))
+        elif kind == 'traj':
+            self._handle_trajectory(item[2])
+        elif kind == 'srv':
+            _, recv, what, done, box = item
+            try:
+                box['ok'], box['message'] = self._service(what)
+            finally:
+                done.set()
+        elif kind == 'config':
+            self._apply_runtime(item[1])
+
+    @property
+    def _js_topic(self):
+        return self.resolve_topic_name('joint_states')
+
+    def _teach_topic(self):
+        return self.resolve_topic_name('~/teaching')
+
+    def _service(self, what):
+        L = self.learner
+        if what == 'start':
+            L.start()
+            return True, 'recording'
+        if what == 'stop':
+            self._results(L.stop())
+            return True, 'stopped'
+        if what == 'reset':
+            where = L.reset()
+            self._publish_estimates()
+            return True, f'reset; previous state archived in {where}' if where else 'reset'
+        if what == 'save':
+            if L.store is None:
+                return False, 'no state_dir configured'
+            L._save_posteriors()
+            return True, f'saved to {L.store.root}'
+        if what == 'discard':
+            if not L.discard_last():
+                return False, 'no demonstration to discard'
+            self._publish_estimates()
+            return True, f'discarded; {L.n_demonstrations} demonstrations remain'
+        return False, f'unknown request {what}'
+
+    def _handle_trajectory(self, msg: JointTrajectory):
+        from ..demonstrations import Demonstration
+        pts = msg.points
+        if len(pts) < 2:
+            self._warn('bad_trajectory', f'~/demonstration has {len(pts)} points; needs >= 2')
+            return
+        names = list(msg.joint_names)
+        idx = []
+        for j in self.learner.robot.joint_names:
+            if j not in names:
+                self._warn('bad_trajectory', f'~/demonstration lacks joint {j}')
+                return
+            idx.append(names.index(j))
+        try:
+            q = np.array([[p.positions[i] for i in idx] for p in pts], dtype=np.float64)
+        except IndexError:
+            self._warn('bad_trajectory', '~/demonstration points have fewer positions than '
+                       'joint_names')
+            return
+        t = np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9 for p in pts])
+        if not np.all(np.isfinite(q)) or np.any(np.diff(t) <= 0):
+            self._warn('bad_trajectory', '~/demonstration has NaN positions or non-increasing '
+                       'time_from_start')
+            return
+        self._results(self.learner._handle([Demonstration(t - t[0], q,
+                                                          self.learner.robot.joint_names)]))
+
+    def _apply_runtime(self, cfg: LearnerConfig):
+        from ..demonstrations import Recorder
+        self.config = cfg
+        self.learner.config = cfg
+        self.learner.recorder = Recorder(self.learner.robot.joint_names, cfg.segment_config())
+        self.get_logger().info('segmentation settings updated')
+
+    def _results(self, results):
+        for r in results:
+            if isinstance(r, StepResult):
+                self._latency = r.latency_s
+                self.counters['accepted'] += 1
+                self._publish_estimates()
+                self._publish_markers(r)
+                s = next(iter(r.summaries.values()))
+                self.get_logger().info(
+                    f'demonstration {r.index + 1}: weights {np.round(s.mean, 3).tolist()} '
+                    f'(ESS {s.ess:.0f}, {r.latency_s * 1e3:.0f} ms)')
+            else:
+                self.counters['rejected'] += 1
+                self.last_warning = f'{r.reason}: {r.detail}'
+
+    # ------------------------------------------------------------ publishing
+    def _publish_estimates(self):
+        L = self.learner
+        msgs = {}
+        for m, post in L.posteriors.items():
+            s = post.summary()
+            for topic, (data, dims) in estimate_arrays(s, post).items():
+                msgs[(m, topic)] = _array_msg(data, dims)
+        with self._lock:
+            self._cache = msgs
+        stamp = time.time_ns()
+        for key, msg in msgs.items():
+            self._pubs[key].publish(msg)
+            if self._bag is not None:
+                self._bag.write(self._pubs[key].topic_name,
+                                self._bag.float_array(msg.data, [(d.label, d.size, d.stride)
+                                                                 for d in msg.layout.dim]),
+                                stamp)
+        self._publish_status()
+
+    def _status_msg(self) -> DiagnosticArray:
+        L = self.learner
+        arr = DiagnosticArray()
+        arr.header.stamp = self.get_clock().now().to_msg()
+        rc = L.recorder.counters
+        for m, post in L.posteriors.items():
+            s = post.summary()
+            st = DiagnosticStatus()
+            st.level = DiagnosticStatus.OK if not self.last_warning else DiagnosticStatus.WARN
+            st.name = f'{self.get_name()}: {m}'
+            st.hardware_id = self.get_name()
+            st.message = (f'{s.n_demonstrations} demonstrations'
+                          + (f'; last warning {self.last_warning}' if self.last_warning else ''))
+            values = {
+                'model': m, 'ess': f'{s.ess:.1f}', 'concentration': f'{s.concentration:.4f}',
+                'demonstrations': str(s.n_demonstrations),
+                'accepted': str(L.n_demonstrations),
+                'rejected': str(len(L.rejections)),
+                'last_rejection': (L.rejections[-1]['reason'] + ': '
+                                   + L.rejections[-1]['detail']) if L.rejections else '',
+                'last_update_latency_ms': f'{self._latency * 1e3:.1f}',
+                'buffer_fill': str(len(self._queue)),
+                'recording': str(L.recorder.recording).lower(),
+                'samples': str(rc.get('samples', 0)),
+                'weights': json.dumps(np.round(s.mean, 6).tolist()),
+                'feature_names': json.dumps(list(L.names)),
+            }
+            for k in ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
+                      'mismatched_lengths'):
+                values[f'samples_{k}'] = str(rc.get(k, 0))
+            for k, v in self.counters.items():
+                values[f'node_{k}'] = str(v)
+            st.values = [KeyValue(key=k, value=v) for k, v in values.items()]
+            arr.status.append(st)
+        return arr
+
+    def _publish_status(self):
+        msg = self._status_msg()
+        self._status_pub.publish(msg)
+        self._diag_pub.publish(msg)
+
+    def _publish_markers(self, r: StepResult):
+        arr = MarkerArray()
+        for i, path in enumerate(r.tool_paths):
+            mk = Marker()
+            mk.header.frame_id = 'base_link'
+            mk.ns = 'demonstration' if i == 0 else 'alternatives'
+            mk.id = i
+            mk.type = Marker.LINE_STRIP
+            mk.action = Marker.ADD
+            mk.scale.x = 0.01 if i == 0 else 0.004
+            mk.color.a = 1.0 if i == 0 else 0.5
+            mk.color.g = 0.8 if i == 0 else 0.3
+            mk.color.b = 0.2 if i == 0 else 0.9
+            mk.pose.orientation.w = 1.0
+            from geometry_msgs.msg import Point
+            mk.points = [Point(x=float(p[0]), y=float(p[1]), z=float(p[2])) for p in path]
+            arr.markers.append(mk)
+        self._marker_pub.publish(arr)
+
+    def _republish(self):
+        with self._lock:
+            msgs = dict(self._cache)
+        for key, msg in msgs.items():
+            self._pubs[key].publish(msg)
+        self._publish_status()
+
+    def destroy_node(self):
+        self._stop.set()
+        self._wake.set()
+        self._worker.join(timeout=10.0)
+        if self._bag is not None:
+            self._bag.close()
+            self._bag = None
+        super().destroy_node()
+
+
+def main(args=None):
+    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+    try:
+        with rclpy.init(args=args):
+            try:
+                node = LearnerNode()
+            except ValueError as exc:
+                print(f'pref_learner: {exc}', flush=True)
+                raise SystemExit(2)
+            ex = SingleThreadedExecutor()
+            ex.add_node(node)
+            try:
+                ex.spin()
+            finally:
+                node.destroy_node()
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+
+
+if __name__ == '__main__':
+    main()

@@ -1,0 +1,104 @@
+"""ROS 2 simulated teacher: plays demonstrations of a person model as joint states."""
+
+from __future__ import annotations
+
+import os
+import threading
+import time
+
+import numpy as np
+import rclpy
+from rcl_interfaces.msg import ParameterDescriptor
+from rclpy.node import Node
+from rclpy.qos import QoSProfile, ReliabilityPolicy
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Bool
+
+from ..learner import Learner, LearnerConfig
+from ..sim import SimulatedTeacher, TeacherConfig
+
+
+class TeacherNode(Node):
+    """Publishes ``joint_states`` at ``rate`` Hz and toggles the learner's teaching signal."""
+
+    def __init__(self, **kwargs):
+        super().__init__('simulated_teacher', **kwargs)
+        p = {
+            'true_weights': ([0.3, 0.5, 0.3, -0.6, -0.2, -0.4], 'the person\'s true weights'),
+            'model': ('less', 'how the person chooses: boltzmann or less'),
+            'beta': (5.0, 'the person\'s rationality'),
+            'n_demonstrations': (8, 'demonstrations to give'),
+            'seed': (1, 'seed of the session'),
+            'rate': (500.0, 'joint_states rate, Hz'),
+            'duration': (3.0, 'duration of one motion, s'),
+            'pause': (1.0, 'pause between demonstrations, s'),
+            'start_delay': (2.0, 'wait before the first demonstration, s'),
+            'teaching_topic': ('/pref_learner/teaching', 'the learner\'s teaching topic'),
+            'features': ('', 'feature YAML (as the learner)'),
+            'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
+        }
+        for k, (v, d) in p.items():
+            self.declare_parameter(k, v, ParameterDescriptor(description=d, read_only=True))
+        g = lambda k: self.get_parameter(k).value  # noqa: E731
+        self.learner = Learner(LearnerConfig(features=g('features'), n_particles=1,
+                                             n_alternatives=1,
+                                             calibration_seed=g('calibration_seed')))
+        self.teacher = SimulatedTeacher(
+            self.learner, g('true_weights'),
+            TeacherConfig(model=g('model'), beta=g('beta'), seed=g('seed'), rate=g('rate'),
+                          duration=g('duration')))
+        self.js_pub = self.create_publisher(
+            JointState, 'joint_states', QoSProfile(depth=100,
+                                                   reliability=ReliabilityPolicy.RELIABLE))
+        self.teach_pub = self.create_publisher(Bool, g('teaching_topic'), 10)
+        self.progress_pub = self.create_publisher(Bool, '~/demonstrating', 10)
+        self.finished = threading.Event()
+        self._thread = threading.Thread(target=self._play, daemon=True)
+        self._thread.start()
+
+    def _play(self):
+        g = lambda k: self.get_parameter(k).value  # noqa: E731
+        time.sleep(g('start_delay'))
+        names = list(self.learner.robot.joint_names) + ['finger_left_joint', 'finger_right_joint']
+        period = 1.0 / g('rate')
+        for k in range(g('n_demonstrations')):
+            if not rclpy.ok():
+                return
+            _, q = self.teacher.stream(k)
+            self.teach_pub.publish(Bool(data=True))
+            self.progress_pub.publish(Bool(data=True))
+            t_next = time.perf_counter()
+            for row in q:
+                msg = JointState()
+                msg.header.stamp = self.get_clock().now().to_msg()
+                msg.name = names
+                msg.position = np.concatenate([row, [0.01, 0.01]]).tolist()
+                self.js_pub.publish(msg)
+                t_next += period
+                delay = t_next - time.perf_counter()
+                if delay > 0:
+                    time.sleep(delay)
+            self.teach_pub.publish(Bool(data=False))
+            self.progress_pub.publish(Bool(data=False))
+            self.get_logger().info(f'demonstration {k + 1} given')
+            time.sleep(g('pause'))
+        self.finished.set()
+
+
+def main(args=None):
+    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+    try:
+        with rclpy.init(args=args):
+            node = TeacherNode()
+            ex = SingleThreadedExecutor()
+            ex.add_node(node)
+            while rclpy.ok() and not node.finished.is_set():
+                ex.spin_once(timeout_sec=0.1)
+            node.destroy_node()
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+
+
+if __name__ == '__main__':
+    main()

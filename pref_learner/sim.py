@@ -1,0 +1,108 @@
+"""Simulated teacher: a person model that demonstrates by a choice model.
+
+For each task (start/goal pair of the scenario) the person considers a set
+of candidate trajectories drawn like the learner's alternatives, picks one
+with probability given by the Boltzmann or the LESS model under true weights
+and rationality, and moves the arm along it with minimum-jerk timing (Flash &
+Hogan 1985) plus Gaussian sensor noise, with short rests before and after.
+Same seed, same session.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Iterator, List, Sequence, Tuple
+
+import numpy as np
+
+from .alternatives import AlternativeSampler, SamplerConfig
+from .choice import choice_probabilities
+from .demonstrations import condition, reparametrize_arc_length
+
+
+@dataclass(frozen=True)
+class TeacherConfig:
+    model: str = 'less'
+    beta: float = 5.0
+    n_candidates: int = 200
+    duration: float = 3.0
+    rate: float = 500.0
+    noise: float = 5e-4
+    rest: float = 0.3
+    seed: int = 1
+
+
+def min_jerk(s: np.ndarray) -> np.ndarray:
+    """Minimum-jerk progress 10 s^3 - 15 s^4 + 6 s^5 on s in [0, 1]."""
+    return 10 * s ** 3 - 15 * s ** 4 + 6 * s ** 5
+
+
+class SimulatedTeacher:
+    """Produces joint-state streams of demonstrations for a learner's robot and features."""
+
+    def __init__(self, learner, true_weights: Sequence[float], config: TeacherConfig,
+                 tasks=None):
+        from .features import load_scenario
+        w = np.asarray(true_weights, dtype=np.float64)
+        if w.shape != (learner.features.d,) or not np.linalg.norm(w) > 0:
+            raise ValueError(f'true weights must be {learner.features.d} numbers, not all 0')
+        self.theta = w / np.linalg.norm(w)
+        self.learner = learner
+        self.config = config
+        self.tasks = tasks or learner._tasks(learner.config.features or None) \
+            if tasks is None else tasks
+        if not self.tasks:
+            self.tasks = load_scenario()['tasks']
+        self.sampler = AlternativeSampler(learner.robot, learner.config.n_waypoints,
+                                          SamplerConfig(config.n_candidates,
+                                                        noise_scale=learner.config.noise_scale))
+
+    def choose(self, index: int) -> Tuple[str, np.ndarray]:
+        """The path (T, n) the person picks for demonstration ``index``."""
+        c = self.config
+        rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
+        name, start, goal = self.tasks[index % len(self.tasks)]
+        robot = self.learner.robot
+        cand = self.sampler.sample(start, goal, rng)
+        cand = np.concatenate([self.sampler.straight(start, goal)[None], cand])
+        tool = robot.frame_poses(cand, [robot.tool_frame]).positions[:, :, 0]
+        cand = reparametrize_arc_length(cand, tool)
+        # the person moves along a raw candidate; they choose by its features as the
+        # learner perceives them (after the shared conditioning)
+        feats = self.learner.features(condition(cand, self.learner.config.smooth,
+                                                robot.lower, robot.upper))
+        p = choice_probabilities(feats, self.theta, c.beta, c.model)
+        return name, cand[int(rng.choice(len(cand), p=p))]
+
+    def stream(self, index: int, t0_ns: int = 0):
+        """Samples (stamps_ns (S,), q (S, n)) of demonstration ``index``, rests included,
+        and the (start, end) stamps of the motion."""
+        c = self.config
+        _, path = self.choose(index)
+        rng = np.random.default_rng(np.random.SeedSequence([c.seed, index, 7]))
+        dt = 1.0 / c.rate
+        n_rest = int(round(c.rest * c.rate))
+        n_move = int(round(c.duration * c.rate)) + 1
+        s = min_jerk(np.linspace(0.0, 1.0, n_move)) * (len(path) - 1)
+        i = np.clip(np.floor(s).astype(int), 0, len(path) - 2)
+        f = (s - i)[:, None]
+        move = path[i] * (1 - f) + path[i + 1] * f
+        q = np.vstack([np.repeat(path[:1], n_rest, 0), move, np.repeat(path[-1:], n_rest, 0)])
+        q = q + rng.normal(0.0, c.noise, q.shape)
+        q = np.clip(q, self.learner.robot.lower, self.learner.robot.upper)
+        stamps = t0_ns + (np.arange(len(q)) * dt * 1e9).astype(np.int64)
+        return stamps, q
+
+    def feed_session(self, learner, n: int, t0_ns: int = 10**18) -> List[object]:
+        """Teach ``learner`` n demonstrations directly (no ROS), via the teaching signal."""
+        out = []
+        names = learner.robot.joint_names
+        t = t0_ns
+        for k in range(n):
+            stamps, q = self.stream(k, t)
+            out += learner.set_teaching(True)
+            for st, qi in zip(stamps, q):
+                out += learner.feed(int(st), names, qi)
+            out += learner.set_teaching(False)
+            t = int(stamps[-1]) + 10**9
+        return out
