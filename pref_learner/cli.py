@@ -1,0 +1,271 @@
+"""``pref-learner``: the command line (demo, learn, bench).
+
+Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
+DDS discovery stays on this machine unless ROS_AUTOMATIC_DISCOVERY_RANGE is
+set explicitly (a user on a robot network sets it to SUBNET).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+DEFAULT_TRUE_WEIGHTS = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
+
+
+class CliError(Exception):
+    """A user-facing error: printed as one line, exit code 2."""
+
+
+def _ros_env() -> dict:
+    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
+    return dict(os.environ)
+
+
+# ---------------------------------------------------------------- demo
+def cmd_demo(args) -> int:
+    env = _ros_env()
+    out = Path(args.out).resolve()
+    stamp = time.strftime('%Y%m%d-%H%M%S')
+    state = out / f'state-{stamp}'
+    bag = out / f'session-{stamp}'
+    out.mkdir(parents=True, exist_ok=True)
+    truth = np.asarray(args.true_weights, dtype=np.float64)
+    truth = truth / np.linalg.norm(truth)
+    py = sys.executable
+    learner_cmd = [py, '-m', 'pref_learner.ros.learner_node', '--ros-args',
+                   '-p', f'model:={args.model}', '-p', f'state_dir:={state}',
+                   '-p', f'record_bag:={bag}', '-p', f'n_particles:={args.particles}',
+                   '-p', f'n_alternatives:={args.alternatives}', '-p', f'seed:={args.seed}',
+                   '-p', f'beta:={float(args.beta)}', '--log-level', 'warn']
+    teacher_cmd = [py, '-m', 'pref_learner.ros.teacher_node', '--ros-args',
+                   '-p', f'true_weights:={list(map(float, truth))}',
+                   '-p', f'model:={args.person}', '-p', f'beta:={float(args.beta)}',
+                   '-p', f'n_demonstrations:={args.demonstrations}',
+                   '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
+                   '--log-level', 'warn']
+    print(f'pref-learner demo: a simulated person ({args.person} chooser, beta {args.beta}) '
+          f'teaches {args.demonstrations} tube transfers on the bench arm; '
+          f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
+    t0 = time.time()
+    learner = subprocess.Popen(learner_cmd, env=env)
+    teacher = subprocess.Popen(teacher_cmd, env=env)
+    try:
+        _watch(args, truth, learner, teacher)
+    finally:
+        for p in (teacher, learner):
+            if p.poll() is None:
+                p.send_signal(signal.SIGINT)
+        for p in (teacher, learner):
+            try:
+                p.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                p.kill()
+    from .learner import Learner, LearnerConfig
+    final = Learner(LearnerConfig(model=args.model, state_dir=str(state),
+                                  n_particles=args.particles, n_alternatives=args.alternatives,
+                                  seed=args.seed, beta=float(args.beta)))
+    names = final.names
+    print()
+    print('feature'.ljust(22) + 'true'.rjust(7) + ''.join(
+        f'{m + " mean":>16}{"90% interval":>18}' for m in final.config.models))
+    sums = final.summaries()
+    for j, n in enumerate(names):
+        row = n.ljust(22) + f'{truth[j]:7.2f}'
+        for m in final.config.models:
+            s = sums[m]
+            row += f'{s.mean[j]:16.2f}{"[" + f"{s.ci_low[j]:.2f}, {s.ci_high[j]:.2f}" + "]":>18}'
+        print(row)
+    result = {'wall_s': time.time() - t0, 'n_demonstrations': final.n_demonstrations,
+              'true_weights': truth.tolist(), 'feature_names': list(names),
+              'cosine': {m: float(sums[m].mean @ truth) for m in final.config.models},
+              'state_dir': str(state), 'bag': str(bag)}
+    print()
+    for m, c in result['cosine'].items():
+        print(f'cosine(estimate, truth) {m}: {c:.3f}')
+    print(f'demonstrations accepted: {final.n_demonstrations}; '
+          f'rejected: {len(final.rejections)}')
+    print(f'state directory: {state}')
+    print(f'session bag:     {bag}')
+    (out / 'demo_result.json').write_text(json.dumps(result, indent=1))
+    if final.n_demonstrations < args.demonstrations:
+        raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
+                       'reached the learner')
+    return 0
+
+
+def _watch(args, truth, learner, teacher):
+    import rclpy
+    from diagnostic_msgs.msg import DiagnosticArray
+    from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
+    from std_msgs.msg import Bool
+    qos = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                     durability=DurabilityPolicy.TRANSIENT_LOCAL)
+    state = {'n': 0, 'status': {}, 'demo_on': None}
+    deadline = time.time() + 60 + args.demonstrations * 20
+    with rclpy.init():
+        node = rclpy.create_node('pref_learner_demo_watch')
+
+        def on_status(msg):
+            for st in msg.status:
+                vals = {kv.key: kv.value for kv in st.values}
+                state['status'][vals.get('model')] = vals
+
+        def on_demo(msg):
+            state['demo_on'] = time.time() if msg.data else None
+
+        node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, qos)
+        node.create_subscription(Bool, '/simulated_teacher/demonstrating', on_demo, 10)
+        try:
+            from tqdm import tqdm
+        except ImportError:  # pragma: no cover
+            tqdm = None
+        bar = None
+        while time.time() < deadline:
+            rclpy.spin_once(node, timeout_sec=0.1)
+            if learner.poll() is not None:
+                raise CliError(f'the learner node exited with code {learner.returncode}')
+            done = min((int(v.get('demonstrations', 0)) for v in state['status'].values()),
+                       default=0)
+            if state['demo_on'] is not None and bar is None and tqdm is not None:
+                bar = tqdm(total=30, desc=f'demonstration {done + 1}', leave=False,
+                           bar_format='{desc}: {bar} {elapsed}')
+            if bar is not None:
+                if state['demo_on'] is None:
+                    bar.close()
+                    bar = None
+                else:
+                    bar.n = min(30, int((time.time() - state['demo_on']) * 30 / 3.6))
+                    bar.refresh()
+            if done > state['n']:
+                state['n'] = done
+                parts = []
+                for m, v in sorted(state['status'].items()):
+                    w = np.array(json.loads(v['weights']))
+                    parts.append(f'{m}: cos {w @ truth:+.2f}, concentration '
+                                 f'{float(v["concentration"]):.3f}, ESS {float(v["ess"]):.0f}')
+                print(f'after demonstration {done}: ' + '; '.join(parts), flush=True)
+            if done >= args.demonstrations:
+                break
+        if bar is not None:
+            bar.close()
+        node.destroy_node()
+
+
+# ---------------------------------------------------------------- learn
+def cmd_learn(args) -> int:
+    from .bags import BagWriter, estimate_arrays, read_stream
+    from .learner import Learner, LearnerConfig, StepResult
+    bag = Path(args.bag)
+    if not bag.exists():
+        raise CliError(f'bag {bag} does not exist')
+    out = Path(args.out)
+    if out.exists() and any(out.iterdir()):
+        raise CliError(f'output directory {out} is not empty')
+    try:
+        cfg = LearnerConfig(model=args.model, seed=args.seed, n_particles=args.particles,
+                            n_alternatives=args.alternatives, beta=float(args.beta),
+                            state_dir=str(out / 'state'))
+    except ValueError as exc:
+        raise CliError(str(exc)) from None
+    events = list(read_stream(bag))
+    if not any(e.kind == 'joint_states' for e in events):
+        raise CliError(f'bag {bag} has no joint states')
+    L = Learner(cfg)
+    w = BagWriter(out / 'estimates')
+    n_ok = 0
+    try:
+        for e in events:
+            res = (L.feed(e.stamp_ns, e.names, e.positions) if e.kind == 'joint_states'
+                   else L.set_teaching(e.value))
+            for r in res:
+                if isinstance(r, StepResult):
+                    n_ok += 1
+                    for m, post in L.posteriors.items():
+                        pre = '' if len(L.posteriors) == 1 else f'{m}/'
+                        for topic, (data, dims) in estimate_arrays(post.summary(), post).items():
+                            w.write(f'/pref_learner/{pre}{topic}', w.float_array(data, dims),
+                                    e.log_ns)
+    finally:
+        w.close()
+    sums = L.summaries()
+    print(json.dumps({'demonstrations': n_ok, 'rejected': len(L.rejections),
+                      'feature_names': list(L.names),
+                      'weights': {m: s.mean.tolist() for m, s in sums.items()}}, indent=1))
+    return 0
+
+
+# ---------------------------------------------------------------- bench
+def cmd_bench(args) -> int:
+    from .bench import run_benchmarks
+    res = run_benchmarks(quick=args.quick)
+    text = json.dumps(res, indent=1, sort_keys=True)
+    if args.json:
+        Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.json).write_text(text)
+    print(text)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog='pref-learner', description=(
+        'Learn what a person teaching a robot arm cares about (weights over task features).'))
+    p.add_argument('--debug', action='store_true', help='show tracebacks on errors')
+    sub = p.add_subparsers(dest='command', required=True)
+
+    d = sub.add_parser('demo', help='simulated teaching session over ROS 2 on this machine')
+    d.add_argument('--out', default='out/demo', help='output directory (default out/demo)')
+    d.add_argument('--model', default='both', choices=['boltzmann', 'less', 'both'])
+    d.add_argument('--person', default='less', choices=['boltzmann', 'less'],
+                   help='how the simulated person chooses')
+    d.add_argument('--demonstrations', type=int, default=8)
+    d.add_argument('--particles', type=int, default=4000)
+    d.add_argument('--alternatives', type=int, default=500)
+    d.add_argument('--beta', type=float, default=5.0)
+    d.add_argument('--seed', type=int, default=0)
+    d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
+    d.set_defaults(func=cmd_demo)
+
+    lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
+    lrn.add_argument('bag')
+    lrn.add_argument('--out', required=True, help='new directory for state and estimates bag')
+    lrn.add_argument('--model', default='both')
+    lrn.add_argument('--particles', type=int, default=4000)
+    lrn.add_argument('--alternatives', type=int, default=500)
+    lrn.add_argument('--beta', type=float, default=5.0)
+    lrn.add_argument('--seed', type=int, default=0)
+    lrn.set_defaults(func=cmd_learn)
+
+    b = sub.add_parser('bench', help='benchmark figures as JSON')
+    b.add_argument('--json', help='write the figures to this file')
+    b.add_argument('--quick', action='store_true', help='fewer repetitions')
+    b.set_defaults(func=cmd_bench)
+    return p
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return args.func(args)
+    except (CliError, ValueError, OSError) as exc:
+        if args.debug:
+            raise
+        print(f'pref-learner {args.command}: {exc}', file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == '__main__':
+    sys.exit(main())
