@@ -457,8 +457,9 @@ class LearnerNode(Node):
     def destroy_node(self):
         self._stop.set()
         self._wake.set()
-        self._worker.join(timeout=10.0)
-        if self._bag is not None:
+        if getattr(self, '_worker', None) is not None:
+            self._worker.join(timeout=10.0)
+        if getattr(self, '_bag', None) is not None:
             self._bag.close()
             self._bag = None
         super().destroy_node()

@@ -1,0 +1,83 @@
+"""Helpers for tests that run real rclpy nodes over DDS (loopback only, see conftest)."""
+
+import contextlib
+import time
+
+import numpy as np
+import rclpy
+from rclpy.context import Context
+from rclpy.executors import SingleThreadedExecutor
+from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
+
+LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                     durability=DurabilityPolicy.TRANSIENT_LOCAL)
+
+
+@contextlib.contextmanager
+def ros_context():
+    ctx = Context()
+    rclpy.init(context=ctx)
+    ex = SingleThreadedExecutor(context=ctx)
+    try:
+        yield ctx, ex
+    finally:
+        ex.shutdown()
+        rclpy.shutdown(context=ctx)
+
+
+@contextlib.contextmanager
+def spinning(node, ctx):
+    """Spin ``node`` in its own executor thread (as it would in its own process)."""
+    import threading
+    ex = SingleThreadedExecutor(context=ctx)
+    ex.add_node(node)
+    stop = threading.Event()
+
+    def run():
+        while not stop.is_set() and ctx.ok():
+            ex.spin_once(timeout_sec=0.02)
+    th = threading.Thread(target=run, daemon=True)
+    th.start()
+    try:
+        yield ex
+    finally:
+        stop.set()
+        th.join(timeout=5.0)
+        ex.remove_node(node)
+        ex.shutdown()
+
+
+def spin_until(ex, pred, timeout=30.0):
+    deadline = time.time() + timeout
+    while time.time() < deadline:
+        if pred():
+            return True
+        ex.spin_once(timeout_sec=0.02)
+    return pred()
+
+
+def publish_stream(ex, pub, teach_pub, stamps, q, names, rate_hz=1000.0):
+    """Publish one demonstration: teaching on, samples, teaching off."""
+    from sensor_msgs.msg import JointState
+    from std_msgs.msg import Bool
+    teach_pub.publish(Bool(data=True))
+    ex.spin_once(timeout_sec=0.01)
+    period = 1.0 / rate_hz
+    t_next = time.perf_counter()
+    for st, row in zip(stamps, q):
+        m = JointState()
+        m.header.stamp.sec = int(st // 10**9)
+        m.header.stamp.nanosec = int(st % 10**9)
+        m.name = list(names)
+        m.position = [float(x) for x in row]
+        pub.publish(m)
+        t_next += period
+        delay = t_next - time.perf_counter()
+        if delay > 0:
+            time.sleep(delay)
+    time.sleep(0.05)
+    teach_pub.publish(Bool(data=False))
+
+
+def weights_of(msg):
+    return np.asarray(msg.data)

@@ -1,0 +1,156 @@
+"""The learner node as users meet it: real rclpy nodes talking over DDS on loopback."""
+
+import numpy as np
+import pytest
+import rclpy
+from rclpy.parameter import Parameter
+from rclpy.qos import QoSProfile, ReliabilityPolicy
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Bool, Float64MultiArray
+from std_srvs.srv import Trigger
+
+from pref_learner.learner import Learner, LearnerConfig
+from pref_learner.ros.learner_node import LearnerNode
+from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from ros_util import LATCHED, publish_stream, ros_context, spin_until, spinning
+
+TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = TRUE / np.linalg.norm(TRUE)
+SMALL = dict(n_particles=2000, n_alternatives=300)
+
+
+def _node(ctx, **params):
+    ov = [Parameter(k, value=v) for k, v in params.items()]
+    return LearnerNode(context=ctx, parameter_overrides=ov)
+
+
+def _teach(ex, client_node, learner_node, teacher, n, names):
+    pub = client_node.create_publisher(JointState, 'joint_states',
+                                       QoSProfile(depth=100,
+                                                  reliability=ReliabilityPolicy.RELIABLE))
+    teach = client_node.create_publisher(Bool, '/pref_learner/teaching', 10)
+    spin_until(ex, lambda: pub.get_subscription_count() > 0 and
+               teach.get_subscription_count() > 0, 10)
+    t0 = 1_700_000_000 * 10**9
+    for k in range(n):
+        stamps, q = teacher.stream(k, t0)
+        q = np.hstack([q, np.full((len(q), len(names) - q.shape[1]), 0.01)])
+        publish_stream(ex, pub, teach, stamps, q, names)
+        assert spin_until(ex, lambda: learner_node.learner.n_demonstrations == k + 1, 30), \
+            (k, learner_node.learner.rejections, dict(learner_node.learner.recorder.counters))
+        t0 = int(stamps[-1]) + 10**9
+
+
+@pytest.mark.parametrize('person', ['less', 'boltzmann'])
+def test_teaching_session_learns_true_weights(person, tmp_path):
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, model=person, **SMALL)
+        client = rclpy.create_node('test_client', context=ctx)
+        bg = spinning(node, ctx)
+        bg.__enter__()
+        ex.add_node(client)
+        teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                                   TRUE, TeacherConfig(model=person, beta=5.0, seed=3))
+        names = list(node.learner.robot.joint_names) + ['finger_left_joint']
+        _teach(ex, client, node, teacher, 8, names)
+        got = {}
+        client.create_subscription(Float64MultiArray, '/pref_learner/weights',
+                                   lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)
+        assert spin_until(ex, lambda: 'w' in got and np.allclose(
+            got['w'], node.learner.summaries()[person].mean), 10)
+        assert float(got['w'] @ TRUE) >= 0.9
+        # a subscriber that starts after the last update still gets it (transient local)
+        late = rclpy.create_node('late_listener', context=ctx)
+        ex.add_node(late)
+        got2 = {}
+        late.create_subscription(Float64MultiArray, '/pref_learner/weights',
+                                 lambda m: got2.__setitem__('w', np.array(m.data)), LATCHED)
+        assert spin_until(ex, lambda: 'w' in got2, 10)
+        np.testing.assert_allclose(got2['w'], got['w'])
+        bg.__exit__(None, None, None)
+        for n in (node, client, late):
+            n.destroy_node()
+
+
+def test_bad_input_keeps_node_running_and_posterior_untouched():
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, model='less', n_particles=500, n_alternatives=100,
+                     segmentation='manual')
+        client = rclpy.create_node('bad_client', context=ctx)
+        bg = spinning(node, ctx)
+        bg.__enter__()
+        ex.add_node(client)
+        before = node.learner.posteriors['less'].theta.copy()
+        pub = client.create_publisher(JointState, 'joint_states', 10)
+        spin_until(ex, lambda: pub.get_subscription_count() > 0, 10)
+        stop = client.create_client(Trigger, '/pref_learner/stop_demonstration')
+        assert stop.wait_for_service(timeout_sec=5.0)
+        fut = stop.call_async(Trigger.Request())
+        spin_until(ex, fut.done, 10)
+        assert not fut.result().success and 'not recording' in fut.result().message
+        names = list(node.learner.robot.joint_names)
+        msgs = []
+        m = JointState()
+        m.name = names
+        m.position = [float('nan')] * 7
+        msgs.append(m)                                # NaN
+        m = JointState()
+        m.name = ['a', 'b']
+        m.position = [0.0, 1.0]
+        msgs.append(m)                                # unknown joints
+        m = JointState()
+        m.name = names
+        m.position = [0.0] * 3
+        msgs.append(m)                                # mismatched lengths
+        msgs.append(JointState())                     # empty
+        for i, m in enumerate(msgs):
+            m.header.stamp.sec = 100 + i
+            pub.publish(m)
+        c = node.learner.recorder.counters
+        assert spin_until(ex, lambda: c['invalid'] >= 1 and c['missing_joint'] >= 2
+                          and node.counters['mismatched_lengths'] >= 1, 10), (dict(c),
+                                                                              node.counters)
+        # start, too short a demonstration, stop: rejected with its reason
+        start = client.create_client(Trigger, '/pref_learner/start_demonstration')
+        start.wait_for_service(timeout_sec=5.0)
+        f = start.call_async(Trigger.Request())
+        spin_until(ex, f.done, 10)
+        m = JointState()
+        m.name = names
+        m.position = [0.1] * 7
+        m.header.stamp.sec = 200
+        pub.publish(m)
+        spin_until(ex, lambda: node.learner.recorder.counters['samples'] >= 1, 5)
+        f = stop.call_async(Trigger.Request())
+        spin_until(ex, f.done, 10)
+        assert spin_until(ex, lambda: len(node.learner.rejections) == 1, 10)
+        assert node.learner.rejections[0]['reason'] == 'too_short'
+        np.testing.assert_array_equal(node.learner.posteriors['less'].theta, before)
+        assert node.learner.n_demonstrations == 0
+        # status reports the counts
+        st = node._status_msg().status[0]
+        vals = {kv.key: kv.value for kv in st.values}
+        assert vals['rejected'] == '1' and vals['last_rejection'].startswith('too_short')
+        assert int(vals['samples_invalid']) >= 1
+        bg.__exit__(None, None, None)
+        node.destroy_node()
+        client.destroy_node()
+
+
+def test_parameters_refused_with_reason():
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, n_particles=200, n_alternatives=50)
+        ex.add_node(node)
+        r = node.set_parameters([Parameter('segmentation', value='telepathy')])[0]
+        assert not r.successful and 'telepathy' in r.reason
+        r = node.set_parameters([Parameter('speed_stop', value=5.0)])[0]
+        assert not r.successful and 'speed_stop' in r.reason
+        r = node.set_parameters([Parameter('n_particles', value=10)])[0]
+        assert not r.successful                       # read-only
+        r = node.set_parameters([Parameter('dwell', value=0.8)])[0]
+        assert r.successful
+        assert list(node.get_parameter('feature_names').value)[0] == 'tube_height'
+        node.destroy_node()
+    with ros_context() as (ctx, ex):
+        with pytest.raises(Exception, match='allowed'):
+            _node(ctx, model='softmax')
