@@ -1,0 +1,162 @@
+"""Durable state: atomic files, kill -9 of a live node, replay on configuration change."""
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray
+from rclpy.qos import QoSProfile, ReliabilityPolicy
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Bool
+
+from pref_learner import store as store_mod
+from pref_learner.learner import Learner, LearnerConfig
+from pref_learner.posterior import ParticlePosterior
+from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from ros_util import LATCHED, publish_stream, ros_context, spin_until
+
+TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+SMALL = dict(n_particles=800, n_alternatives=150)
+
+
+def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
+    p = tmp_path / 'x.bin'
+    store_mod.atomic_write_bytes(p, b'old')
+
+    def boom(fd):
+        raise OSError('disk gone')
+    monkeypatch.setattr(store_mod.os, 'fsync', boom)
+    with pytest.raises(OSError):
+        store_mod.atomic_write_bytes(p, b'new contents')
+    monkeypatch.undo()
+    assert p.read_bytes() == b'old'
+    assert [f.name for f in tmp_path.iterdir()] == ['x.bin']
+
+
+def test_stray_temp_files_are_not_read_as_demonstrations(tmp_path):
+    cfg = LearnerConfig(state_dir=str(tmp_path), **SMALL)
+    L = Learner(cfg)
+    SimulatedTeacher(L, TRUE, TeacherConfig(seed=2)).feed_session(L, 2)
+    (tmp_path / 'demos' / '.demo_000002.npz.123.tmp').write_bytes(b'PK\x03\x04half')
+    L2 = Learner(cfg)
+    assert L2.n_demonstrations == 2
+    np.testing.assert_array_equal(L2.posteriors['less'].theta, L.posteriors['less'].theta)
+
+
+def test_configuration_change_rebuilds_by_replay(tmp_path):
+    L = Learner(LearnerConfig(state_dir=str(tmp_path), model='less', **SMALL))
+    SimulatedTeacher(L, TRUE, TeacherConfig(seed=4)).feed_session(L, 3)
+    L2 = Learner(LearnerConfig(state_dir=str(tmp_path), model='both', **SMALL))
+    assert any('rebuilding' in m for m in L2.messages)
+    assert L2.n_demonstrations == 3
+    fresh = Learner(LearnerConfig(model='both', **SMALL))
+    for d in L._demos:
+        fresh.process(d)
+    for m in ('less', 'boltzmann'):
+        np.testing.assert_array_equal(L2.posteriors[m].theta, fresh.posteriors[m].theta)
+    # discard_last rebuilds from the first two; reset archives
+    assert L2.discard_last() and L2.n_demonstrations == 2
+    assert len(list((tmp_path / 'demos').glob('demo_*.npz'))) == 2
+    where = L2.reset()
+    assert where is not None and (where / 'demos').exists()
+    assert Learner(LearnerConfig(state_dir=str(tmp_path), model='both', **SMALL)) \
+        .n_demonstrations == 0
+
+
+def _start_node(state, env):
+    cmd = [sys.executable, '-m', 'pref_learner.ros.learner_node', '--ros-args',
+           '-p', f'state_dir:={state}', '-p', f'n_particles:={SMALL["n_particles"]}',
+           '-p', f'n_alternatives:={SMALL["n_alternatives"]}', '--log-level', 'warn']
+    return subprocess.Popen(cmd, env=env)
+
+
+def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
+    state = tmp_path / 'state'
+    env = dict(os.environ)
+    proc = _start_node(state, env)
+    try:
+        with ros_context() as (ctx, ex):
+            node = rclpy.create_node('persistence_client', context=ctx)
+            ex.add_node(node)
+            status = {}
+
+            def on_status(msg):
+                for st in msg.status:
+                    status.update({kv.key: kv.value for kv in st.values})
+            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status,
+                                     LATCHED)
+            pub = node.create_publisher(JointState, 'joint_states',
+                                        QoSProfile(depth=100,
+                                                   reliability=ReliabilityPolicy.RELIABLE))
+            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
+            assert spin_until(ex, lambda: pub.get_subscription_count() > 0
+                              and teach.get_subscription_count() > 0 and status, 60)
+            teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                                       TRUE, TeacherConfig(seed=5))
+            names = [f'joint_{i}' for i in range(1, 8)]
+            t0 = 1_700_000_000 * 10**9
+            streams = []
+            for k in range(4):
+                st, q = teacher.stream(k, t0)
+                streams.append((st, q))
+                t0 = int(st[-1]) + 10**9
+            for k in range(3):
+                publish_stream(ex, pub, teach, *streams[k], names)
+                assert spin_until(ex, lambda: status.get('demonstrations') == str(k + 1), 60)
+            # the 4th: half of it, then kill -9
+            st, q = streams[3]
+            teach.publish(Bool(data=True))
+            publish_stream_half = len(st) // 2
+            for i in range(publish_stream_half):
+                m = JointState()
+                m.header.stamp.sec, m.header.stamp.nanosec = int(st[i] // 10**9), int(st[i] % 10**9)
+                m.name = names
+                m.position = [float(x) for x in q[i]]
+                pub.publish(m)
+                time.sleep(0.001)
+            proc.send_signal(signal.SIGKILL)
+            proc.wait(timeout=10)
+            node.destroy_node()
+        saved = ParticlePosterior.load(state / 'posterior_less')
+        assert len(saved.records) == 3
+        assert len(list((state / 'demos').glob('demo_*.npz'))) == 3
+        # restart: 3 loaded, same posterior; then the 4th completes
+        proc = _start_node(state, env)
+        with ros_context() as (ctx, ex):
+            node = rclpy.create_node('persistence_client2', context=ctx)
+            ex.add_node(node)
+            got = {}
+            from std_msgs.msg import Float64MultiArray
+            node.create_subscription(Float64MultiArray, '/pref_learner/weights',
+                                     lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)
+            status = {}
+
+            def on_status2(msg):
+                for s_ in msg.status:
+                    status.update({kv.key: kv.value for kv in s_.values})
+            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status2,
+                                     LATCHED)
+            assert spin_until(ex, lambda: 'w' in got and status, 60)
+            assert status['demonstrations'] == '3'
+            np.testing.assert_allclose(got['w'], saved.summary().mean, atol=1e-12)
+            pub = node.create_publisher(JointState, 'joint_states',
+                                        QoSProfile(depth=100,
+                                                   reliability=ReliabilityPolicy.RELIABLE))
+            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
+            assert spin_until(ex, lambda: pub.get_subscription_count() > 0
+                              and teach.get_subscription_count() > 0, 30)
+            publish_stream(ex, pub, teach, *streams[3], names)
+            assert spin_until(ex, lambda: status.get('demonstrations') == '4', 60)
+            node.destroy_node()
+    finally:
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGINT)
+            try:
+                proc.wait(timeout=15)
+            except subprocess.TimeoutExpired:
+                proc.kill()
