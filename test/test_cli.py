@@ -1,0 +1,103 @@
+"""Bags and the pref-learner command line."""
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from pref_learner.bags import BagWriter, read_messages, read_stream
+from pref_learner.posterior import ParticlePosterior
+
+CLI = [sys.executable, '-m', 'pref_learner.cli']
+
+
+@pytest.mark.parametrize('storage', ['mcap', 'sqlite3'])
+def test_bag_round_trip_read_back_with_rosbags(tmp_path, storage):
+    # Reference: the rosbags library's own Reader and typestore deserialisation.
+    from rosbags.rosbag2 import Reader
+    from rosbags.typesys import Stores, get_typestore
+    path = tmp_path / 'b'
+    rng = np.random.default_rng(0)
+    rows = rng.normal(size=(20, 7))
+    with BagWriter(path, storage) as w:
+        w.write('/pref_learner/teaching', w.boolean(True), 5)
+        for i, r in enumerate(rows):
+            w.write('/joint_states', w.joint_state(10**9 + i * 2_000_000,
+                                                   [f'j{k}' for k in range(7)], r), 10 + i)
+        w.write('/pref_learner/weights', w.float_array([0.1, -0.2], [('feature', 2, 2)]), 40)
+        w.write('/pref_learner/teaching', w.boolean(False), 41)
+    ext = {'mcap': '.mcap', 'sqlite3': '.db3'}[storage]
+    assert [p.suffix for p in path.iterdir() if p.suffix != '.yaml'] == [ext]
+    assert (path / 'metadata.yaml').exists()
+    ts = get_typestore(Stores.ROS2_KILTED)
+    with Reader(path) as r:
+        msgs = [(c.topic, c.msgtype, t, ts.deserialize_cdr(raw, c.msgtype))
+                for c, t, raw in r.messages()]
+    js = [m for m in msgs if m[0] == '/joint_states']
+    assert len(js) == 20
+    for i, (_, typ, t, m) in enumerate(js):
+        assert typ == 'sensor_msgs/msg/JointState' and t == 10 + i
+        np.testing.assert_array_equal(m.position, rows[i])
+        assert m.header.stamp.sec == 1 and m.header.stamp.nanosec == i * 2_000_000
+    w = [m for m in msgs if m[0] == '/pref_learner/weights'][0][3]
+    assert list(w.data) == [0.1, -0.2] and w.layout.dim[0].label == 'feature'
+    ev = list(read_stream(path))
+    assert [e.kind for e in ev][:2] == ['teaching', 'joint_states'] and ev[-1].value is False
+    assert read_messages(path)[0][1] == 'std_msgs/msg/Bool'
+
+
+def run(args, **kw):
+    env = dict(os.environ)
+    return subprocess.run(CLI + args, capture_output=True, text=True, env=env, timeout=600, **kw)
+
+
+@pytest.fixture(scope='module')
+def demo_run(tmp_path_factory):
+    out = tmp_path_factory.mktemp('demo')
+    r = run(['demo', '--out', str(out), '--particles', '1500', '--alternatives', '300',
+             '--demonstrations', '8'])
+    return out, r
+
+
+def test_demo_learns_and_records(demo_run):
+    out, r = demo_run
+    assert r.returncode == 0, r.stderr[-2000:]
+    res = json.loads((out / 'demo_result.json').read_text())
+    assert res['n_demonstrations'] == 8
+    assert res['cosine']['less'] >= 0.9
+    assert 'tube_height' in r.stdout and 'session bag' in r.stdout
+
+
+def test_learn_reproduces_the_live_estimate(demo_run, tmp_path):
+    out, r = demo_run
+    res = json.loads((out / 'demo_result.json').read_text())
+    r2 = run(['learn', res['bag'], '--out', str(tmp_path / 'offline'), '--particles', '1500',
+              '--alternatives', '300'])
+    assert r2.returncode == 0, r2.stderr
+    for m in ('less', 'boltzmann'):
+        live = ParticlePosterior.load(Path(res['state_dir']) / f'posterior_{m}').summary()
+        off = ParticlePosterior.load(tmp_path / 'offline' / 'state' / f'posterior_{m}').summary()
+        np.testing.assert_allclose(off.mean, live.mean, atol=1e-9)
+    topics = {t for t, *_ in read_messages(tmp_path / 'offline' / 'estimates')}
+    assert '/pref_learner/less/weights' in topics and '/pref_learner/boltzmann/particles' in topics
+
+
+def test_bad_input_one_line_exit_2(tmp_path):
+    r = run(['learn', str(tmp_path / 'nope'), '--out', str(tmp_path / 'o')])
+    assert r.returncode == 2 and r.stderr.count('\n') == 1 and 'does not exist' in r.stderr
+    empty = tmp_path / 'nojs'
+    with BagWriter(empty) as w:
+        w.write('/x', w.boolean(True), 1)
+    r = run(['learn', str(empty), '--out', str(tmp_path / 'o2')])
+    assert r.returncode == 2 and 'no sensor_msgs/JointState' in r.stderr
+    assert not (tmp_path / 'o2').exists()
+    bag = tmp_path / 'ok'
+    with BagWriter(bag) as w:
+        w.write('/joint_states', w.joint_state(1, ['j'], [0.0]), 1)
+    r = run(['learn', str(bag), '--out', str(tmp_path / 'o3'), '--model', 'softmax'])
+    assert r.returncode == 2 and "model 'softmax' is unknown" in r.stderr
+    assert 'Traceback' not in r.stderr
