@@ -137,7 +137,8 @@ def _watch(args, truth, learner, teacher):
                 raise CliError(f'the learner node exited with code {learner.returncode}')
             done = min((int(v.get('demonstrations', 0)) for v in state['status'].values()),
                        default=0)
-            if state['demo_on'] is not None and bar is None and tqdm is not None:
+            if state['demo_on'] is not None and bar is None and tqdm is not None \
+                    and sys.stdout.isatty():
                 bar = tqdm(total=30, desc=f'demonstration {done + 1}', leave=False,
                            bar_format='{desc}: {bar} {elapsed}')
             if bar is not None:

@@ -155,6 +155,7 @@ class StepResult:
     latency_s: float
     diagnostics: dict
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
+    total_s: float = float('nan')     # including the rejuvenation moves
 
 
 def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n: int,
@@ -175,8 +176,11 @@ def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n
 class Learner:
     """The pipeline (see module docstring)."""
 
-    def __init__(self, config: LearnerConfig = LearnerConfig()):
+    def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None):
+        """``on_estimate(StepResult)`` is called as soon as a demonstration has been
+        weighed in, before the (slower) rejuvenation moves; the node publishes there."""
         self.config = config
+        self.on_estimate = on_estimate
         urdf = config.urdf or str(RobotModel.default().source)
         self.robot = RobotModel(urdf, joint_names=config.joint_names or None,
                                 tool_frame=config.tool_frame, clamp=config.clamp)
@@ -342,23 +346,29 @@ class Learner:
         index = len(self._demos)
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats = self.choice_set(q, index)
-        new, infos, summaries = {}, {}, {}
+        new, infos, rngs = {}, {}, {}
         for k, (m, post) in enumerate(self.posteriors.items()):
-            rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1,
-                                                                k + 1]))
-            new[m], infos[m] = post.update((feats, 0), rng)
+            rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
+                                                                    index + 1, k + 1]))
+            new[m], infos[m] = post.update((feats, 0), rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
         self.n_accepted = len(self._demos)
-        for m, p in self.posteriors.items():
-            summaries[m] = p.summary()
         rec = next(iter(self.posteriors.values())).records[-1]
         ls = rec.log_sim if rec.log_sim is not None else None
         diag = set_diagnostics(feats, 0, ls)
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
-        res = StepResult(index, summaries, infos, time.perf_counter() - t0, diag, paths)
+        res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
+                         time.perf_counter() - t0, diag, paths)
+        if self.on_estimate is not None and persist:
+            self.on_estimate(res)
+        for m, post in self.posteriors.items():   # pending rejuvenation moves, same rng
+            self.posteriors[m], _ = post.rejuvenate(rngs[m])
+        res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
+                         res.latency_s, diag, paths)
+        res.total_s = time.perf_counter() - t0
         self.last_result = res
         if persist and self.store is not None:
             self._save_posteriors()

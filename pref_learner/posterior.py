@@ -193,6 +193,7 @@ class ParticlePosterior:
     log_beta: Optional[np.ndarray] = None
     records: Tuple[ChoiceRecord, ...] = field(default_factory=tuple)
     step_size: float = 0.5
+    moves_pending: bool = False
 
     # ------------------------------------------------------------ creation
     @classmethod
@@ -285,10 +286,13 @@ class ParticlePosterior:
         return ChoiceRecord.build(x, chosen, self.config.bandwidth,
                                   with_similarity=self.config.model == 'less')
 
-    def update(self, record, rng: np.random.Generator):
+    def update(self, record, rng: np.random.Generator, move: bool = True):
         """Add one demonstration; returns ``(new_posterior, UpdateInfo)``.
 
         ``record`` is a :class:`ChoiceRecord` or a ``(features (K, d), chosen)`` pair.
+        With ``move=False`` the Metropolis-Hastings moves that follow a
+        resampling are left pending (``moves_pending``) so that the caller can
+        publish the reweighted estimate first and run :meth:`rejuvenate` next.
         """
         if not isinstance(record, ChoiceRecord):
             features, chosen = record
@@ -311,10 +315,20 @@ class ParticlePosterior:
         acc = float('nan')
         if ess0 < self.config.ess_min_ratio * n:
             new = new._resample(rng)
-            new, acc = new._rejuvenate(rng)
             resampled = True
+            if move:
+                new, acc = new._rejuvenate(rng)
+            else:
+                new = replace(new, moves_pending=True)
         info = UpdateInfo(new.ess, ess0, resampled, acc, len(new.records))
         return new, info
+
+    def rejuvenate(self, rng: np.random.Generator) -> Tuple['ParticlePosterior', float]:
+        """Run the moves left pending by ``update(move=False)``; (posterior, acceptance)."""
+        if not self.moves_pending:
+            return self, float('nan')
+        new, acc = self._rejuvenate(rng)
+        return replace(new, moves_pending=False), acc
 
     def _resample(self, rng):
         idx = systematic_resample(self.log_weights, rng)

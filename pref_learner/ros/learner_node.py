@@ -98,7 +98,7 @@ class LearnerNode(Node):
         self.last_warning = ''
         self._declare_parameters()
         self.config = self._config_from_parameters()
-        self.learner = Learner(self.config)
+        self.learner = Learner(self.config, on_estimate=self._on_estimate)
         for m in self.learner.messages:
             self.get_logger().info(m)
         self.declare_parameter('feature_names', list(self.learner.names), ParameterDescriptor(
@@ -351,6 +351,11 @@ class LearnerNode(Node):
         self.learner.config = cfg
         self.learner.recorder = Recorder(self.learner.robot.joint_names, cfg.segment_config())
         self.get_logger().info('segmentation settings updated')
+
+    def _on_estimate(self, r: StepResult):
+        """Publish as soon as the demonstration is weighed in (before rejuvenation)."""
+        self._latency = r.latency_s
+        self._publish_estimates()
 
     def _results(self, results):
         for r in results:
