@@ -209,7 +209,7 @@ def cmd_learn(args) -> int:
 # ---------------------------------------------------------------- bench
 def cmd_bench(args) -> int:
     from .bench import run_benchmarks
-    res = run_benchmarks(quick=args.quick)
+    res = run_benchmarks(quick=args.quick, parts=args.only or None)
     text = json.dumps(res, indent=1, sort_keys=True)
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)
@@ -249,7 +249,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     b = sub.add_parser('bench', help='benchmark figures as JSON')
     b.add_argument('--json', help='write the figures to this file')
-    b.add_argument('--quick', action='store_true', help='fewer repetitions')
+    b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
+    b.add_argument('--only', nargs='+', choices=['core', 'planner', 'node', 'demo', 'validate'],
+                   help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p
 

@@ -1,0 +1,316 @@
+"""Benchmarks behind ``pref-learner bench --json PATH`` (flat JSON of figures).
+
+Defaults of DESIGN.md §4: shipped 7-DoF arm, T = 64, d = 6, M = 500, N = 4,000.
+Node figures start a real learner node in a subprocess and talk to it over
+DDS on this machine. Nothing here is a pass/fail test; the figures are for
+people to read.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from typing import Callable, Dict, List
+
+import numpy as np
+
+TRUE = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
+
+
+def _median_ms(fn: Callable, reps: int) -> float:
+    ts = []
+    for _ in range(reps):
+        t = time.perf_counter()
+        fn()
+        ts.append(time.perf_counter() - t)
+    return float(np.median(ts) * 1e3)
+
+
+def _slope(xs, ys) -> float:
+    return float(np.polyfit(np.log(xs), np.log(ys), 1)[0])
+
+
+def core_benchmarks(quick: bool = False) -> Dict[str, float]:
+    import pinocchio as pin
+
+    from .demonstrations import Recorder, SegmentConfig
+    from .learner import Learner, LearnerConfig
+    from .posterior import ParticlePosterior, PosteriorConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    out: Dict[str, float] = {}
+    L = Learner(LearnerConfig(model='less'))
+    teacher = SimulatedTeacher(L, TRUE, TeacherConfig())
+    n_sets = 8 if quick else 12
+    sets, qs = [], []
+    for k in range(n_sets):
+        _, path = teacher.choose(k)
+        allq, f = L.choice_set(path, k)
+        sets.append(f)
+        qs.append(allq)
+
+    # --- posterior updates (issue: inference core)
+    for model in ('boltzmann', 'less'):
+        upd, mov = [], []
+        for seed in range(2 if quick else 4):
+            rng = np.random.default_rng(seed)
+            post = ParticlePosterior.create(PosteriorConfig(n_particles=4000, model=model), 6,
+                                            rng)
+            for f in sets:
+                t = time.perf_counter()
+                post, _ = post.update((f, 0), rng, move=False)
+                upd.append(time.perf_counter() - t)
+                t = time.perf_counter()
+                post, _ = post.rejuvenate(rng)
+                mov.append(time.perf_counter() - t)
+        tot = np.array(upd) + np.array(mov)
+        out[f'posterior_update_ms_p95_{model}'] = float(np.percentile(upd, 95) * 1e3)
+        out[f'posterior_update_ms_median_{model}'] = float(np.median(upd) * 1e3)
+        out[f'posterior_rejuvenation_ms_p95_{model}'] = float(np.percentile(mov, 95) * 1e3)
+        out[f'posterior_update_with_moves_ms_p95_{model}'] = float(np.percentile(tot, 95) * 1e3)
+
+    rng = np.random.default_rng(0)
+    cfg = dict(model='less', ess_min_ratio=0.0)
+    f0 = sets[0]
+    ns = [1000, 2000, 4000, 8000]
+    tn = []
+    for n in ns:
+        post = ParticlePosterior.create(PosteriorConfig(n_particles=n, **cfg), 6, rng)
+        rec = post.prepare(f0, 0)
+        tn.append(_median_ms(lambda: post.update(rec, rng), 5 if quick else 15))
+    out['posterior_update_scaling_exponent_particles'] = _slope(ns, tn)
+    ms = [125, 250, 500, 1000]
+    tm = []
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=4000, **cfg), 6, rng)
+    for m in ms:
+        f = rng.normal(size=(m + 1, 6))
+        rec = post.prepare(f, 0)
+        tm.append(_median_ms(lambda: post.update(rec, rng), 5 if quick else 15))
+    out['posterior_update_scaling_exponent_alternatives'] = _slope(ms, tm)
+
+    # --- features and kinematics (issue: robot model and features)
+    q = qs[0][1:]
+    reps = 5 if quick else 15
+    out['features_ms'] = _median_ms(lambda: L.features.raw(q), reps)
+    robot = L.robot
+    qp = robot.to_pinocchio(q[0, 10])
+    n_fk = 20000
+    t = time.perf_counter()
+    for _ in range(n_fk):
+        pin.forwardKinematics(robot.model, robot.data, qp)
+    fk_us = (time.perf_counter() - t) / n_fk * 1e6
+    out['pinocchio_fk_us'] = fk_us
+    per_wp_us = out['features_ms'] * 1e3 / (q.shape[0] * q.shape[1])
+    out['features_us_per_waypoint'] = per_wp_us
+    out['features_fk_ratio'] = per_wp_us / fk_us
+
+    # --- alternatives (issue: demonstrations and alternative sets)
+    _, path = teacher.choose(0)
+    out['alternatives_ms'] = _median_ms(lambda: L.choice_set(path, 0), reps)
+    rec = Recorder(robot.joint_names, SegmentConfig(mode='motion'))
+    names = list(robot.joint_names) + ['finger_left_joint', 'finger_right_joint']
+    n = 20000 if quick else 100000
+    data = np.random.default_rng(1).normal(0, 1e-3, (n, 9))
+    t = time.perf_counter()
+    for i in range(n):
+        rec.feed(i * 1_000_000, names, data[i])
+    out['segmentation_us_per_sample'] = (time.perf_counter() - t) / n * 1e6
+    return out
+
+
+# ---------------------------------------------------------------- node benchmarks
+def _rss_mb(pid: int) -> float:
+    with open(f'/proc/{pid}/status') as f:
+        for line in f:
+            if line.startswith('VmRSS:'):
+                return int(line.split()[1]) / 1024.0
+    return float('nan')
+
+
+def node_benchmarks(quick: bool = False) -> Dict[str, float]:
+    import rclpy
+    from diagnostic_msgs.msg import DiagnosticArray
+    from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
+    from sensor_msgs.msg import JointState
+    from std_msgs.msg import Bool, Float64MultiArray
+    from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+
+    from .learner import Learner, LearnerConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    out: Dict[str, float] = {}
+    env = dict(os.environ)
+    proc = subprocess.Popen([sys.executable, '-m', 'pref_learner.ros.learner_node',
+                             '--ros-args', '-p', 'model:=less', '--log-level', 'error'],
+                            env=env)
+    latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                         durability=DurabilityPolicy.TRANSIENT_LOCAL)
+    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)), TRUE,
+                               TeacherConfig())
+    names = list(teacher.learner.robot.joint_names)
+    try:
+        with rclpy.init():
+            node = rclpy.create_node('pref_learner_bench')
+            state = {'w': None, 'w_t': 0.0, 'status': {}}
+
+            def on_w(m):
+                state['w'] = np.array(m.data)
+                state['w_t'] = time.perf_counter()
+
+            def on_status(m):
+                for st in m.status:
+                    state['status'] = {kv.key: kv.value for kv in st.values}
+            node.create_subscription(Float64MultiArray, '/pref_learner/weights', on_w, latched)
+            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, latched)
+            pub = node.create_publisher(JointState, 'joint_states',
+                                        QoSProfile(depth=100,
+                                                   reliability=ReliabilityPolicy.RELIABLE))
+            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
+            traj = node.create_publisher(JointTrajectory, '/pref_learner/demonstration', 10)
+
+            def spin_until(pred, timeout):
+                end = time.time() + timeout
+                while time.time() < end and not pred():
+                    rclpy.spin_once(node, timeout_sec=0.01)
+                return pred()
+            spin_until(lambda: pub.get_subscription_count() and teach.get_subscription_count()
+                       and state['status'], 60)
+
+            def n_demos():
+                return int(state['status'].get('demonstrations', 0))
+
+            # -- latency from teaching=false to new weights, 1 kHz samples
+            lat = []
+            stamp0 = time.time_ns()
+            n_lat = 5 if quick else 12
+            published = 0
+            for k in range(n_lat):
+                stamps, q = teacher.stream(k, stamp0)
+                stamp0 = int(stamps[-1]) + 10**9
+                teach.publish(Bool(data=True))
+                t_next = time.perf_counter()
+                for st, row in zip(stamps[::2], q[::2]):      # the stream at 1 kHz ... 
+                    m = JointState()
+                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
+                    m.name = names
+                    m.position = row.tolist()
+                    pub.publish(m)
+                    published += 1
+                    t_next += 0.001
+                    d = t_next - time.perf_counter()
+                    if d > 0:
+                        time.sleep(d)
+                rclpy.spin_once(node, timeout_sec=0.0)
+                before = n_demos()
+                t0 = time.perf_counter()
+                state['w_t'] = 0.0
+                teach.publish(Bool(data=False))
+                spin_until(lambda: state['w_t'] > t0, 30)
+                lat.append(state['w_t'] - t0)
+                spin_until(lambda: n_demos() > before, 30)
+            out['node_update_latency_ms_p95'] = float(np.percentile(lat, 95) * 1e3)
+            out['node_update_latency_ms_median'] = float(np.median(lat) * 1e3)
+
+            # -- ingest at 1 kHz while updates run
+            dur = 10.0 if quick else 60.0
+            spin_until(lambda: False, 1.0)
+            before = int(state['status'].get('samples', 0))
+            sent = 0
+            t_start = time.perf_counter()
+            k = 100
+            while time.perf_counter() - t_start < dur:
+                stamps, q = teacher.stream(k, stamp0)
+                stamp0 = int(stamps[-1]) + 10**9
+                k += 1
+                teach.publish(Bool(data=True))
+                t_next = time.perf_counter()
+                for st, row in zip(stamps[::2], q[::2]):
+                    m = JointState()
+                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
+                    m.name = names
+                    m.position = row.tolist()
+                    pub.publish(m)
+                    sent += 1
+                    t_next += 0.001
+                    d = t_next - time.perf_counter()
+                    if d > 0:
+                        time.sleep(d)
+                    if sent % 200 == 0:
+                        rclpy.spin_once(node, timeout_sec=0.0)
+                teach.publish(Bool(data=False))
+            spin_until(lambda: int(state['status'].get('samples', 0)) - before >= sent, 20)
+            got = int(state['status'].get('samples', 0)) - before
+            out['node_ingest_samples_sent'] = sent
+            out['node_ingest_drop_fraction_1khz'] = max(0.0, 1.0 - got / sent)
+
+            # -- memory over many demonstrations fed back to back
+            n_rss = 40 if quick else 200
+            warm = 10
+            rss0 = None
+            start = n_demos()
+            for i in range(n_rss):
+                _, path = teacher.choose(1000 + i)
+                msg = JointTrajectory()
+                msg.joint_names = names
+                for j, row in enumerate(path):
+                    p = JointTrajectoryPoint()
+                    p.positions = row.tolist()
+                    tt = 3.0 * j / (len(path) - 1)
+                    p.time_from_start.sec, p.time_from_start.nanosec = int(tt), \
+                        int((tt % 1) * 1e9)
+                    msg.points.append(p)
+                traj.publish(msg)
+                spin_until(lambda: n_demos() >= start + i + 1, 120)
+                if i + 1 == warm:
+                    rss0 = _rss_mb(proc.pid)
+            out['node_rss_growth_mb'] = _rss_mb(proc.pid) - rss0
+            out['node_rss_demonstrations'] = n_rss
+            node.destroy_node()
+    finally:
+        proc.send_signal(signal.SIGINT)
+        try:
+            proc.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+    return out
+
+
+def demo_benchmark(quick: bool = False) -> Dict[str, float]:
+    import tempfile
+    t = time.perf_counter()
+    with tempfile.TemporaryDirectory() as d:
+        args = [sys.executable, '-m', 'pref_learner.cli', 'demo', '--out', d]
+        if quick:
+            args += ['--demonstrations', '3']
+        r = subprocess.run(args, capture_output=True, text=True)
+    return {'demo_wall_s': time.perf_counter() - t, 'demo_exit_code': r.returncode}
+
+
+def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, float]:
+    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
+    parts = parts or ['core', 'planner', 'node', 'demo', 'validate']
+    res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
+    if 'core' in parts:
+        res.update(core_benchmarks(quick))
+    if 'planner' in parts:
+        try:
+            from .planner import plan_benchmark
+        except ImportError:
+            pass
+        else:
+            res.update(plan_benchmark(quick))
+    if 'node' in parts:
+        res.update(node_benchmarks(quick))
+    if 'demo' in parts:
+        res.update(demo_benchmark(quick))
+    if 'validate' in parts:
+        try:
+            from .validate import run_studies
+        except ImportError:
+            pass
+        else:
+            res.update(run_studies(quick=True, out_dir=None)['figures'])
+    return res
