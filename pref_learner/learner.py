@@ -53,6 +53,8 @@ class LearnerConfig:
     n_alternatives: int = 500
     mix_smooth: float = 0.8
     mix_perturb: float = 0.2
+    mix_planner: float = 0.0            # share of alternatives optimised under random weights
+    planner_jobs: int = 1               # worker processes for planner alternatives
     noise_scale: float = 0.08
     n_waypoints: int = 64
     resample: str = 'arc_length'
@@ -106,9 +108,10 @@ class LearnerConfig:
         return PrepareConfig(self.n_waypoints, self.resample, self.lowpass_hz, self.smooth)
 
     def sampler_config(self) -> SamplerConfig:
-        return SamplerConfig(self.n_alternatives, {'smooth': self.mix_smooth,
-                                                   'perturb': self.mix_perturb},
-                             self.noise_scale)
+        mix = {'smooth': self.mix_smooth, 'perturb': self.mix_perturb}
+        if self.mix_planner > 0:
+            mix['planner'] = self.mix_planner
+        return SamplerConfig(self.n_alternatives, mix, self.noise_scale)
 
     def posterior_config(self, model: str) -> PosteriorConfig:
         br = (self.beta_min, self.beta_max) if self.beta_min > 0 else None
@@ -186,8 +189,6 @@ class Learner:
                                 tool_frame=config.tool_frame, clamp=config.clamp)
         fpath = config.features or str(default_features_path())
         fs = FeatureSet.from_yaml(fpath, self.robot)
-        self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
-                                          config.sampler_config(), n_features=fs.d)
         if fs.scales is None:
             tasks = self._tasks(fpath)
             scales = calibrate_scales(fs, AlternativeSampler(self.robot, config.n_waypoints,
@@ -197,6 +198,18 @@ class Learner:
                                       config.smooth)
             fs = fs.with_scales(scales)
         self.features = fs
+        planner_fn = None
+        if config.mix_planner > 0:
+            from .planner import PlannerConfig, TrajectoryPlanner, planner_alternatives
+            planner = TrajectoryPlanner(fs, PlannerConfig(config.n_waypoints, restarts=0,
+                                                          max_iter=30))
+
+            def planner_fn(start, goal, weights, rng):
+                return planner_alternatives(planner, start, goal, weights, rng,
+                                            n_jobs=config.planner_jobs)
+        self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
+                                          config.sampler_config(), planner=planner_fn,
+                                          n_features=fs.d)
         self.recorder = Recorder(self.robot.joint_names, config.segment_config())
         self.prepare_config = config.prepare_config()
         self.store = StateStore(config.state_dir) if config.state_dir else None

@@ -1,0 +1,179 @@
+"""ROS 2 planner node: turns the learner's current estimate into trajectories."""
+
+from __future__ import annotations
+
+import collections
+import os
+import threading
+
+import numpy as np
+import rclpy
+from builtin_interfaces.msg import Duration
+from geometry_msgs.msg import Point
+from rcl_interfaces.msg import ParameterDescriptor
+from rclpy.node import Node
+from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
+from std_msgs.msg import Float64MultiArray
+from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+from visualization_msgs.msg import Marker, MarkerArray
+
+from ..learner import Learner, LearnerConfig
+from ..planner import PlannerConfig, TrajectoryPlanner, time_parametrize
+
+LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                     durability=DurabilityPolicy.TRANSIENT_LOCAL)
+
+
+class PlannerNode(Node):
+    """Subscribes to weights (and particles), plans on ``~/request``, publishes ``~/trajectory``."""
+
+    def __init__(self, **kwargs):
+        super().__init__('pref_planner', **kwargs)
+        params = {
+            'weights_topic': ('/pref_learner/weights', 'the learner\'s mean weights'),
+            'particles_topic': ('/pref_learner/particles', 'the learner\'s particles'),
+            'risk': ('mean', 'mean: expected reward; cvar: mean of the worst alpha tail'),
+            'alpha': (0.1, 'tail fraction for risk cvar'),
+            'smoothness': (0.01, 'weight of the acceleration term'),
+            'restarts': (1, 'seeded restarts besides the straight line'),
+            'n_waypoints': (64, 'waypoints per plan'),
+            'max_acceleration': (2.0, 'joint acceleration limit for timing, rad/s^2'),
+            'velocity_scale': (0.5, 'fraction of the URDF velocity limits used for timing'),
+            'features': ('', 'feature YAML (as the learner)'),
+            'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
+            'seed': (0, 'seed of the restarts'),
+        }
+        for k, (v, d) in params.items():
+            self.declare_parameter(k, v, ParameterDescriptor(description=d, read_only=True))
+        g = lambda k: self.get_parameter(k).value  # noqa: E731
+        L = Learner(LearnerConfig(features=g('features'), n_particles=1, n_alternatives=1,
+                                  calibration_seed=g('calibration_seed')))
+        self.robot = L.robot
+        self.planner = TrajectoryPlanner(L.features, PlannerConfig(
+            n_waypoints=g('n_waypoints'), smoothness=g('smoothness'), restarts=g('restarts'),
+            risk=g('risk'), alpha=g('alpha')))
+        self.rng = np.random.default_rng(g('seed'))
+        self.weights = None
+        self.particles = None
+        self.counters = collections.Counter()
+        self.last_warning = ''
+        self.create_subscription(Float64MultiArray, g('weights_topic'), self._on_weights, LATCHED)
+        self.create_subscription(Float64MultiArray, g('particles_topic'), self._on_particles,
+                                 LATCHED)
+        self.create_subscription(JointTrajectory, '~/request', self._on_request, 10)
+        self.traj_pub = self.create_publisher(JointTrajectory, '~/trajectory', 10)
+        self.marker_pub = self.create_publisher(MarkerArray, '~/markers', LATCHED)
+        self._queue = collections.deque(maxlen=16)
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self._thread.start()
+
+    def _warn(self, key, text):
+        self.counters[key] += 1
+        self.last_warning = text
+        self.get_logger().warning(text)
+
+    def _on_weights(self, msg):
+        self.weights = np.array(msg.data)
+
+    def _on_particles(self, msg):
+        dims = msg.layout.dim
+        if len(dims) == 2:
+            arr = np.array(msg.data).reshape(dims[0].size, dims[1].size)
+            self.particles = arr
+
+    def _on_request(self, msg):
+        self._queue.append(msg)
+        self._wake.set()
+
+    def _run(self):
+        while not self._stop.is_set():
+            if not self._queue:
+                self._wake.wait(0.1)
+                self._wake.clear()
+                continue
+            msg = self._queue.popleft()
+            try:
+                self._plan(msg)
+            except ValueError as exc:
+                self._warn('bad_request', f'planning request refused: {exc}')
+            except Exception as exc:  # keep running whatever one request does
+                self._warn('internal_error', f'{type(exc).__name__}: {exc}')
+
+    def _plan(self, msg: JointTrajectory):
+        if len(msg.points) != 2:
+            raise ValueError(f'a request needs exactly 2 points (start, goal), got '
+                             f'{len(msg.points)}')
+        names = list(msg.joint_names)
+        missing = [j for j in self.robot.joint_names if j not in names]
+        if missing:
+            raise ValueError(f'request lacks joints {missing}')
+        idx = [names.index(j) for j in self.robot.joint_names]
+        ends = []
+        for p in msg.points:
+            if len(p.positions) != len(names):
+                raise ValueError(f'a request point has {len(p.positions)} positions for '
+                                 f'{len(names)} joint names')
+            ends.append(np.array([p.positions[i] for i in idx], dtype=np.float64))
+        if self.weights is None:
+            raise ValueError('no weights received yet')
+        d = self.planner.features.d
+        if self.planner.config.risk == 'cvar' and self.particles is not None:
+            parts = self.particles
+            theta = parts[:, :d]
+            lw = parts[:, -1]
+            pw = np.exp(lw - lw.max())
+            res = self.planner.plan(theta, ends[0], ends[1], self.rng, particle_weights=pw)
+        else:
+            res = self.planner.plan(self.weights, ends[0], ends[1], self.rng)
+        vmax = self.robot.velocity_limit * self.get_parameter('velocity_scale').value
+        amax = np.full(self.robot.n, self.get_parameter('max_acceleration').value)
+        t = time_parametrize(res.q, vmax, amax)
+        out = JointTrajectory()
+        out.header.stamp = self.get_clock().now().to_msg()
+        out.joint_names = list(self.robot.joint_names)
+        for ti, qi in zip(t, res.q):
+            p = JointTrajectoryPoint()
+            p.positions = qi.tolist()
+            p.time_from_start = Duration(sec=int(ti), nanosec=int((ti % 1.0) * 1e9))
+            out.points.append(p)
+        self.traj_pub.publish(out)
+        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
+        mk = Marker()
+        mk.header.frame_id = 'base_link'
+        mk.ns = 'plan'
+        mk.type = Marker.LINE_STRIP
+        mk.scale.x = 0.01
+        mk.color.a, mk.color.r, mk.color.g = 1.0, 0.9, 0.5
+        mk.pose.orientation.w = 1.0
+        mk.points = [Point(x=float(a), y=float(b), z=float(c)) for a, b, c in tool]
+        self.marker_pub.publish(MarkerArray(markers=[mk]))
+        self.counters['plans'] += 1
+
+    def destroy_node(self):
+        self._stop.set()
+        self._wake.set()
+        if getattr(self, '_thread', None) is not None:
+            self._thread.join(timeout=10.0)
+        super().destroy_node()
+
+
+def main(args=None):
+    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
+    try:
+        with rclpy.init(args=args):
+            node = PlannerNode()
+            ex = SingleThreadedExecutor()
+            ex.add_node(node)
+            try:
+                ex.spin()
+            finally:
+                node.destroy_node()
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+
+
+if __name__ == '__main__':
+    main()
