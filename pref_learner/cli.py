@@ -218,6 +218,60 @@ def cmd_bench(args) -> int:
     return 0
 
 
+# ---------------------------------------------------------------- validate
+def cmd_validate(args) -> int:
+    from .validate import run_studies
+    res = run_studies(quick=args.quick, out_dir=args.out)
+    text = json.dumps(res['figures'], indent=1, sort_keys=True)
+    if args.json:
+        Path(args.json).parent.mkdir(parents=True, exist_ok=True)
+        Path(args.json).write_text(text)
+    print(text)
+    print(f'studies written to {args.out}')
+    return 0
+
+
+# ---------------------------------------------------------------- report
+def _state_from(src: Path, tmp: Path, args) -> Path:
+    """A state directory: ``src`` itself, or learned offline from a bag into ``tmp``."""
+    if (src / 'manifest.json').exists():
+        return src
+    if (src / 'metadata.yaml').exists():
+        ns = argparse.Namespace(bag=str(src), out=str(tmp), model=args.model, seed=args.seed,
+                                particles=args.particles, alternatives=args.alternatives,
+                                beta=args.beta)
+        cmd_learn(ns)
+        return tmp / 'state'
+    raise CliError(f'{src} is neither a state directory (manifest.json) nor a rosbag2 bag '
+                   '(metadata.yaml)')
+
+
+def cmd_report(args) -> int:
+    import tempfile
+    from .report import write_report
+    src = Path(args.source)
+    if not src.exists():
+        raise CliError(f'{src} does not exist')
+    with tempfile.TemporaryDirectory() as tmp:
+        state = _state_from(src, Path(tmp) / 'learned', args)
+        path = write_report(state, Path(args.out))
+    print(f'report written to {path}')
+    return 0
+
+
+def cmd_compare(args) -> int:
+    from .compare import compare_models
+    src = Path(args.state)
+    if not (src / 'manifest.json').exists():
+        raise CliError(f'{src} is not a state directory (no manifest.json)')
+    res = compare_models(src, n_sets=args.sets, n_particles=args.particles,
+                         n_alternatives=args.alternatives)
+    if args.json:
+        Path(args.json).write_text(json.dumps(res, indent=1))
+    print(res['text'])
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog='pref-learner', description=(
         'Learn what a person teaching a robot arm cares about (weights over task features).'))
@@ -246,6 +300,31 @@ def build_parser() -> argparse.ArgumentParser:
     lrn.add_argument('--beta', type=float, default=5.0)
     lrn.add_argument('--seed', type=int, default=0)
     lrn.set_defaults(func=cmd_learn)
+
+    v = sub.add_parser('validate', help='the validation studies of the two choice models')
+    v.add_argument('--out', default='out/validate', help='directory for JSON and PNG files')
+    v.add_argument('--json', help='also write the summary figures to this file')
+    v.add_argument('--quick', action='store_true', help='small sizes')
+    v.set_defaults(func=cmd_validate)
+
+    r = sub.add_parser('report', help='HTML report of a state directory or a bag')
+    r.add_argument('source', help='state directory, or a bag to learn from first')
+    r.add_argument('--out', required=True, help='directory for report.html and PNGs')
+    r.add_argument('--model', default='both')
+    r.add_argument('--particles', type=int, default=4000)
+    r.add_argument('--alternatives', type=int, default=500)
+    r.add_argument('--beta', type=float, default=5.0)
+    r.add_argument('--seed', type=int, default=0)
+    r.set_defaults(func=cmd_report)
+
+    c = sub.add_parser('compare', help='which choice model explains these demonstrations')
+    c.add_argument('state', help='state directory')
+    c.add_argument('--sets', type=int, default=10, help='redrawn alternative sets')
+    c.add_argument('--particles', type=int, default=2000)
+    c.add_argument('--alternatives', type=int, default=0,
+                   help='alternatives per demonstration (0: as stored)')
+    c.add_argument('--json', help='write the numbers to this file')
+    c.set_defaults(func=cmd_compare)
 
     b = sub.add_parser('bench', help='benchmark figures as JSON')
     b.add_argument('--json', help='write the figures to this file')
