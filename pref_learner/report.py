@@ -1,0 +1,190 @@
+"""HTML report with PNG plots, from a state directory's stored files only.
+
+Plots: each weight's posterior mean and 90% band after each demonstration;
+final marginals per feature; for each demonstration its place in its
+alternative set's feature density (the dense/sparse diagnostic); Boltzmann
+and LESS side by side when both ran. Tables: final estimates and rejected
+demonstrations with their reasons.
+"""
+
+from __future__ import annotations
+
+import html
+import json
+from pathlib import Path
+from typing import Dict, List
+
+import numpy as np
+
+from .choice import log_similarity_sums
+from .posterior import ParticlePosterior
+from .store import StateStore
+
+COLOURS = {'boltzmann': '#1f77b4', 'less': '#d62728'}
+
+
+def _plt():
+    import matplotlib
+    matplotlib.use('Agg')
+    import matplotlib.pyplot as plt
+    return plt
+
+
+def load_state(state_dir) -> dict:
+    store = StateStore(state_dir)
+    try:
+        manifest = store.read_manifest()
+    except ValueError as exc:
+        raise ValueError(f'state directory {state_dir} is unreadable: {exc}') from None
+    if manifest is None:
+        raise ValueError(f'state directory {state_dir} has no manifest.json')
+    posts = {}
+    for m in manifest['models']:
+        try:
+            posts[m] = ParticlePosterior.load(store.posterior_path(m))
+        except (OSError, ValueError, KeyError) as exc:
+            raise ValueError(f'posterior of model {m} in {state_dir} is unreadable: {exc}') \
+                from None
+    return {'manifest': manifest, 'posteriors': posts, 'history': store.read_history(),
+            'rejections': store.read_rejections()}
+
+
+def _plot_history(names, history, models, path):
+    plt = _plt()
+    d = len(names)
+    cols = 3
+    rows = int(np.ceil(d / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(4 * cols, 2.6 * rows), squeeze=False)
+    for j, name in enumerate(names):
+        ax = axes[j // cols][j % cols]
+        for m in models:
+            xs = [h['index'] + 1 for h in history if m in h['summaries']]
+            mean = [h['summaries'][m]['mean'][j] for h in history if m in h['summaries']]
+            lo = [h['summaries'][m]['ci_low'][j] for h in history if m in h['summaries']]
+            hi = [h['summaries'][m]['ci_high'][j] for h in history if m in h['summaries']]
+            ax.plot(xs, mean, 'o-', color=COLOURS.get(m), label=m, ms=3)
+            ax.fill_between(xs, lo, hi, color=COLOURS.get(m), alpha=0.15)
+        ax.axhline(0, color='k', lw=0.5)
+        ax.set_title(name, fontsize=9)
+        ax.set_xlabel('demonstrations', fontsize=8)
+        ax.set_ylim(-1.05, 1.05)
+    for k in range(d, rows * cols):
+        axes[k // cols][k % cols].axis('off')
+    axes[0][0].legend(fontsize=8)
+    fig.suptitle('posterior mean and 90% interval of each weight')
+    fig.tight_layout()
+    fig.savefig(path, dpi=80)
+    plt.close(fig)
+
+
+def _plot_marginals(names, posts, path):
+    plt = _plt()
+    d = len(names)
+    cols = 3
+    rows = int(np.ceil(d / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(4 * cols, 2.4 * rows), squeeze=False)
+    for j, name in enumerate(names):
+        ax = axes[j // cols][j % cols]
+        for m, p in posts.items():
+            ax.hist(p.theta[:, j], bins=40, range=(-1, 1), weights=p.weights, alpha=0.5,
+                    color=COLOURS.get(m), label=m)
+        ax.set_title(name, fontsize=9)
+    for k in range(d, rows * cols):
+        axes[k // cols][k % cols].axis('off')
+    axes[0][0].legend(fontsize=8)
+    fig.suptitle('final posterior marginals')
+    fig.tight_layout()
+    fig.savefig(path, dpi=80)
+    plt.close(fig)
+
+
+def _plot_density(post, path):
+    plt = _plt()
+    recs = post.records
+    n = len(recs)
+    cols = min(4, max(n, 1))
+    rows = int(np.ceil(max(n, 1) / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.2 * cols, 2.4 * rows), squeeze=False)
+    for i, r in enumerate(recs):
+        ax = axes[i // cols][i % cols]
+        ls = r.log_sim if r.log_sim is not None else log_similarity_sums(r.features)
+        rel = ls - np.median(ls)
+        ax.hist(rel, bins=30, color='0.6')
+        ax.axvline(rel[r.chosen], color='k', lw=2)
+        ax.set_title(f'demonstration {i + 1}', fontsize=9)
+        ax.set_xlabel('log density rel. to median', fontsize=8)
+    for k in range(n, rows * cols):
+        axes[k // cols][k % cols].axis('off')
+    fig.suptitle('each demonstration (black) within its set\'s feature density')
+    fig.tight_layout()
+    fig.savefig(path, dpi=80)
+    plt.close(fig)
+
+
+def _table(names, summaries: Dict[str, dict]) -> str:
+    head = '<tr><th>feature</th>' + ''.join(
+        f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'
+        for m in summaries) + '</tr>'
+    rows = []
+    for j, n in enumerate(names):
+        cells = ''.join(
+            f'<td>{s["mean"][j]:.4f}</td><td>{s["std"][j]:.4f}</td>'
+            f'<td>{s["ci_low"][j]:.4f}</td><td>{s["ci_high"][j]:.4f}</td>'
+            for s in summaries.values())
+        rows.append(f'<tr><td>{html.escape(n)}</td>{cells}</tr>')
+    return '<table id="final">' + head + ''.join(rows) + '</table>'
+
+
+def write_report(state_dir, out_dir) -> Path:
+    """Write ``report.html`` and its PNGs into ``out_dir``; returns the HTML path."""
+    st = load_state(state_dir)
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    names = st['manifest']['feature_names']
+    posts = st['posteriors']
+    models = list(posts)
+    pngs = []
+    _plot_history(names, st['history'], models, out / 'weights_history.png')
+    pngs.append(('Weights after each demonstration', 'weights_history.png'))
+    _plot_marginals(names, posts, out / 'marginals.png')
+    pngs.append(('Final marginals', 'marginals.png'))
+    first = posts[models[0]]
+    if first.records:
+        _plot_density(first, out / 'set_density.png')
+        pngs.append(('Demonstrations within their alternative sets', 'set_density.png'))
+    sums = {m: p.summary().to_dict() for m, p in posts.items()}
+    rej = st['rejections']
+    rej_rows = ''.join(f'<tr><td>{i + 1}</td><td>{html.escape(r["reason"])}</td>'
+                       f'<td>{html.escape(r.get("detail", ""))}</td></tr>'
+                       for i, r in enumerate(rej)) or '<tr><td colspan="3">none</td></tr>'
+    diag_rows = ''.join(
+        f'<tr><td>{h["index"] + 1}</td><td>{h["diagnostics"]["relative_density"]:.3g}</td>'
+        f'<td>{"sparse" if h["diagnostics"]["sparse"] else ("dense" if h["diagnostics"]["dense"] else "typical")}'
+        f'</td></tr>' for h in st['history'])
+    meta = {m: {'ess': f'{s["ess"]:.0f}', 'concentration': f'{s["concentration"]:.4f}',
+                'demonstrations': s['n_demonstrations']} for m, s in sums.items()}
+    imgs = ''.join(f'<h2>{html.escape(t)}</h2><img src="{f}" alt="{html.escape(t)}">'
+                   for t, f in pngs)
+    doc = f"""<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>pref_learner report</title>
+<style>body{{font-family:sans-serif;margin:2em;max-width:1100px}}
+table{{border-collapse:collapse;margin:1em 0}}td,th{{border:1px solid #bbb;padding:3px 8px;
+text-align:right}}img{{max-width:100%}}</style></head><body>
+<h1>pref_learner report</h1>
+<p>State directory: <code>{html.escape(str(state_dir))}</code>. Models: {', '.join(models)}.
+Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
+<p>Per model: {html.escape(json.dumps(meta))}</p>
+<h2>Final estimate (unit-norm weights; 90% interval = 5% to 95%)</h2>
+{_table(names, sums)}
+{imgs}
+<h2>Demonstrations in their sets</h2>
+<table id="density"><tr><th>demonstration</th><th>density / median</th><th>region</th></tr>
+{diag_rows}</table>
+<h2>Rejected demonstrations</h2>
+<table id="rejected"><tr><th>#</th><th>reason</th><th>detail</th></tr>{rej_rows}</table>
+<p>A learned preference is not a safety function. See the README's safety section.</p>
+</body></html>
+"""
+    path = out / 'report.html'
+    path.write_text(doc)
+    return path

@@ -1,0 +1,77 @@
+"""Report and model comparison from a state directory."""
+
+import re
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from pref_learner.learner import Learner, LearnerConfig
+from pref_learner.posterior import ParticlePosterior
+from pref_learner.report import write_report
+from pref_learner.sim import SimulatedTeacher, TeacherConfig
+
+TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+
+
+@pytest.fixture(scope='module')
+def state(tmp_path_factory):
+    d = tmp_path_factory.mktemp('state')
+    L = Learner(LearnerConfig(model='both', state_dir=str(d), n_particles=800,
+                              n_alternatives=150))
+    SimulatedTeacher(L, TRUE, TeacherConfig(seed=8)).feed_session(L, 4)
+    L.set_teaching(True)
+    L.feed(1, L.robot.joint_names, np.zeros(7))
+    L.set_teaching(False)                                   # a rejected one
+    return d
+
+
+def test_report_renders_and_tables_match_stored_summaries(state, tmp_path):
+    path = write_report(state, tmp_path / 'rep')
+    text = path.read_text()
+    pngs = sorted(p.name for p in (tmp_path / 'rep').glob('*.png'))
+    assert len(pngs) == 3
+    for p in pngs:
+        assert (tmp_path / 'rep' / p).stat().st_size > 5000
+        assert f'src="{p}"' in text
+    table = re.search(r'<table id="final">(.*?)</table>', text, re.S).group(1)
+    rows = re.findall(r'<tr><td>([a-z_]+)</td>(.*?)</tr>', table)
+    assert len(rows) == 6
+    sums = {m: ParticlePosterior.load(state / f'posterior_{m}').summary()
+            for m in ('boltzmann', 'less')}
+    for j, (name, cells) in enumerate(rows):
+        vals = [float(v) for v in re.findall(r'<td>(-?[0-9.]+)</td>', cells)]
+        for k, m in enumerate(('boltzmann', 'less')):
+            s = sums[m]
+            np.testing.assert_allclose(vals[4 * k:4 * k + 4],
+                                       [s.mean[j], s.std[j], s.ci_low[j], s.ci_high[j]],
+                                       atol=5e-5)
+    assert 'too_short' in re.search(r'<table id="rejected">(.*?)</table>', text, re.S).group(1)
+
+
+def test_compare_prints_a_verdict(state, tmp_path):
+    r = subprocess.run([sys.executable, '-m', 'pref_learner.cli', 'compare', str(state),
+                        '--sets', '2', '--particles', '500', '--json',
+                        str(tmp_path / 'c.json')], capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr
+    assert 'verdict:' in r.stdout
+    import json
+    res = json.loads((tmp_path / 'c.json').read_text())
+    assert set(res['loo_total']) == {'boltzmann', 'less'}
+    assert all(len(v) == 4 and all(x < 0 for x in v) for v in res['loo'].values())
+
+
+def test_report_and_compare_bad_input(tmp_path):
+    for cmd in (['report', str(tmp_path / 'none'), '--out', str(tmp_path / 'r')],
+                ['compare', str(tmp_path)]):
+        r = subprocess.run([sys.executable, '-m', 'pref_learner.cli'] + cmd,
+                           capture_output=True, text=True, timeout=120)
+        assert r.returncode == 2 and r.stderr.count('\n') == 1, r.stderr
+    bad = tmp_path / 'bad'
+    bad.mkdir()
+    (bad / 'manifest.json').write_text('{not json')
+    r = subprocess.run([sys.executable, '-m', 'pref_learner.cli', 'report', str(bad), '--out',
+                        str(tmp_path / 'r2')], capture_output=True, text=True, timeout=120)
+    assert r.returncode == 2 and 'unreadable' in r.stderr
+    assert not (tmp_path / 'r2').exists()
