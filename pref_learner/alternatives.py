@@ -11,8 +11,9 @@ joint limits.
     normalised to unit peak standard deviation and scaled per joint by
     ``noise_scale`` (a fraction of each joint's range, or 2 pi for continuous
     joints) times an amplitude drawn uniformly in [0, 1] per alternative, so
-    the set spans from near the straight line to far from it. The standard normal draws are truncated at 3 sigma, so the
-    noise, and with it the jerk, is bounded (:meth:`SmoothNoise.jerk_bound`).
+    the set spans from near the straight line to far from it. The standard
+    normal draws are truncated at 3 sigma, so the noise, and with it the
+    jerk, is bounded (:meth:`SmoothNoise.jerk_bound`).
 ``perturb``
     the demonstration itself plus the same noise.
 ``planner``
@@ -109,7 +110,8 @@ class SamplerConfig:
 class AlternativeSampler:
     """Draws alternative trajectories for one start/goal pair."""
 
-    def __init__(self, robot: RobotModel, n_waypoints: int, config: SamplerConfig = SamplerConfig(),
+    def __init__(self, robot: RobotModel, n_waypoints: int,
+                 config: SamplerConfig = SamplerConfig(),
                  planner: Optional[Callable] = None, n_features: Optional[int] = None):
         self.robot = robot
         self.T = n_waypoints

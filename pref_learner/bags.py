@@ -86,8 +86,8 @@ class BagWriter:
     def float_array(self, data, dims: Sequence[Tuple[str, int, int]] = ()):
         T = self.ts.types
         layout = T['std_msgs/msg/MultiArrayLayout'](
-            dim=[T['std_msgs/msg/MultiArrayDimension'](label=l, size=s, stride=st)
-                 for l, s, st in dims], data_offset=0)
+            dim=[T['std_msgs/msg/MultiArrayDimension'](label=lab, size=s, stride=st)
+                 for lab, s, st in dims], data_offset=0)
         return T['std_msgs/msg/Float64MultiArray'](
             layout=layout, data=np.asarray(data, dtype=np.float64).ravel())
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import os
 import random
-import signal
 import subprocess
 import sys
 import time
@@ -121,162 +120,6 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     return out
 
 
-# ---------------------------------------------------------------- node benchmarks
-def _rss_mb(pid: int) -> float:
-    with open(f'/proc/{pid}/status') as f:
-        for line in f:
-            if line.startswith('VmRSS:'):
-                return int(line.split()[1]) / 1024.0
-    return float('nan')
-
-
-def node_benchmarks(quick: bool = False) -> Dict[str, float]:
-    import rclpy
-    from diagnostic_msgs.msg import DiagnosticArray
-    from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
-    from sensor_msgs.msg import JointState
-    from std_msgs.msg import Bool, Float64MultiArray
-    from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
-
-    from .learner import Learner, LearnerConfig
-    from .sim import SimulatedTeacher, TeacherConfig
-    out: Dict[str, float] = {}
-    env = dict(os.environ)
-    proc = subprocess.Popen([sys.executable, '-m', 'pref_learner.ros.learner_node',
-                             '--ros-args', '-p', 'model:=less', '--log-level', 'error'],
-                            env=env)
-    latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
-                         durability=DurabilityPolicy.TRANSIENT_LOCAL)
-    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)), TRUE,
-                               TeacherConfig())
-    names = list(teacher.learner.robot.joint_names)
-    try:
-        with rclpy.init():
-            node = rclpy.create_node('pref_learner_bench')
-            state = {'w': None, 'w_t': 0.0, 'status': {}}
-
-            def on_w(m):
-                state['w'] = np.array(m.data)
-                state['w_t'] = time.perf_counter()
-
-            def on_status(m):
-                for st in m.status:
-                    state['status'] = {kv.key: kv.value for kv in st.values}
-            node.create_subscription(Float64MultiArray, '/pref_learner/weights', on_w, latched)
-            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, latched)
-            pub = node.create_publisher(JointState, 'joint_states',
-                                        QoSProfile(depth=100,
-                                                   reliability=ReliabilityPolicy.RELIABLE))
-            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
-            traj = node.create_publisher(JointTrajectory, '/pref_learner/demonstration', 10)
-
-            def spin_until(pred, timeout):
-                end = time.time() + timeout
-                while time.time() < end and not pred():
-                    rclpy.spin_once(node, timeout_sec=0.01)
-                return pred()
-            spin_until(lambda: pub.get_subscription_count() and teach.get_subscription_count()
-                       and state['status'], 60)
-
-            def n_demos():
-                return int(state['status'].get('demonstrations', 0))
-
-            # -- latency from teaching=false to new weights, 1 kHz samples
-            lat = []
-            stamp0 = time.time_ns()
-            n_lat = 5 if quick else 12
-            published = 0
-            for k in range(n_lat):
-                stamps, q = teacher.stream(k, stamp0)
-                stamp0 = int(stamps[-1]) + 10**9
-                teach.publish(Bool(data=True))
-                t_next = time.perf_counter()
-                for st, row in zip(stamps[::2], q[::2]):      # the stream at 1 kHz ... 
-                    m = JointState()
-                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
-                    m.name = names
-                    m.position = row.tolist()
-                    pub.publish(m)
-                    published += 1
-                    t_next += 0.001
-                    d = t_next - time.perf_counter()
-                    if d > 0:
-                        time.sleep(d)
-                rclpy.spin_once(node, timeout_sec=0.0)
-                before = n_demos()
-                t0 = time.perf_counter()
-                state['w_t'] = 0.0
-                teach.publish(Bool(data=False))
-                spin_until(lambda: state['w_t'] > t0, 30)
-                lat.append(state['w_t'] - t0)
-                spin_until(lambda: n_demos() > before, 30)
-            out['node_update_latency_ms_p95'] = float(np.percentile(lat, 95) * 1e3)
-            out['node_update_latency_ms_median'] = float(np.median(lat) * 1e3)
-
-            # -- ingest at 1 kHz while updates run
-            dur = 10.0 if quick else 60.0
-            spin_until(lambda: False, 1.0)
-            before = int(state['status'].get('samples', 0))
-            sent = 0
-            t_start = time.perf_counter()
-            k = 100
-            while time.perf_counter() - t_start < dur:
-                stamps, q = teacher.stream(k, stamp0)
-                stamp0 = int(stamps[-1]) + 10**9
-                k += 1
-                teach.publish(Bool(data=True))
-                t_next = time.perf_counter()
-                for st, row in zip(stamps[::2], q[::2]):
-                    m = JointState()
-                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
-                    m.name = names
-                    m.position = row.tolist()
-                    pub.publish(m)
-                    sent += 1
-                    t_next += 0.001
-                    d = t_next - time.perf_counter()
-                    if d > 0:
-                        time.sleep(d)
-                    if sent % 200 == 0:
-                        rclpy.spin_once(node, timeout_sec=0.0)
-                teach.publish(Bool(data=False))
-            spin_until(lambda: int(state['status'].get('samples', 0)) - before >= sent, 20)
-            got = int(state['status'].get('samples', 0)) - before
-            out['node_ingest_samples_sent'] = sent
-            out['node_ingest_drop_fraction_1khz'] = max(0.0, 1.0 - got / sent)
-
-            # -- memory over many demonstrations fed back to back
-            n_rss = 40 if quick else 200
-            warm = 10
-            rss0 = None
-            start = n_demos()
-            for i in range(n_rss):
-                _, path = teacher.choose(1000 + i)
-                msg = JointTrajectory()
-                msg.joint_names = names
-                for j, row in enumerate(path):
-                    p = JointTrajectoryPoint()
-                    p.positions = row.tolist()
-                    tt = 3.0 * j / (len(path) - 1)
-                    p.time_from_start.sec, p.time_from_start.nanosec = int(tt), \
-                        int((tt % 1) * 1e9)
-                    msg.points.append(p)
-                traj.publish(msg)
-                spin_until(lambda: n_demos() >= start + i + 1, 120)
-                if i + 1 == warm:
-                    rss0 = _rss_mb(proc.pid)
-            out['node_rss_growth_mb'] = _rss_mb(proc.pid) - rss0
-            out['node_rss_demonstrations'] = n_rss
-            node.destroy_node()
-    finally:
-        proc.send_signal(signal.SIGINT)
-        try:
-            proc.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-    return out
-
-
 def demo_benchmark(quick: bool = False) -> Dict[str, float]:
     import tempfile
     t = time.perf_counter()
@@ -303,6 +146,7 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, fl
         else:
             res.update(plan_benchmark(quick))
     if 'node' in parts:
+        from .ros.bench_node import node_benchmarks
         res.update(node_benchmarks(quick))
     if 'demo' in parts:
         res.update(demo_benchmark(quick))

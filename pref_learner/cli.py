@@ -56,12 +56,14 @@ def cmd_demo(args) -> int:
                    '--log-level', 'warn']
     print(f'pref-learner demo: a simulated person ({args.person} chooser, beta {args.beta}) '
           f'teaches {args.demonstrations} tube transfers on the bench arm; '
-          f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
+          f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, '
+          f'discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
     t0 = time.time()
     learner = subprocess.Popen(learner_cmd, env=env)
     teacher = subprocess.Popen(teacher_cmd, env=env)
     try:
-        _watch(args, truth, learner, teacher)
+        from .ros.demo_watch import watch_session
+        watch_session(args.demonstrations, truth, learner)
     finally:
         for p in (teacher, learner):
             if p.poll() is None:
@@ -102,65 +104,6 @@ def cmd_demo(args) -> int:
         raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
                        'reached the learner')
     return 0
-
-
-def _watch(args, truth, learner, teacher):
-    import rclpy
-    from diagnostic_msgs.msg import DiagnosticArray
-    from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
-    from std_msgs.msg import Bool
-    qos = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
-                     durability=DurabilityPolicy.TRANSIENT_LOCAL)
-    state = {'n': 0, 'status': {}, 'demo_on': None}
-    deadline = time.time() + 60 + args.demonstrations * 20
-    with rclpy.init():
-        node = rclpy.create_node('pref_learner_demo_watch')
-
-        def on_status(msg):
-            for st in msg.status:
-                vals = {kv.key: kv.value for kv in st.values}
-                state['status'][vals.get('model')] = vals
-
-        def on_demo(msg):
-            state['demo_on'] = time.time() if msg.data else None
-
-        node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, qos)
-        node.create_subscription(Bool, '/simulated_teacher/demonstrating', on_demo, 10)
-        try:
-            from tqdm import tqdm
-        except ImportError:  # pragma: no cover
-            tqdm = None
-        bar = None
-        while time.time() < deadline:
-            rclpy.spin_once(node, timeout_sec=0.1)
-            if learner.poll() is not None:
-                raise CliError(f'the learner node exited with code {learner.returncode}')
-            done = min((int(v.get('demonstrations', 0)) for v in state['status'].values()),
-                       default=0)
-            if state['demo_on'] is not None and bar is None and tqdm is not None \
-                    and sys.stdout.isatty():
-                bar = tqdm(total=30, desc=f'demonstration {done + 1}', leave=False,
-                           bar_format='{desc}: {bar} {elapsed}')
-            if bar is not None:
-                if state['demo_on'] is None:
-                    bar.close()
-                    bar = None
-                else:
-                    bar.n = min(30, int((time.time() - state['demo_on']) * 30 / 3.6))
-                    bar.refresh()
-            if done > state['n']:
-                state['n'] = done
-                parts = []
-                for m, v in sorted(state['status'].items()):
-                    w = np.array(json.loads(v['weights']))
-                    parts.append(f'{m}: cos {w @ truth:+.2f}, concentration '
-                                 f'{float(v["concentration"]):.3f}, ESS {float(v["ess"]):.0f}')
-                print(f'after demonstration {done}: ' + '; '.join(parts), flush=True)
-            if done >= args.demonstrations:
-                break
-        if bar is not None:
-            bar.close()
-        node.destroy_node()
 
 
 # ---------------------------------------------------------------- learn
@@ -340,7 +283,7 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     try:
         return args.func(args)
-    except (CliError, ValueError, OSError) as exc:
+    except (CliError, ValueError, OSError, RuntimeError) as exc:
         if args.debug:
             raise
         print(f'pref-learner {args.command}: {exc}', file=sys.stderr)

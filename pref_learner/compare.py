@@ -12,7 +12,6 @@ Two pieces of evidence, from a state directory's stored demonstrations:
 from __future__ import annotations
 
 from dataclasses import fields
-from pathlib import Path
 
 import numpy as np
 from scipy.special import logsumexp

@@ -29,7 +29,7 @@ its alternatives, so sensor noise cannot tell them apart.
 from __future__ import annotations
 
 import collections
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np

@@ -51,7 +51,7 @@ import importlib
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Dict, List, Optional, Sequence, Tuple
+from typing import Callable, Dict, List, Optional, Sequence
 
 import numpy as np
 import yaml
@@ -122,7 +122,8 @@ def _parse_spec(raw, i: int, source: str, robot: RobotModel) -> FeatureSpec:
         try:
             func = getattr(importlib.import_module(mod), attr)
         except (ImportError, AttributeError) as exc:
-            raise FeatureConfigError(f'{where}: type {ftype!r} cannot be imported: {exc}') from None
+            raise FeatureConfigError(
+                f'{where}: type {ftype!r} cannot be imported: {exc}') from None
         if not callable(func):
             raise FeatureConfigError(f'{where}: type {ftype!r} is not callable')
     elif ftype not in _PARAMS:

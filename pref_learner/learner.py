@@ -17,7 +17,7 @@ import hashlib
 import json
 import logging
 import time
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, fields
 from pathlib import Path
 from typing import Dict, List, Optional, Tuple
 
@@ -198,7 +198,6 @@ class Learner:
                                       config.smooth)
             fs = fs.with_scales(scales)
         self.features = fs
-        planner_fn = None
         if config.mix_planner > 0:
             from .planner import PlannerConfig, TrajectoryPlanner, planner_alternatives
             planner = TrajectoryPlanner(fs, PlannerConfig(config.n_waypoints, restarts=0,
@@ -207,6 +206,8 @@ class Learner:
             def planner_fn(start, goal, weights, rng):
                 return planner_alternatives(planner, start, goal, weights, rng,
                                             n_jobs=config.planner_jobs)
+        else:
+            planner_fn = None
         self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
                                           config.sampler_config(), planner=planner_fn,
                                           n_features=fs.d)

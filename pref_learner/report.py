@@ -12,7 +12,7 @@ from __future__ import annotations
 import html
 import json
 from pathlib import Path
-from typing import Dict, List
+from typing import Dict
 
 import numpy as np
 
@@ -157,10 +157,12 @@ def write_report(state_dir, out_dir) -> Path:
     rej_rows = ''.join(f'<tr><td>{i + 1}</td><td>{html.escape(r["reason"])}</td>'
                        f'<td>{html.escape(r.get("detail", ""))}</td></tr>'
                        for i, r in enumerate(rej)) or '<tr><td colspan="3">none</td></tr>'
+
+    def region(dg):
+        return 'sparse' if dg['sparse'] else ('dense' if dg['dense'] else 'typical')
     diag_rows = ''.join(
         f'<tr><td>{h["index"] + 1}</td><td>{h["diagnostics"]["relative_density"]:.3g}</td>'
-        f'<td>{"sparse" if h["diagnostics"]["sparse"] else ("dense" if h["diagnostics"]["dense"] else "typical")}'
-        f'</td></tr>' for h in st['history'])
+        f'<td>{region(h["diagnostics"])}</td></tr>' for h in st['history'])
     meta = {m: {'ess': f'{s["ess"]:.0f}', 'concentration': f'{s["concentration"]:.4f}',
                 'demonstrations': s['n_demonstrations']} for m, s in sums.items()}
     imgs = ''.join(f'<h2>{html.escape(t)}</h2><img src="{f}" alt="{html.escape(t)}">'

@@ -114,7 +114,8 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             publish_stream_half = len(st) // 2
             for i in range(publish_stream_half):
                 m = JointState()
-                m.header.stamp.sec, m.header.stamp.nanosec = int(st[i] // 10**9), int(st[i] % 10**9)
+                m.header.stamp.sec = int(st[i] // 10**9)
+                m.header.stamp.nanosec = int(st[i] % 10**9)
                 m.name = names
                 m.position = [float(x) for x in q[i]]
                 pub.publish(m)

@@ -6,7 +6,7 @@ from scipy.optimize import check_grad
 
 from pref_learner.alternatives import AlternativeSampler, SamplerConfig
 from pref_learner.demonstrations import condition
-from pref_learner.features import FeatureSet, default_features_path
+from pref_learner.features import FeatureSet
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.planner import (PlannerConfig, TrajectoryPlanner, planner_alternatives,
                                   time_parametrize)

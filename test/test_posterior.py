@@ -6,8 +6,8 @@ from hypothesis import given, settings, strategies as st
 from scipy import integrate
 
 from pref_learner import choice
-from pref_learner.posterior import (ChoiceRecord, ParticlePosterior, PosteriorConfig,
-                                    ess_from_log_weights, systematic_resample)
+from pref_learner.posterior import (ParticlePosterior, PosteriorConfig, ess_from_log_weights,
+                                    systematic_resample)
 
 
 def _demo_sets(rng, n, k, d, theta, beta, model='boltzmann'):

@@ -80,7 +80,8 @@ _RUNTIME = {k for k, v in _PARAMS.items() if not v[2]}
 
 def _array_msg(data, dims) -> Float64MultiArray:
     m = Float64MultiArray()
-    m.layout.dim = [MultiArrayDimension(label=l, size=int(s), stride=int(st)) for l, s, st in dims]
+    m.layout.dim = [MultiArrayDimension(label=lab, size=int(s), stride=int(st))
+                    for lab, s, st in dims]
     m.data = np.asarray(data, dtype=np.float64).ravel().tolist()
     return m
 

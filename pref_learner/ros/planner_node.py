@@ -25,7 +25,8 @@ LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
 
 
 class PlannerNode(Node):
-    """Subscribes to weights (and particles), plans on ``~/request``, publishes ``~/trajectory``."""
+    """Subscribes to weights (and particles), plans on ``~/request``, publishes
+    ``~/trajectory``."""
 
     def __init__(self, **kwargs):
         super().__init__('pref_planner', **kwargs)
