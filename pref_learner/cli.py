@@ -97,8 +97,12 @@ def cmd_demo(args) -> int:
         print(f'cosine(estimate, truth) {m}: {c:.3f}')
     print(f'demonstrations accepted: {final.n_demonstrations}; '
           f'rejected: {len(final.rejections)}')
+    from .report import write_report
+    report = write_report(state, out / f'report-{stamp}')
+    result['report'] = str(report)
     print(f'state directory: {state}')
     print(f'session bag:     {bag}')
+    print(f'report:          {report}')
     (out / 'demo_result.json').write_text(json.dumps(result, indent=1))
     if final.n_demonstrations < args.demonstrations:
         raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
@@ -123,13 +127,19 @@ def cmd_learn(args) -> int:
     except ValueError as exc:
         raise CliError(str(exc)) from None
     events = list(read_stream(bag))
+    try:
+        from tqdm import tqdm
+        events_iter = tqdm(events, desc='learning', unit='msg', leave=False,
+                           disable=not sys.stderr.isatty())
+    except ImportError:  # pragma: no cover
+        events_iter = events
     if not any(e.kind == 'joint_states' for e in events):
         raise CliError(f'bag {bag} has no joint states')
     L = Learner(cfg)
     w = BagWriter(out / 'estimates')
     n_ok = 0
     try:
-        for e in events:
+        for e in events_iter:
             res = (L.feed(e.stamp_ns, e.names, e.positions) if e.kind == 'joint_states'
                    else L.set_teaching(e.value))
             for r in res:

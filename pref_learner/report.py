@@ -121,6 +121,28 @@ def _plot_density(post, path):
     plt.close(fig)
 
 
+def plot_set(features, chosen: int, names, path) -> None:
+    """Histograms of each feature over a choice set ``features (K, d)`` with the
+    demonstration (row ``chosen``) marked."""
+    plt = _plt()
+    x = np.asarray(features)
+    d = x.shape[1]
+    cols = min(3, d)
+    rows = int(np.ceil(d / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.6 * cols, 2.4 * rows), squeeze=False)
+    for j in range(d):
+        ax = axes[j // cols][j % cols]
+        ax.hist(np.delete(x[:, j], chosen), bins=30, color='0.6')
+        ax.axvline(x[chosen, j], color='k', lw=2)
+        ax.set_title(names[j], fontsize=9)
+    for k in range(d, rows * cols):
+        axes[k // cols][k % cols].axis('off')
+    fig.suptitle('alternatives (grey) and the demonstration (black)')
+    fig.tight_layout()
+    fig.savefig(path, dpi=80)
+    plt.close(fig)
+
+
 def _table(names, summaries: Dict[str, dict]) -> str:
     head = '<tr><th>feature</th>' + ''.join(
         f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'
@@ -152,6 +174,10 @@ def write_report(state_dir, out_dir) -> Path:
     if first.records:
         _plot_density(first, out / 'set_density.png')
         pngs.append(('Demonstrations within their alternative sets', 'set_density.png'))
+        plot_set(first.records[-1].features, first.records[-1].chosen, names,
+                 out / 'last_set_features.png')
+        pngs.append(('Last demonstration among its alternatives, per feature',
+                     'last_set_features.png'))
     sums = {m: p.summary().to_dict() for m, p in posts.items()}
     rej = st['rejections']
     rej_rows = ''.join(f'<tr><td>{i + 1}</td><td>{html.escape(r["reason"])}</td>'

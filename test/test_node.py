@@ -132,6 +132,14 @@ def test_bad_input_keeps_node_running_and_posterior_untouched():
         vals = {kv.key: kv.value for kv in st.values}
         assert vals['rejected'] == '1' and vals['last_rejection'].startswith('too_short')
         assert int(vals['samples_invalid']) >= 1
+        # stamps far from now are refused once max_stamp_skew is set
+        assert node.set_parameters([Parameter('max_stamp_skew', value=10.0)])[0].successful
+        m = JointState()
+        m.name = names
+        m.position = [0.2] * 7
+        m.header.stamp.sec = 300                      # 1970: far past
+        pub.publish(m)
+        assert spin_until(ex, lambda: node.counters['stamp_out_of_range'] == 1, 10)
         bg.__exit__(None, None, None)
         node.destroy_node()
         client.destroy_node()

@@ -31,7 +31,7 @@ def test_report_renders_and_tables_match_stored_summaries(state, tmp_path):
     path = write_report(state, tmp_path / 'rep')
     text = path.read_text()
     pngs = sorted(p.name for p in (tmp_path / 'rep').glob('*.png'))
-    assert len(pngs) == 3
+    assert len(pngs) == 4
     for p in pngs:
         assert (tmp_path / 'rep' / p).stat().st_size > 5000
         assert f'src="{p}"' in text
