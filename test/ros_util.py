@@ -58,23 +58,12 @@ def spin_until(ex, pred, timeout=30.0):
 
 def publish_stream(ex, pub, teach_pub, stamps, q, names, rate_hz=1000.0):
     """Publish one demonstration: teaching on, samples, teaching off."""
-    from sensor_msgs.msg import JointState
     from std_msgs.msg import Bool
+
+    from pref_learner.ros.common import publish_paced
     teach_pub.publish(Bool(data=True))
     ex.spin_once(timeout_sec=0.01)
-    period = 1.0 / rate_hz
-    t_next = time.perf_counter()
-    for st, row in zip(stamps, q):
-        m = JointState()
-        m.header.stamp.sec = int(st // 10**9)
-        m.header.stamp.nanosec = int(st % 10**9)
-        m.name = list(names)
-        m.position = [float(x) for x in row]
-        pub.publish(m)
-        t_next += period
-        delay = t_next - time.perf_counter()
-        if delay > 0:
-            time.sleep(delay)
+    publish_paced(pub, stamps, q, names, rate_hz)
     time.sleep(0.05)
     teach_pub.publish(Bool(data=False))
 

@@ -4,7 +4,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 
 import numpy as np
 import pytest
@@ -18,6 +17,7 @@ from pref_learner import store as store_mod
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.posterior import ParticlePosterior
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.ros.common import publish_paced
 from ros_util import LATCHED, publish_stream, ros_context, spin_until
 
 TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
@@ -111,15 +111,8 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             # the 4th: half of it, then kill -9
             st, q = streams[3]
             teach.publish(Bool(data=True))
-            publish_stream_half = len(st) // 2
-            for i in range(publish_stream_half):
-                m = JointState()
-                m.header.stamp.sec = int(st[i] // 10**9)
-                m.header.stamp.nanosec = int(st[i] % 10**9)
-                m.name = names
-                m.position = [float(x) for x in q[i]]
-                pub.publish(m)
-                time.sleep(0.001)
+            half = len(st) // 2
+            publish_paced(pub, st[:half], q[:half], names, 1000.0)
             proc.send_signal(signal.SIGKILL)
             proc.wait(timeout=10)
             node.destroy_node()

@@ -29,6 +29,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
     from ..learner import Learner, LearnerConfig
+    from .common import publish_paced
     from ..sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     env = dict(os.environ)
@@ -80,18 +81,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 stamps, q = teacher.stream(k, stamp0)
                 stamp0 = int(stamps[-1]) + 10**9
                 teach.publish(Bool(data=True))
-                t_next = time.perf_counter()
-                for st, row in zip(stamps[::2], q[::2]):      # the stream at 1 kHz
-                    m = JointState()
-                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
-                    m.name = names
-                    m.position = row.tolist()
-                    pub.publish(m)
-                    published += 1
-                    t_next += 0.001
-                    d = t_next - time.perf_counter()
-                    if d > 0:
-                        time.sleep(d)
+                published += publish_paced(pub, stamps[::2], q[::2], names, 1000.0)
                 rclpy.spin_once(node, timeout_sec=0.0)
                 before = n_demos()
                 t0 = time.perf_counter()
@@ -115,20 +105,9 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 stamp0 = int(stamps[-1]) + 10**9
                 k += 1
                 teach.publish(Bool(data=True))
-                t_next = time.perf_counter()
-                for st, row in zip(stamps[::2], q[::2]):
-                    m = JointState()
-                    m.header.stamp.sec, m.header.stamp.nanosec = int(st // 10**9), int(st % 10**9)
-                    m.name = names
-                    m.position = row.tolist()
-                    pub.publish(m)
-                    sent += 1
-                    t_next += 0.001
-                    d = t_next - time.perf_counter()
-                    if d > 0:
-                        time.sleep(d)
-                    if sent % 200 == 0:
-                        rclpy.spin_once(node, timeout_sec=0.0)
+                sent += publish_paced(
+                    pub, stamps[::2], q[::2], names, 1000.0,
+                    lambda i: rclpy.spin_once(node, timeout_sec=0.0) if i % 200 == 0 else None)
                 teach.publish(Bool(data=False))
             spin_until(lambda: int(state['status'].get('samples', 0)) - before >= sent, 20)
             got = int(state['status'].get('samples', 0)) - before

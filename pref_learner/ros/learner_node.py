@@ -8,13 +8,11 @@ from __future__ import annotations
 
 import collections
 import json
-import os
 import threading
 import time
 from dataclasses import fields
 
 import numpy as np
-import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 SetParametersResult)
@@ -472,23 +470,8 @@ class LearnerNode(Node):
 
 
 def main(args=None):
-    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
-    try:
-        with rclpy.init(args=args):
-            try:
-                node = LearnerNode()
-            except ValueError as exc:
-                print(f'pref_learner: {exc}', flush=True)
-                raise SystemExit(2)
-            ex = SingleThreadedExecutor()
-            ex.add_node(node)
-            try:
-                ex.spin()
-            finally:
-                node.destroy_node()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
+    from .common import run_node
+    run_node(LearnerNode, args, 'pref_learner')
 
 
 if __name__ == '__main__':

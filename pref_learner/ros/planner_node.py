@@ -3,11 +3,9 @@
 from __future__ import annotations
 
 import collections
-import os
 import threading
 
 import numpy as np
-import rclpy
 from builtin_interfaces.msg import Duration
 from geometry_msgs.msg import Point
 from rcl_interfaces.msg import ParameterDescriptor
@@ -161,19 +159,8 @@ class PlannerNode(Node):
 
 
 def main(args=None):
-    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
-    try:
-        with rclpy.init(args=args):
-            node = PlannerNode()
-            ex = SingleThreadedExecutor()
-            ex.add_node(node)
-            try:
-                ex.spin()
-            finally:
-                node.destroy_node()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
+    from .common import run_node
+    run_node(PlannerNode, args, 'pref_planner')
 
 
 if __name__ == '__main__':
