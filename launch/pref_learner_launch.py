@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Start the pref_learner learner node with the shipped parameters.
 
 Arguments: ``with_teacher:=true`` adds the simulated teacher;

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Alternative trajectories sharing a demonstration's start and goal.
 
 Samplers return ``(m, T, n)`` joint trajectories whose first and last

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """rosbag2 bags through the pure-Python ``rosbags`` library (no ROS install needed).
 
 Reading: :func:`read_stream` yields the learner's inputs from a bag (joint

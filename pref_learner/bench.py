@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Benchmarks behind ``pref-learner bench --json PATH`` (flat JSON of figures).
 
 Defaults of DESIGN.md §4: shipped 7-DoF arm, T = 64, d = 6, M = 500, N = 4,000.

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Choice models: how likely a person is to pick one option from a finite set.
 
 A choice set is a feature matrix ``features : (K, d)`` (the demonstration and

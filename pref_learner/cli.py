@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """``pref-learner``: the command line (demo, learn, bench).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).

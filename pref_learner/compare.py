@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Which choice model explains a person's demonstrations better.
 
 Two pieces of evidence, from a state directory's stored demonstrations:

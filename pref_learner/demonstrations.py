@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """From a joint-state stream to clean, resampled demonstrations.
 
 A :class:`Recorder` takes samples one at a time as a ``joint_states`` topic

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Task features of trajectories, from forward kinematics.
 
 A trajectory is ``q : (T, n)``; a batch is ``(M, T, n)``. A feature set maps a

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """THE learning pipeline: samples -> demonstration -> alternatives -> features -> posterior.
 
 :class:`Learner` is the one object that the ROS node, the offline ``learn``

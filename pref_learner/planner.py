@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Trajectory optimiser that plans with learned weights.
 
 Minimises over the interior waypoints of ``q : (T, n)`` (endpoints fixed)::

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Particle posterior over reward weights on the unit sphere.
 
 The state is N weighted particles ``theta : (N, d)`` on S^{d-1}, optionally

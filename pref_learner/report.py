@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """HTML report with PNG plots, from a state directory's stored files only.
 
 Plots: each weight's posterior mean and 90% band after each demonstration;

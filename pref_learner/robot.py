@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Robot model: URDF -> pinocchio model -> batched forward kinematics of named frames.
 
 Pinocchio parses the URDF and is the reference for kinematics. The actuated

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Simulated teacher: a person model that demonstrates by a choice model.
 
 For each task (start/goal pair of the scenario) the person considers a set

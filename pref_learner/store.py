@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Durable state directory: demonstrations are the record, the posterior is derived.
 
 Layout of a state directory::

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Validation studies: the two choice models' known behaviours on our own scenarios.
 
 ``pref-learner validate`` regenerates the evidence on the user's machine; each

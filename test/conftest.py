@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Test-session setup: DDS confined to this machine before any rclpy.init()."""
 
 import os

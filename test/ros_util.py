@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Helpers for tests that run real rclpy nodes over DDS (loopback only, see conftest)."""
 
 import contextlib

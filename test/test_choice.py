@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Choice models against outside references (sources named beside each check)."""
 
 import numpy as np

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Segmentation, cleaning, resampling and alternative sets."""
 
 import numpy as np

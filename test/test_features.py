@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Task features: hand-computable cases, geometry, minimum-jerk closed forms."""
 
 import numpy as np

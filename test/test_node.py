@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """The learner node as users meet it: real rclpy nodes talking over DDS on loopback."""
 
 import numpy as np

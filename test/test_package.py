@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Packaging checks: launch file, parameter YAML, manifest, lint (ament_flake8 settings)."""
 
 import ast
@@ -77,3 +79,12 @@ def test_flake8_clean():
                         'pref_learner', 'test', 'launch', 'setup.py'], cwd=ROOT,
                        capture_output=True, text=True)
     assert r.returncode == 0, r.stdout
+
+
+def test_copyright_headers():
+    # REP 2004 quality level 3: a licence and copyright notice in every source file
+    for p in list((ROOT / 'pref_learner').rglob('*.py')) + list((ROOT / 'test').glob('*.py')) \
+            + list((ROOT / 'launch').glob('*.py')) + [ROOT / 'setup.py']:
+        head = p.read_text().splitlines()[:2]
+        assert head and head[0].startswith('# Copyright') and 'Apache-2.0' in head[1], p
+    assert 'Apache' in (ROOT / 'LICENSE').read_text()

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Durable state: atomic files, kill -9 of a live node, replay on configuration change."""
 
 import os

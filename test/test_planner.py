@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """The trajectory optimiser: gradients, closed forms, preferences honoured, regret."""
 
 import numpy as np

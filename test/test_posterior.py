@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Particle posterior against exact quadrature, an MCMC reference and properties."""
 
 import numpy as np

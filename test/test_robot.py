@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Kinematics against pinocchio itself, yourdfpy and a textbook closed form."""
 
 import numpy as np

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Small versions of the validation studies; margins come from measured variability
 (seeded runs of the full studies, recorded in DEVELOPERS.md)."""
 

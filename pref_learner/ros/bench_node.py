@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Node benchmarks: a real learner node in a subprocess, driven over DDS (loopback)."""
 
 import os

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Pieces shared by the nodes and their clients: spinning a node, message builders."""
 
 import os

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """Follows a demo session from the learner node's status topic (used by ``pref-learner demo``)."""
 
 import json

@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """ROS 2 learner node: a thin adapter around :class:`pref_learner.learner.Learner`.
 
 Callbacks only copy messages into one ordered queue; a plain worker thread

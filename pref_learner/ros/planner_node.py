@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """ROS 2 planner node: turns the learner's current estimate into trajectories."""
 
 from __future__ import annotations

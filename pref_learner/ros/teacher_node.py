@@ -1,3 +1,5 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
 """ROS 2 simulated teacher: plays demonstrations of a person model as joint states."""
 
 from __future__ import annotations
