@@ -242,7 +242,7 @@ class LearnerNode(Node):
 
     # ------------------------------------------------------------ worker
     def _run(self):
-        while not self._stop.is_set():
+        while not self._stop.is_set() and self.context.ok():
             if not self._queue:
                 self._wake.wait(0.05)
                 self._wake.clear()
@@ -251,6 +251,8 @@ class LearnerNode(Node):
             try:
                 self._handle(item)
             except Exception as exc:  # the node keeps running whatever one input does
+                if not self.context.ok():
+                    return  # shutting down: nothing left to publish to
                 self._warn('internal_error', f'{type(exc).__name__}: {exc}')
 
     def _handle(self, item):
