@@ -287,7 +287,11 @@ class Learner:
                                  f'{len(demos)} stored demonstrations')
             history = []
             for d in demos:
-                res = self._learn(d, persist=False)
+                try:
+                    res = self._learn(d, persist=False)
+                except ValueError as exc:
+                    self.messages.append(f'a stored demonstration was skipped: {exc}')
+                    continue
                 history.append(self._history_entry(res))
             if self.store is not None:
                 self._save_posteriors()
@@ -349,13 +353,18 @@ class Learner:
                              f'{self.robot.joint_names}')
         self.robot.check_configurations(demo.q, 'demonstration')
         index = len(self._demos)
+        path = None
         if self.store is not None:
-            self.store.write_demo(index, {'t': demo.t, 'q': demo.q,
-                                          'joint_names': np.array(demo.joint_names),
-                                          'stamp_ns': np.int64(demo.stamp_ns),
-                                          'seed': np.int64(self.config.seed)})
-        res = self._learn(demo, persist=True)
-        return res
+            path = self.store.write_demo(index, {'t': demo.t, 'q': demo.q,
+                                                 'joint_names': np.array(demo.joint_names),
+                                                 'stamp_ns': np.int64(demo.stamp_ns),
+                                                 'seed': np.int64(self.config.seed)})
+        try:
+            return self._learn(demo, persist=True)
+        except ValueError:
+            if path is not None:        # the posterior refused it: do not keep it either
+                path.unlink(missing_ok=True)
+            raise
 
     def _learn(self, demo: Demonstration, persist: bool) -> StepResult:
         t0 = time.perf_counter()
