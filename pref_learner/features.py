@@ -53,7 +53,7 @@ import importlib
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable, Dict, List, Optional, Sequence
+from typing import Callable, Dict, List, Optional, Sequence, Tuple
 
 import numpy as np
 import yaml
@@ -259,11 +259,14 @@ def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray):
     raise AssertionError(agg)
 
 
+_DIFF: Dict[Tuple[int, int], np.ndarray] = {}
+
+
 def _diff_matrix(T: int, order: int) -> np.ndarray:
-    D = np.eye(T)
-    for _ in range(order):
-        D = np.diff(D, axis=0)
-    return D
+    key = (T, order)
+    if key not in _DIFF:
+        _DIFF[key] = np.diff(np.eye(T), n=order, axis=0)
+    return _DIFF[key]
 
 
 class FeatureSet:
@@ -385,9 +388,15 @@ class FeatureSet:
         through each aggregate. Min and max use the subgradient at the
         extreme waypoint.
         """
+        return self.value_and_gradient(q)[1]
+
+    def value_and_gradient(self, q: np.ndarray):
+        """Raw features ``(d,)`` and their gradients ``(d, T, n)`` of one trajectory,
+        from one kinematics pass."""
         q = np.asarray(q, dtype=np.float64)
         T, n = q.shape
         grads = np.zeros((self.d, T, n))
+        vals = np.empty(self.d)
         poses, (jp, jr) = self.robot.frame_poses(q, self.frames, with_jacobian=True) \
             if self.frames else (None, (None, None))
         for j, s in enumerate(self.specs):
@@ -397,26 +406,33 @@ class FeatureSet:
                     raise ValueError(f'feature {s.name}: user type has no .gradient; the '
                                      'planner needs one')
                 grads[j] = gfun(q, s.params)
+                k = poses.index(s.frame)
+                vals[j] = float(s.func(q[None], poses.positions[None, :, k],
+                                       poses.rotations[None, :, k], s.params)[0])
                 continue
             if s.type in ('effort', 'jerk'):
                 order = 1 if s.type == 'effort' else 3
                 h = 1.0 / (T - 1)
                 D = _diff_matrix(T, order) / h ** order
-                grads[j] = 2.0 * h * (D.T @ (D @ q))
+                Dq = D @ q
+                vals[j] = h * float(np.sum(Dq * Dq))
+                grads[j] = 2.0 * h * (D.T @ Dq)
                 continue
             k = poses.index(s.frame)
             pos, rot = poses.positions[:, k], poses.rotations[:, k]
             Jp, Jr = jp[:, k], jr[:, k]                       # (T, 3, n)
             if s.type == 'path_length':
                 seg = np.diff(pos, axis=0)
-                u = seg / np.maximum(np.linalg.norm(seg, axis=-1), 1e-12)[:, None]
+                ln = np.linalg.norm(seg, axis=-1)
+                vals[j] = float(ln.sum())
+                u = seg / np.maximum(ln, 1e-12)[:, None]
                 dpos = np.zeros((T, 3))
                 dpos[1:] += u
                 dpos[:-1] -= u
                 grads[j] = np.einsum('ti,tin->tn', dpos, Jp)
                 continue
             g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot)
-            _, w, dpos_agg = _aggregate(s.aggregate, g, pos)
+            vals[j], w, dpos_agg = _aggregate(s.aggregate, g, pos)
             total = np.zeros((T, n))
             if dg_dpos is not None:
                 total += w[:, None] * np.einsum('ti,tin->tn', dg_dpos, Jp)
@@ -429,7 +445,7 @@ class FeatureSet:
             if dpos_agg is not None:
                 total += np.einsum('ti,tin->tn', dpos_agg, Jp)
             grads[j] = total
-        return grads
+        return vals, grads
 
     def describe(self) -> List[dict]:
         out = []

@@ -133,11 +133,10 @@ class TrajectoryPlanner:
     def objective(self, x: np.ndarray, start, goal, theta, pw) -> Tuple[float, np.ndarray]:
         n = self.robot.n
         q = np.vstack([start, x.reshape(self.T - 2, n), goal])
-        raw = self.features.raw(q)
+        raw, g_raw = self.features.value_and_gradient(q)          # (d,), (d, T, n)
         phi = raw / self.features.scales
         direction = self._reward_direction(phi, theta, pw)
         reward = float(direction @ phi)
-        g_raw = self.features.gradient(q)                          # (d, T, n)
         g_reward = np.einsum('d,dtn->tn', direction / self.features.scales, g_raw)
         s_val, s_grad = self.smoothness(q)
         b_val, b_grad = self.barrier(q)

@@ -200,3 +200,13 @@ def test_user_feature_type(gantry):
     q = np.zeros((4, 3))
     q[:, 2] = [0, 1, 2, 3]
     assert fs.raw(q)[0] == pytest.approx(2.5)
+
+
+def test_value_and_gradient_values_equal_batched_features():
+    robot = RobotModel.default()
+    fs = FeatureSet.from_yaml(default_features_path(), robot)
+    rng = np.random.default_rng(11)
+    q = robot.random_configurations(20, rng, margin=0.3)
+    vals, grads = fs.value_and_gradient(q)
+    np.testing.assert_allclose(vals, fs.raw(q), rtol=1e-12, atol=1e-14)
+    np.testing.assert_array_equal(grads, fs.gradient(q))
