@@ -99,7 +99,7 @@ class SamplerConfig:
             raise ValueError(f'noise_scale must be > 0, got {self.noise_scale}')
 
     def counts(self) -> Dict[str, int]:
-        """Number of each kind (largest remainder, so they sum to n_alternatives)."""
+        """Count each kind (largest remainder, so they sum to n_alternatives)."""
         tot = sum(self.mix.values())
         kinds = sorted(self.mix)
         raw = np.array([self.mix[k] / tot * self.n_alternatives for k in kinds])

@@ -160,7 +160,7 @@ def read_messages(path) -> List[Tuple[str, str, int, object]]:
 
 
 def estimate_arrays(summary, posterior) -> dict:
-    """The arrays the node publishes for one model: name -> (data, dims)."""
+    """Build the arrays the node publishes for one model: name -> (data, dims)."""
     d = summary.mean.shape[0]
     parts = [posterior.theta]
     if posterior.log_beta is not None:

@@ -188,7 +188,7 @@ def cmd_validate(args) -> int:
 
 # ---------------------------------------------------------------- report
 def _state_from(src: Path, tmp: Path, args) -> Path:
-    """A state directory: ``src`` itself, or learned offline from a bag into ``tmp``."""
+    """Return a state directory: ``src`` itself, or learned offline from a bag."""
     if (src / 'manifest.json').exists():
         return src
     if (src / 'metadata.yaml').exists():

@@ -281,7 +281,7 @@ class Recorder:
 
 def check_segment(stamps: np.ndarray, q: np.ndarray, n_invalid: int,
                   config: SegmentConfig) -> Union[Rejection, None]:
-    """Acceptance checks of a raw segment; a :class:`Rejection` or None."""
+    """Check a raw segment for acceptance; return a :class:`Rejection` or None."""
     s0 = int(stamps[0])
     n = len(stamps)
     if n < 2:
@@ -305,7 +305,7 @@ def check_segment(stamps: np.ndarray, q: np.ndarray, n_invalid: int,
 
 
 def refine_bounds(t: np.ndarray, q: np.ndarray, window: float) -> Tuple[int, int]:
-    """Indices of the refined onset and end of a point-to-point motion.
+    """Find the indices of the refined onset and end of a point-to-point motion.
 
     The progress along the start->end direction is low-passed (zero-phase,
     8 Hz) and differentiated; at each end the times where the speed first
@@ -429,8 +429,11 @@ def smooth_batch(q: np.ndarray, weight: float) -> np.ndarray:
 
 
 def prepare(demo: Demonstration, config: PrepareConfig, robot=None) -> np.ndarray:
-    """Clean, filter and resample a demonstration to ``(T, n)`` (no smoothing yet;
-    :func:`smooth_batch` is applied together with the alternatives)."""
+    """Clean, filter and resample a demonstration to ``(T, n)``.
+
+    No smoothing yet: :func:`smooth_batch` is applied together with the
+    alternatives.
+    """
     t, q = demo.t, demo.q
     q = lowpass(t, q, config.lowpass_hz)
     tool = None
@@ -442,16 +445,20 @@ def prepare(demo: Demonstration, config: PrepareConfig, robot=None) -> np.ndarra
 
 
 def condition(q: np.ndarray, weight: float, lower: np.ndarray, upper: np.ndarray) -> np.ndarray:
-    """The conditioning shared by a demonstration and its alternatives:
+    """Condition trajectories as a demonstration and its alternatives all are.
+
     :func:`smooth_batch`, then clipping to the joint limits (the smoother may
-    overshoot a limit by a hair where a trajectory runs along it)."""
+    overshoot a limit by a hair where a trajectory runs along it).
+    """
     return np.clip(smooth_batch(q, weight), lower, upper)
 
 
 def reparametrize_arc_length(q: np.ndarray, tool: np.ndarray) -> np.ndarray:
-    """Re-time trajectories ``q : (M, T, n)`` so waypoints are equally spaced along
-    their tool paths ``tool : (M, T, 3)`` (linear interpolation; endpoints kept;
-    a trajectory whose tool does not move is returned unchanged)."""
+    """Re-time trajectories to equal spacing along their tool paths.
+
+    ``q : (M, T, n)``, ``tool : (M, T, 3)``; linear interpolation, endpoints
+    kept; a trajectory whose tool does not move is returned unchanged.
+    """
     M, T, n = q.shape
     seg = np.linalg.norm(np.diff(tool, axis=1), axis=-1)
     s = np.concatenate([np.zeros((M, 1)), np.cumsum(seg, axis=1)], axis=1)

@@ -232,8 +232,10 @@ def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
 
 
 def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray):
-    """Aggregate g (..., T) -> (...,) and weights dA/dg (..., T); for integral also the
-    derivative with respect to positions (..., T, 3)."""
+    """Aggregate g (..., T) -> (...,) with weights dA/dg (..., T).
+
+    For ``integral`` also the derivative with respect to positions (..., T, 3).
+    """
     T = g.shape[-1]
     if agg == 'mean':
         return g.mean(axis=-1), np.full(g.shape, 1.0 / T), None
@@ -391,8 +393,10 @@ class FeatureSet:
         return self.value_and_gradient(q)[1]
 
     def value_and_gradient(self, q: np.ndarray):
-        """Raw features ``(d,)`` and their gradients ``(d, T, n)`` of one trajectory,
-        from one kinematics pass."""
+        """Compute raw features ``(d,)`` and gradients ``(d, T, n)`` of one trajectory.
+
+        One kinematics pass serves both.
+        """
         q = np.asarray(q, dtype=np.float64)
         T, n = q.shape
         grads = np.zeros((self.d, T, n))
@@ -463,7 +467,7 @@ def default_features_path() -> Path:
 
 
 def load_scenario(path=None) -> dict:
-    """The ``scenario`` block of a feature YAML (tasks: start/goal pairs)."""
+    """Read the ``scenario`` block of a feature YAML (tasks: start/goal pairs)."""
     path = Path(path) if path else default_features_path()
     doc = yaml.safe_load(path.read_text())
     sc = doc.get('scenario') or {}

@@ -165,8 +165,11 @@ class StepResult:
 
 def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n: int,
                      rng: np.random.Generator, smooth: float) -> np.ndarray:
-    """One fixed scale per feature: the std of raw features over smooth trajectories
-    across the scenario's tasks (1 where a feature does not vary)."""
+    """Calibrate one fixed scale per feature.
+
+    The std of raw features over smooth trajectories across the scenario's
+    tasks (1 where a feature does not vary).
+    """
     robot = features.robot
     rows = []
     for _, start, goal in tasks:
@@ -182,8 +185,11 @@ class Learner:
     """The pipeline (see module docstring)."""
 
     def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None):
-        """``on_estimate(StepResult)`` is called as soon as a demonstration has been
-        weighed in, before the (slower) rejuvenation moves; the node publishes there."""
+        """Build the pipeline.
+
+        ``on_estimate(StepResult)`` is called as soon as a demonstration has been
+        weighed in, before the (slower) rejuvenation moves; the node publishes there.
+        """
         self.config = config
         self.on_estimate = on_estimate
         urdf = config.urdf or str(RobotModel.default().source)
@@ -335,8 +341,11 @@ class Learner:
 
     # ------------------------------------------------------------ learning
     def choice_set(self, q_demo: np.ndarray, index: int) -> Tuple[np.ndarray, np.ndarray]:
-        """Conditioned demonstration + alternatives ``(1 + M, T, n)`` and their scaled
-        features ``(1 + M, d)``; row 0 is the demonstration."""
+        """Build a demonstration's conditioned choice set and its scaled features.
+
+        Returns ``(1 + M, T, n)`` trajectories and ``(1 + M, d)`` features;
+        row 0 is the demonstration.
+        """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
         robot = self.robot
         alts = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo)

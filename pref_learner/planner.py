@@ -117,7 +117,7 @@ class TrajectoryPlanner:
 
     def _reward_direction(self, phi: np.ndarray, theta: np.ndarray,
                           pw: Optional[np.ndarray]) -> np.ndarray:
-        """The effective weight vector whose gradient the reward has at these features."""
+        """Return the weight vector whose gradient the reward has at these features."""
         if theta.ndim == 1:
             return theta
         if self.config.risk == 'mean':
@@ -148,8 +148,11 @@ class TrajectoryPlanner:
     # ------------------------------------------------------------ planning
     def plan(self, weights, start, goal, rng: Optional[np.random.Generator] = None,
              particle_weights=None) -> PlanResult:
-        """Plan from ``start`` to ``goal`` for ``weights (d,)`` or particles ``(P, d)``
-        with ``particle_weights (P,)``."""
+        """Plan from ``start`` to ``goal``.
+
+        For ``weights (d,)``, or particles ``(P, d)`` with
+        ``particle_weights (P,)``.
+        """
         t0 = time.perf_counter()
         d = self.features.d
         w = np.asarray(weights, dtype=np.float64)
@@ -196,9 +199,11 @@ class TrajectoryPlanner:
 
 
 def time_parametrize(q: np.ndarray, v_max: np.ndarray, a_max: np.ndarray) -> np.ndarray:
-    """Times ``(T,)`` for waypoints ``q : (T, n)`` with one uniform step chosen so
-    that finite-difference joint speeds stay below ``v_max`` and accelerations
-    below ``a_max`` (both ``(n,)``, > 0)."""
+    """Time waypoints ``q : (T, n)`` with one uniform step; returns ``(T,)``.
+
+    The step keeps finite-difference joint speeds below ``v_max`` and
+    accelerations below ``a_max`` (both ``(n,)``, > 0).
+    """
     dq = np.abs(np.diff(q, axis=0))
     ddq = np.abs(np.diff(q, n=2, axis=0)) if len(q) > 2 else np.zeros((1, q.shape[1]))
     dt_v = float(np.max(dq / v_max)) if dq.size else 0.0
@@ -217,8 +222,10 @@ def _plan_one(args):
 
 def planner_alternatives(planner: TrajectoryPlanner, start, goal, weights: np.ndarray,
                          rng: np.random.Generator, n_jobs: int = 0) -> np.ndarray:
-    """Trajectories ``(m, T, n)`` optimised for each row of ``weights (m, d)``;
-    with ``n_jobs`` > 1 (0: one per core) in worker processes."""
+    """Optimise one trajectory per row of ``weights (m, d)``; returns ``(m, T, n)``.
+
+    With ``n_jobs`` > 1 (0: one per core) in forked worker processes.
+    """
     import os
     global _WORKER_PLANNER
     _WORKER_PLANNER = planner          # inherited by forked workers (not pickled)

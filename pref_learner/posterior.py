@@ -60,7 +60,7 @@ def ess_from_log_weights(log_w: np.ndarray) -> float:
 
 
 def systematic_resample(log_w: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """Indices ``(N,)`` drawn by systematic resampling from log-weights ``(N,)``."""
+    """Draw indices ``(N,)`` by systematic resampling from log-weights ``(N,)``."""
     w = np.exp(log_normalise(np.asarray(log_w, dtype=np.float64)))
     n = w.shape[0]
     cdf = np.cumsum(w)
@@ -70,7 +70,7 @@ def systematic_resample(log_w: np.ndarray, rng: np.random.Generator) -> np.ndarr
 
 
 def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarray:
-    """n points uniform on S^{d-1}, ``(n, d)`` (normalised Gaussians)."""
+    """Draw n points uniform on S^{d-1}, ``(n, d)`` (normalised Gaussians)."""
     x = rng.standard_normal((n, d))
     return x / np.linalg.norm(x, axis=1, keepdims=True)
 

@@ -124,8 +124,10 @@ def _plot_density(post, path):
 
 
 def plot_set(features, chosen: int, names, path) -> None:
-    """Histograms of each feature over a choice set ``features (K, d)`` with the
-    demonstration (row ``chosen``) marked."""
+    """Plot histograms of each feature over a choice set.
+
+    ``features (K, d)``; the demonstration (row ``chosen``) is marked.
+    """
     plt = _plt()
     x = np.asarray(features)
     d = x.shape[1]

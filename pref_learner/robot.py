@@ -193,7 +193,7 @@ class RobotModel:
 
     @classmethod
     def default(cls, **kwargs) -> 'RobotModel':
-        """The shipped 7-DoF bench arm."""
+        """Load the shipped 7-DoF bench arm."""
         return cls(default_urdf_path(), **kwargs)
 
     # ------------------------------------------------------------ configurations

@@ -60,7 +60,7 @@ class SimulatedTeacher:
                                                         noise_scale=learner.config.noise_scale))
 
     def choose(self, index: int) -> Tuple[str, np.ndarray]:
-        """The path (T, n) the person picks for demonstration ``index``."""
+        """Pick the path (T, n) the person demonstrates as number ``index``."""
         c = self.config
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
         name, start, goal = self.tasks[index % len(self.tasks)]
@@ -77,8 +77,10 @@ class SimulatedTeacher:
         return name, cand[int(rng.choice(len(cand), p=p))]
 
     def stream(self, index: int, t0_ns: int = 0):
-        """Samples (stamps_ns (S,), q (S, n)) of demonstration ``index``, rests included,
-        and the (start, end) stamps of the motion."""
+        """Play demonstration ``index`` as samples.
+
+        Returns stamps_ns (S,) and q (S, n), rests included.
+        """
         c = self.config
         _, path = self.choose(index)
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index, 7]))

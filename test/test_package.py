@@ -88,3 +88,11 @@ def test_copyright_headers():
         head = p.read_text().splitlines()[:2]
         assert head and head[0].startswith('# Copyright') and 'Apache-2.0' in head[1], p
     assert 'Apache' in (ROOT / 'LICENSE').read_text()
+
+
+def test_pep257_clean():
+    # ament_pep257 settings: pep257 convention without D100-D107, D203, D212, D404
+    r = subprocess.run([sys.executable, '-m', 'pydocstyle', '--convention=pep257',
+                        '--add-ignore=D100,D101,D102,D103,D104,D105,D106,D107,D404',
+                        'pref_learner'], cwd=ROOT, capture_output=True, text=True)
+    assert r.returncode == 0, r.stdout

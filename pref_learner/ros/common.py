@@ -10,7 +10,7 @@ from sensor_msgs.msg import JointState
 
 
 def run_node(factory, args=None, name='pref_learner') -> None:
-    """``main`` of a node: loopback DDS unless told otherwise, spin until interrupted.
+    """Run a node as ``main``: loopback DDS unless told otherwise, spin until interrupted.
 
     A ``ValueError`` from the constructor (bad parameters) is one line and exit code 2.
     """

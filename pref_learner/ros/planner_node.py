@@ -25,8 +25,7 @@ LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
 
 
 class PlannerNode(Node):
-    """Subscribes to weights (and particles), plans on ``~/request``, publishes
-    ``~/trajectory``."""
+    """Plan on ``~/request`` with the learner's weights; publish ``~/trajectory``."""
 
     def __init__(self, **kwargs):
         super().__init__('pref_planner', **kwargs)
