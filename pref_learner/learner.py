@@ -224,7 +224,6 @@ class Learner:
         self.store = StateStore(config.state_dir) if config.state_dir else None
         self.hash = config.learning_hash()
         self.rejections: List[dict] = []
-        self.n_accepted = 0
         self.last_result: Optional[StepResult] = None
         self._demos: List[Demonstration] = []
         self._reset_posteriors()
@@ -280,7 +279,6 @@ class Learner:
                 if all(len(p.records) == len(demos) for p in posts.values()):
                     self.posteriors = posts
                     self._demos = demos
-                    self.n_accepted = len(demos)
                     loaded = True
                     self.messages.append(f'loaded state: {len(demos)} demonstrations from '
                                          f'{store.root}')
@@ -387,7 +385,6 @@ class Learner:
             new[m], infos[m] = post.update((feats, 0), rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
-        self.n_accepted = len(self._demos)
         rec = next(iter(self.posteriors.values())).records[-1]
         ls = rec.log_sim if rec.log_sim is not None else None
         diag = set_diagnostics(feats, 0, ls)

@@ -51,76 +51,65 @@ def load_state(state_dir) -> dict:
             'rejections': store.read_rejections()}
 
 
-def _plot_history(names, history, models, path):
+def _panels(n, cols, size, draw, title, path, legend=False):
+    """Draw ``n`` panels on a grid with ``draw(i, ax)``, then save the figure."""
     plt = _plt()
-    d = len(names)
-    cols = 3
-    rows = int(np.ceil(d / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(4 * cols, 2.6 * rows), squeeze=False)
-    for j, name in enumerate(names):
-        ax = axes[j // cols][j % cols]
-        for m in models:
-            xs = [h['index'] + 1 for h in history if m in h['summaries']]
-            mean = [h['summaries'][m]['mean'][j] for h in history if m in h['summaries']]
-            lo = [h['summaries'][m]['ci_low'][j] for h in history if m in h['summaries']]
-            hi = [h['summaries'][m]['ci_high'][j] for h in history if m in h['summaries']]
-            ax.plot(xs, mean, 'o-', color=COLOURS.get(m), label=m, ms=3)
-            ax.fill_between(xs, lo, hi, color=COLOURS.get(m), alpha=0.15)
-        ax.axhline(0, color='k', lw=0.5)
-        ax.set_title(name, fontsize=9)
-        ax.set_xlabel('demonstrations', fontsize=8)
-        ax.set_ylim(-1.05, 1.05)
-    for k in range(d, rows * cols):
-        axes[k // cols][k % cols].axis('off')
-    axes[0][0].legend(fontsize=8)
-    fig.suptitle('posterior mean and 90% interval of each weight')
+    n = max(n, 1)
+    cols = min(cols, n)
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(size[0] * cols, size[1] * rows),
+                             squeeze=False)
+    for i in range(rows * cols):
+        ax = axes[i // cols][i % cols]
+        if i < n:
+            draw(i, ax)
+        else:
+            ax.axis('off')
+    if legend:
+        axes[0][0].legend(fontsize=8)
+    fig.suptitle(title)
     fig.tight_layout()
     fig.savefig(path, dpi=80)
     plt.close(fig)
+
+
+def _plot_history(names, history, models, path):
+    def draw(j, ax):
+        for m in models:
+            hs = [h for h in history if m in h['summaries']]
+            xs = [h['index'] + 1 for h in hs]
+            s = [h['summaries'][m] for h in hs]
+            ax.plot(xs, [x['mean'][j] for x in s], 'o-', color=COLOURS.get(m), label=m, ms=3)
+            ax.fill_between(xs, [x['ci_low'][j] for x in s], [x['ci_high'][j] for x in s],
+                            color=COLOURS.get(m), alpha=0.15)
+        ax.axhline(0, color='k', lw=0.5)
+        ax.set_title(names[j], fontsize=9)
+        ax.set_xlabel('demonstrations', fontsize=8)
+        ax.set_ylim(-1.05, 1.05)
+    _panels(len(names), 3, (4, 2.6), draw, 'posterior mean and 90% interval of each weight',
+            path, legend=True)
 
 
 def _plot_marginals(names, posts, path):
-    plt = _plt()
-    d = len(names)
-    cols = 3
-    rows = int(np.ceil(d / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(4 * cols, 2.4 * rows), squeeze=False)
-    for j, name in enumerate(names):
-        ax = axes[j // cols][j % cols]
+    def draw(j, ax):
         for m, p in posts.items():
             ax.hist(p.theta[:, j], bins=40, range=(-1, 1), weights=p.weights, alpha=0.5,
                     color=COLOURS.get(m), label=m)
-        ax.set_title(name, fontsize=9)
-    for k in range(d, rows * cols):
-        axes[k // cols][k % cols].axis('off')
-    axes[0][0].legend(fontsize=8)
-    fig.suptitle('final posterior marginals')
-    fig.tight_layout()
-    fig.savefig(path, dpi=80)
-    plt.close(fig)
+        ax.set_title(names[j], fontsize=9)
+    _panels(len(names), 3, (4, 2.4), draw, 'final posterior marginals', path, legend=True)
 
 
 def _plot_density(post, path):
-    plt = _plt()
-    recs = post.records
-    n = len(recs)
-    cols = min(4, max(n, 1))
-    rows = int(np.ceil(max(n, 1) / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(3.2 * cols, 2.4 * rows), squeeze=False)
-    for i, r in enumerate(recs):
-        ax = axes[i // cols][i % cols]
+    def draw(i, ax):
+        r = post.records[i]
         ls = r.log_sim if r.log_sim is not None else log_similarity_sums(r.features)
         rel = ls - np.median(ls)
         ax.hist(rel, bins=30, color='0.6')
         ax.axvline(rel[r.chosen], color='k', lw=2)
         ax.set_title(f'demonstration {i + 1}', fontsize=9)
         ax.set_xlabel('log density rel. to median', fontsize=8)
-    for k in range(n, rows * cols):
-        axes[k // cols][k % cols].axis('off')
-    fig.suptitle('each demonstration (black) within its set\'s feature density')
-    fig.tight_layout()
-    fig.savefig(path, dpi=80)
-    plt.close(fig)
+    _panels(len(post.records), 4, (3.2, 2.4), draw,
+            'each demonstration (black) within its set\'s feature density', path)
 
 
 def plot_set(features, chosen: int, names, path) -> None:
@@ -128,23 +117,14 @@ def plot_set(features, chosen: int, names, path) -> None:
 
     ``features (K, d)``; the demonstration (row ``chosen``) is marked.
     """
-    plt = _plt()
     x = np.asarray(features)
-    d = x.shape[1]
-    cols = min(3, d)
-    rows = int(np.ceil(d / cols))
-    fig, axes = plt.subplots(rows, cols, figsize=(3.6 * cols, 2.4 * rows), squeeze=False)
-    for j in range(d):
-        ax = axes[j // cols][j % cols]
+
+    def draw(j, ax):
         ax.hist(np.delete(x[:, j], chosen), bins=30, color='0.6')
         ax.axvline(x[chosen, j], color='k', lw=2)
         ax.set_title(names[j], fontsize=9)
-    for k in range(d, rows * cols):
-        axes[k // cols][k % cols].axis('off')
-    fig.suptitle('alternatives (grey) and the demonstration (black)')
-    fig.tight_layout()
-    fig.savefig(path, dpi=80)
-    plt.close(fig)
+    _panels(x.shape[1], 3, (3.6, 2.4), draw,
+            'alternatives (grey) and the demonstration (black)', path)
 
 
 def _table(names, summaries: Dict[str, dict]) -> str:

@@ -159,6 +159,11 @@ def test_parameters_refused_with_reason():
         assert not r.successful                       # read-only
         r = node.set_parameters([Parameter('dwell', value=0.8)])[0]
         assert r.successful
+        import time
+        deadline = time.time() + 5
+        while node.learner.recorder.config.dwell != 0.8 and time.time() < deadline:
+            time.sleep(0.02)                          # applied by the worker thread
+        assert node.learner.recorder.config.dwell == 0.8
         assert list(node.get_parameter('feature_names').value)[0] == 'tube_height'
         node.destroy_node()
     with ros_context() as (ctx, ex):

@@ -103,6 +103,7 @@ class LearnerNode(Node):
         self._lock = threading.Lock()
         self.counters = collections.Counter()
         self.last_warning = ''
+        self._pending_config = None
         self._declare_parameters()
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
@@ -256,6 +257,8 @@ class LearnerNode(Node):
             item = self._queue.popleft()
             try:
                 self._handle(item)
+                if self._pending_config is not None and not self.learner.recorder.recording:
+                    self._apply_runtime(self._pending_config)
             except Exception as exc:  # the node keeps running whatever one input does
                 if not self.context.ok():
                     return  # shutting down: nothing left to publish to
@@ -355,10 +358,17 @@ class LearnerNode(Node):
                                                           self.learner.robot.joint_names)]))
 
     def _apply_runtime(self, cfg: LearnerConfig):
+        """Apply new segmentation settings; during a demonstration, after it ends."""
         from ..demonstrations import Recorder
+        if self.learner.recorder.recording:
+            self._pending_config = cfg
+            return
+        self._pending_config = None
         self.config = cfg
         self.learner.config = cfg
+        old = self.learner.recorder
         self.learner.recorder = Recorder(self.learner.robot.joint_names, cfg.segment_config())
+        self.learner.recorder.counters.update(old.counters)
         self.get_logger().info('segmentation settings updated')
 
     def _on_estimate(self, r: StepResult):
