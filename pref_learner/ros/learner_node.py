@@ -20,6 +20,7 @@ from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescr
                                 SetParametersResult)
 from rclpy.node import Node
 from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy)
+from rclpy.qos_overriding_options import QoSOverridingOptions
 from rclpy.serialization import deserialize_message
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension
@@ -132,6 +133,7 @@ class LearnerNode(Node):
     # ------------------------------------------------------------ parameters
     def _declare_parameters(self):
         self.add_on_set_parameters_callback(self._on_set)
+        self.add_post_set_parameters_callback(self._after_set)
         defaults = LearnerConfig()
         extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0}
         for name, (desc, rng, ro) in _PARAMS.items():
@@ -175,18 +177,27 @@ class LearnerNode(Node):
         if not changes:
             return SetParametersResult(successful=True)
         try:
-            d = {f.name: getattr(self.config, f.name) for f in fields(LearnerConfig)}
-            d.update({k: v for k, v in changes.items() if k in d})
-            cfg = LearnerConfig(**d)
+            self._runtime_config(changes)
         except (ValueError, TypeError) as exc:
             return SetParametersResult(successful=False, reason=str(exc))
-        self._enqueue(('config', cfg))
         return SetParametersResult(successful=True)
+
+    def _runtime_config(self, changes) -> LearnerConfig:
+        d = {f.name: getattr(self.config, f.name) for f in fields(LearnerConfig)}
+        d.update({k: v for k, v in changes.items() if k in d})
+        return LearnerConfig(**d)
+
+    def _after_set(self, params):
+        """Hand accepted run-time changes to the worker (checked in ``_on_set``)."""
+        changes = {p.name: p.value for p in params if p.name in _RUNTIME}
+        if changes and hasattr(self, 'config'):
+            self._enqueue(('config', self._runtime_config(changes)))
 
     # ------------------------------------------------------------ interfaces
     def _make_interfaces(self):
-        self.create_subscription(JointState, 'joint_states', self._on_joint_states, SENSOR_QOS,
-                                 raw=True)
+        self.create_subscription(
+            JointState, 'joint_states', self._on_joint_states, SENSOR_QOS, raw=True,
+            qos_overriding_options=QoSOverridingOptions.with_default_policies())
         self.create_subscription(Bool, '~/teaching', self._on_teaching, 10)
         self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10)
         for name, kind in (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
