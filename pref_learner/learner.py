@@ -31,7 +31,7 @@ from .demonstrations import (Demonstration, PrepareConfig, Recorder, Rejection, 
                              condition, prepare, reparametrize_arc_length)
 from .features import FeatureSet, default_features_path, load_scenario
 from .posterior import ParticlePosterior, PosteriorConfig, Summary
-from .robot import RobotModel
+from .robot import RobotModel, default_urdf_path
 from .store import StateStore
 
 log = logging.getLogger('pref_learner')
@@ -192,7 +192,7 @@ class Learner:
         """
         self.config = config
         self.on_estimate = on_estimate
-        urdf = config.urdf or str(RobotModel.default().source)
+        urdf = config.urdf or str(default_urdf_path())
         self.robot = RobotModel(urdf, joint_names=config.joint_names or None,
                                 tool_frame=config.tool_frame, clamp=config.clamp)
         fpath = config.features or str(default_features_path())
@@ -235,7 +235,7 @@ class Learner:
     def _tasks(self, fpath):
         try:
             tasks = load_scenario(fpath)['tasks']
-        except Exception:
+        except (OSError, ValueError, AttributeError):
             tasks = []
         tasks = [t for t in tasks if t[1].shape == (self.robot.n,)]
         if not tasks:  # a user robot: random in-limit pairs
@@ -272,6 +272,10 @@ class Learner:
             return
         same = manifest is not None and manifest.get('learning_hash') == self.hash
         loaded = False
+        if same and manifest.get('scales'):
+            # the session's reward scale is the stored one, whatever a recalibration
+            # would give now (it changes only with a reset)
+            self.features = self.features.with_scales(manifest['scales'])
         if same:
             try:
                 posts = {m: ParticlePosterior.load(store.posterior_path(m))

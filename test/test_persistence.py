@@ -156,3 +156,16 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
                 proc.wait(timeout=15)
             except subprocess.TimeoutExpired:
                 proc.kill()
+
+
+def test_stored_scales_are_kept_across_restarts(tmp_path):
+    import json
+    cfg = LearnerConfig(state_dir=str(tmp_path), **SMALL)
+    L = Learner(cfg)
+    SimulatedTeacher(L, TRUE, TeacherConfig(seed=9)).feed_session(L, 1)
+    m = json.loads((tmp_path / 'manifest.json').read_text())
+    np.testing.assert_allclose(m['scales'], L.features.scales)
+    m['scales'] = [s * 2.0 for s in m['scales']]     # as if calibrated by another version
+    (tmp_path / 'manifest.json').write_text(json.dumps(m))
+    L2 = Learner(cfg)
+    np.testing.assert_allclose(L2.features.scales, 2.0 * L.features.scales)
