@@ -227,11 +227,18 @@ def cmd_compare(args) -> int:
     return 0
 
 
+class _Parser(argparse.ArgumentParser):
+    """Argument errors as one line (and exit code 2), like every other error."""
+
+    def error(self, message):
+        self.exit(2, f'{self.prog}: {message} (see --help)\n')
+
+
 def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog='pref-learner', description=(
+    p = _Parser(prog='pref-learner', description=(
         'Learn what a person teaching a robot arm cares about (weights over task features).'))
     p.add_argument('--debug', action='store_true', help='show tracebacks on errors')
-    sub = p.add_subparsers(dest='command', required=True)
+    sub = p.add_subparsers(dest='command', required=True, parser_class=_Parser)
 
     d = sub.add_parser('demo', help='simulated teaching session over ROS 2 on this machine')
     d.add_argument('--out', default='out/demo', help='output directory (default out/demo)')

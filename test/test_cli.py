@@ -103,3 +103,9 @@ def test_bad_input_one_line_exit_2(tmp_path):
     r = run(['learn', str(bag), '--out', str(tmp_path / 'o3'), '--model', 'softmax'])
     assert r.returncode == 2 and "model 'softmax' is unknown" in r.stderr
     assert 'Traceback' not in r.stderr
+
+
+def test_argument_errors_are_one_line():
+    for args in (['demo', '--model', 'softmax'], ['validate', '--bogus'], []):
+        r = run(args)
+        assert r.returncode == 2 and r.stderr.count('\n') == 1, (args, r.stderr)
