@@ -109,3 +109,14 @@ def test_argument_errors_are_one_line():
     for args in (['demo', '--model', 'softmax'], ['validate', '--bogus'], []):
         r = run(args)
         assert r.returncode == 2 and r.stderr.count('\n') == 1, (args, r.stderr)
+
+
+def test_report_from_a_bag(demo_run, tmp_path):
+    out, _ = demo_run
+    res = json.loads((out / 'demo_result.json').read_text())
+    assert Path(res['report']).exists()
+    r = run(['report', res['bag'], '--out', str(tmp_path / 'rep'), '--particles', '1500',
+             '--alternatives', '300'])
+    assert r.returncode == 0, r.stderr
+    html = (tmp_path / 'rep' / 'report.html').read_text()
+    assert 'boltzmann mean' in html and 'less mean' in html
