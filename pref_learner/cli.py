@@ -129,12 +129,8 @@ def cmd_learn(args) -> int:
     except ValueError as exc:
         raise CliError(str(exc)) from None
     events = list(read_stream(bag))
-    try:
-        from tqdm import tqdm
-        events_iter = tqdm(events, desc='learning', unit='msg', leave=False,
-                           disable=not sys.stderr.isatty())
-    except ImportError:  # pragma: no cover
-        events_iter = events
+    from .progress import progress
+    events_iter = progress(events, 'learning')
     if not any(e.kind == 'joint_states' for e in events):
         raise CliError(f'bag {bag} has no joint states')
     L = Learner(cfg)

@@ -21,6 +21,7 @@ from scipy.special import logsumexp
 from .demonstrations import Demonstration, prepare
 from .learner import Learner, LearnerConfig
 from .posterior import ParticlePosterior
+from .progress import progress
 from .store import StateStore
 
 MODELS = ('boltzmann', 'less')
@@ -60,7 +61,7 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
     loo = {m: [] for m in MODELS}
     for m in MODELS:
         pcfg = cfg.posterior_config(m)
-        for i in range(k):
+        for i in progress(range(k), f'leave-one-out ({m})'):
             rng = np.random.default_rng([cfg.seed, i, 99])
             post = ParticlePosterior.create(pcfg, L.features.d, rng)
             for j in range(k):
@@ -71,7 +72,7 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
             loo[m].append(float(logsumexp(post.log_weights + ll)))
     spreads = {}
     means = {m: [] for m in MODELS}
-    for s in range(n_sets):
+    for s in progress(range(n_sets), 'redrawn alternative sets'):
         Ls = Learner(_config_from_manifest(manifest, **dict(over, seed=cfg.seed + 1000 + s)))
         for d in demos:
             Ls.process(d)

@@ -28,6 +28,7 @@ from typing import Dict, Optional
 import numpy as np
 
 from . import choice
+from .progress import progress
 
 MODELS = ('boltzmann', 'less')
 
@@ -137,7 +138,7 @@ def study_arm_people(n_truths=8, n_demos=10, n_seeds=3, n_particles=2000, n_alte
     out = {}
     for person in MODELS:
         vals = {m: {'cosine': [], 'regret': []} for m in MODELS}
-        for i, t in enumerate(truths):
+        for i, t in progress(list(enumerate(truths)), f'arm study ({person} people)'):
             for s in range(n_seeds):
                 r, _ = _arm_session(t, person, n_demos, 100 * i + s, n_particles,
                                     n_alternatives, planner)
@@ -170,7 +171,7 @@ def study_set_robustness(n_sets=10, n_demos=8, n_particles=2000, n_alternatives=
     teacher.feed_session(rec, n_demos)
     demos = list(rec._demos)
     means = {m: [] for m in MODELS}
-    for s in range(n_sets):
+    for s in progress(range(n_sets), 'redrawn alternative sets'):
         L = Learner(LearnerConfig(model='both', seed=1000 + s, n_particles=n_particles,
                                   n_alternatives=n_alternatives))
         for d in demos:
