@@ -36,9 +36,6 @@ from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
-REASONS = ('too_short', 'too_little_motion', 'too_many_gaps', 'too_many_invalid',
-           'too_long', 'stop_without_start', 'start_while_recording')
-
 
 @dataclass(frozen=True)
 class Demonstration:
@@ -269,7 +266,7 @@ class Recorder:
         stamps = np.array([s[0] for s in seg], dtype=np.int64)
         q = np.stack([s[1] for s in seg])
         if self.config.mode == 'motion' and self.config.refine and len(stamps) > 8:
-            a, b = refine_bounds((stamps - stamps[0]) * 1e-9, q, self.config.speed_window)
+            a, b = refine_bounds((stamps - stamps[0]) * 1e-9, q)
             stamps, q = stamps[a:b + 1], q[a:b + 1]
         result = check_segment(stamps, q, invalid, self.config)
         if isinstance(result, Rejection):
@@ -304,7 +301,7 @@ def check_segment(stamps: np.ndarray, q: np.ndarray, n_invalid: int,
     return None
 
 
-def refine_bounds(t: np.ndarray, q: np.ndarray, window: float) -> Tuple[int, int]:
+def refine_bounds(t: np.ndarray, q: np.ndarray) -> Tuple[int, int]:
     """Find the indices of the refined onset and end of a point-to-point motion.
 
     The progress along the start->end direction is low-passed (zero-phase,

@@ -19,7 +19,7 @@ import hashlib
 import json
 import logging
 import time
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Dict, List, Optional, Tuple
 
@@ -138,17 +138,6 @@ class LearnerConfig:
             d['features_sha'] = ''
         return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
 
-    @classmethod
-    def from_dict(cls, d: dict) -> 'LearnerConfig':
-        names = {f.name for f in fields(cls)}
-        unknown = sorted(set(d) - names)
-        if unknown:
-            raise ValueError(f'unknown setting(s) {unknown}; allowed: {sorted(names)}')
-        d = dict(d)
-        if 'joint_names' in d:
-            d['joint_names'] = tuple(d['joint_names'])
-        return cls(**d)
-
 
 @dataclass
 class StepResult:
@@ -160,7 +149,6 @@ class StepResult:
     latency_s: float
     diagnostics: dict
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
-    total_s: float = float('nan')     # including the rejuvenation moves
 
 
 def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n: int,
@@ -224,7 +212,6 @@ class Learner:
         self.store = StateStore(config.state_dir) if config.state_dir else None
         self.hash = config.learning_hash()
         self.rejections: List[dict] = []
-        self.last_result: Optional[StepResult] = None
         self._demos: List[Demonstration] = []
         self._reset_posteriors()
         self.messages: List[str] = []
@@ -403,8 +390,6 @@ class Learner:
             self.posteriors[m], _ = post.rejuvenate(rngs[m])
         res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
                          res.latency_s, diag, paths)
-        res.total_s = time.perf_counter() - t0
-        self.last_result = res
         if persist and self.store is not None:
             self._save_posteriors()
             self.store.append_history(self._history_entry(res))
@@ -453,7 +438,6 @@ class Learner:
         self.rejections = []
         self.recorder.cancel()
         self._reset_posteriors()
-        self.last_result = None
         return where
 
     def summaries(self) -> Dict[str, Summary]:

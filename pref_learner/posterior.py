@@ -246,9 +246,6 @@ class ParticlePosterior:
     def ess(self) -> float:
         return ess_from_log_weights(self.log_weights)
 
-    def _model(self):
-        return choice.get_model(self.config.model)
-
     def log_prior(self, theta: np.ndarray, log_beta: Optional[np.ndarray]) -> np.ndarray:
         """Unnormalised log prior density on the sphere (and log beta), ``(N,)``."""
         lp = np.zeros(theta.shape[0])

@@ -5,7 +5,6 @@
 import contextlib
 import time
 
-import numpy as np
 import rclpy
 from rclpy.context import Context
 from rclpy.executors import SingleThreadedExecutor
@@ -68,7 +67,3 @@ def publish_stream(ex, pub, teach_pub, stamps, q, names, rate_hz=1000.0):
     publish_paced(pub, stamps, q, names, rate_hz)
     time.sleep(0.05)
     teach_pub.publish(Bool(data=False))
-
-
-def weights_of(msg):
-    return np.asarray(msg.data)

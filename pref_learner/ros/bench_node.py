@@ -78,12 +78,11 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             lat = []
             stamp0 = time.time_ns()
             n_lat = 5 if quick else 12
-            published = 0
             for k in range(n_lat):
                 stamps, q = teacher.stream(k, stamp0)
                 stamp0 = int(stamps[-1]) + 10**9
                 teach.publish(Bool(data=True))
-                published += publish_paced(pub, stamps[::2], q[::2], names, 1000.0)
+                publish_paced(pub, stamps[::2], q[::2], names, 1000.0)
                 rclpy.spin_once(node, timeout_sec=0.0)
                 before = n_demos()
                 t0 = time.perf_counter()
