@@ -115,3 +115,17 @@ def test_limits_refused_unless_clamped(arm):
     assert clamped.check_configurations(q)[1] == pytest.approx(1.9)
     with pytest.raises(ValueError, match='6 joint values'):
         arm.check_configurations(np.zeros(6))
+
+
+def test_rep103_right_handed_frames_z_up_metres(arm):
+    # REP 103 (SI units, right-handed frames, z up): rotations are proper (det = +1,
+    # orthonormal); at the zero configuration the straight arm points up the +z axis by
+    # the sum of its link offsets in metres (0.15 + 0.18 + 0.20 + 0.20 + 0.18 + 0.17 +
+    # 0.10 + 0.05 + 0.10 = 1.33 m, from the URDF).
+    rng = np.random.default_rng(8)
+    r = arm.frame_poses(arm.random_configurations(100, rng), ['tool_tip']).rotations[:, 0]
+    np.testing.assert_allclose(np.linalg.det(r), 1.0, atol=1e-12)
+    np.testing.assert_allclose(r @ np.swapaxes(r, 1, 2), np.broadcast_to(np.eye(3), r.shape),
+                               atol=1e-12)
+    p = arm.frame_poses(np.zeros(7), ['tool_tip']).positions[0]
+    np.testing.assert_allclose(p, [0.0, 0.0, 1.33], atol=1e-12)
