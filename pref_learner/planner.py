@@ -34,7 +34,6 @@ from typing import Optional, Tuple
 import numpy as np
 from scipy.optimize import minimize
 
-from .alternatives import SmoothNoise
 from .features import FeatureSet
 
 
@@ -49,6 +48,7 @@ class PlannerConfig:
     risk: str = 'mean'                # mean | cvar
     alpha: float = 0.1                # tail fraction for cvar
     max_iter: int = 200
+    n_control: int = 16               # B-spline controls incl. the two fixed ends (<= T used)
 
     def __post_init__(self):
         if self.n_waypoints < 4:
@@ -61,6 +61,8 @@ class PlannerConfig:
             raise ValueError(f'alpha must be in (0, 1], got {self.alpha}')
         if self.restarts < 0 or self.max_iter < 1:
             raise ValueError('restarts must be >= 0 and max_iter >= 1')
+        if self.n_control < 4:
+            raise ValueError(f'n_control must be >= 4, got {self.n_control}')
 
 
 @dataclass
@@ -73,6 +75,23 @@ class PlanResult:
     n_iter: int
     message: str
     time_s: float
+
+
+def spline_basis(n_waypoints: int, n_control: int) -> np.ndarray:
+    """Clamped cubic B-spline basis at equally spaced waypoints, interior controls only.
+
+    Returns ``(T, K - 2)``: the deviation from the straight line is
+    ``B @ c``; the two end controls are fixed at zero, so the endpoints stay
+    exact, and every waypoint is a convex combination of at most four
+    controls (rows sum to at most 1, entries >= 0).
+    """
+    from scipy.interpolate import BSpline
+    k = 3
+    inner = np.linspace(0.0, 1.0, n_control - k + 1)
+    knots = np.concatenate([[0.0] * k, inner, [1.0] * k])
+    tau = np.linspace(0.0, 1.0, n_waypoints)
+    B = BSpline.design_matrix(tau, knots, k).toarray()
+    return B[:, 1:-1]
 
 
 def check_weights(weights, d: int, name: str = 'weights') -> np.ndarray:
@@ -99,7 +118,7 @@ class TrajectoryPlanner:
         self.T = T
         self._D2 = np.diff(np.eye(T), n=2, axis=0)
         self._acc_w = (T - 1) ** 3
-        self._noise = SmoothNoise(T)
+        self._basis = spline_basis(T, min(config.n_control, T))
 
     # ------------------------------------------------------------ objective parts
     def smoothness(self, q: np.ndarray) -> Tuple[float, np.ndarray]:
@@ -175,23 +194,37 @@ class TrajectoryPlanner:
         rng = rng if rng is not None else np.random.default_rng(0)
         n = self.robot.n
         line = start + np.linspace(0, 1, self.T)[:, None] * (goal - start)
-        lo = np.where(np.isfinite(self.robot.lower), self.robot.lower, None)
-        hi = np.where(np.isfinite(self.robot.upper), self.robot.upper, None)
-        bounds = [(lo[j], hi[j]) for _ in range(self.T - 2) for j in range(n)]
+        B = self._basis                                   # (T, K - 2) interior controls
+        kc = B.shape[1]
+        # box bounds on each control that keep line + B c inside the limits at every
+        # waypoint of its support (B-spline convex-hull property)
+        lo_t = self.robot.lower - line                   # (T, n), -inf for continuous
+        hi_t = self.robot.upper - line
+        support = B > 0
+        c_lo = np.array([lo_t[support[:, k]].max(axis=0) for k in range(kc)])   # (K-2, n)
+        c_hi = np.array([hi_t[support[:, k]].min(axis=0) for k in range(kc)])
+        bounds = [(None if not np.isfinite(a) else a, None if not np.isfinite(b) else b)
+                  for a, b in zip(c_lo.ravel(), c_hi.ravel())]
         span = np.where(np.isfinite(self.robot.upper - self.robot.lower),
                         self.robot.upper - self.robot.lower, 2 * math.pi)
-        inits = [line]
+        inits = [np.zeros((kc, n))]
         for _ in range(self.config.restarts):
-            init = line + self._noise.draw((1, n), rng)[0] * self.config.restart_scale * span
-            inits.append(np.clip(init, self.robot.lower, self.robot.upper))
+            c0 = rng.standard_normal((kc, n)) * self.config.restart_scale * span
+            inits.append(np.clip(c0, np.nan_to_num(c_lo, neginf=-1e9),
+                                 np.nan_to_num(c_hi, posinf=1e9)))
+
+        def fun(c):
+            x = line[1:-1] + B[1:-1] @ c.reshape(kc, n)
+            val, g = self.objective(x.ravel(), start, goal, w, pw)
+            return val, (B[1:-1].T @ g.reshape(self.T - 2, n)).ravel()
         best = None
         for init in inits:
-            res = minimize(self.objective, init[1:-1].ravel(), args=(start, goal, w, pw),
-                           jac=True, method='L-BFGS-B', bounds=bounds,
+            res = minimize(fun, init.ravel(), jac=True, method='L-BFGS-B', bounds=bounds,
                            options={'maxiter': self.config.max_iter})
             if best is None or res.fun < best.fun:
                 best = res
-        q = np.vstack([start, best.x.reshape(self.T - 2, n), goal])
+        q = line + B @ best.x.reshape(kc, n)
+        q[0], q[-1] = start, goal
         phi = self.features(q)
         direction = self._reward_direction(phi, w, pw)
         return PlanResult(q, phi, float(best.fun), float(direction @ phi), bool(best.success),

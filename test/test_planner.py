@@ -190,3 +190,23 @@ def test_planner_node_over_dds():
         assert np.all(v <= 0.5 * L.robot.velocity_limit + 1e-3)
         node.destroy_node()
         client.destroy_node()
+
+
+def test_spline_basis_and_plans_stay_within_limits(setup):
+    # de Boor (1978), from memory: clamped B-spline bases are non-negative, sum to one and
+    # interpolate the end controls; so interior-only rows vanish at both ends.
+    from pref_learner.planner import spline_basis
+    B = spline_basis(64, 16)
+    assert B.shape == (64, 14) and np.all(B >= 0)
+    assert np.all(B.sum(axis=1) <= 1 + 1e-12)
+    np.testing.assert_allclose(B[[0, -1]], 0.0, atol=1e-15)
+    L, tasks = setup
+    p = TrajectoryPlanner(L.features, PlannerConfig(restarts=1, barrier=0.0))
+    rng = np.random.default_rng(9)
+    for k in range(5):
+        w = rng.standard_normal(L.features.d) * 10.0      # strong pulls toward the limits
+        _, s, g = tasks[k % len(tasks)]
+        q = p.plan(w, s, g, rng).q
+        assert np.all(q >= L.robot.lower - 1e-12) and np.all(q <= L.robot.upper + 1e-12)
+        np.testing.assert_array_equal(q[0], s)
+        np.testing.assert_array_equal(q[-1], g)
