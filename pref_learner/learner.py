@@ -151,24 +151,6 @@ class StepResult:
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
 
 
-def calibrate_scales(features: FeatureSet, sampler: AlternativeSampler, tasks, n: int,
-                     rng: np.random.Generator, smooth: float) -> np.ndarray:
-    """Calibrate one fixed scale per feature.
-
-    The std of raw features over smooth trajectories across the scenario's
-    tasks (1 where a feature does not vary).
-    """
-    robot = features.robot
-    rows = []
-    for _, start, goal in tasks:
-        alts = sampler.sample(start, goal, rng, m=n)
-        tool = robot.frame_poses(alts, [robot.tool_frame]).positions[:, :, 0]
-        alts = condition(reparametrize_arc_length(alts, tool), smooth, robot.lower, robot.upper)
-        rows.append(features.raw(alts))
-    sd = np.concatenate(rows).std(axis=0)
-    return np.where(sd > 1e-12, sd, 1.0)
-
-
 class Learner:
     """The pipeline (see module docstring)."""
 
@@ -186,13 +168,7 @@ class Learner:
         fpath = config.features or str(default_features_path())
         fs = FeatureSet.from_yaml(fpath, self.robot)
         if fs.scales is None:
-            tasks = self._tasks(fpath)
-            scales = calibrate_scales(fs, AlternativeSampler(self.robot, config.n_waypoints,
-                                                             SamplerConfig(config.n_calibration)),
-                                      tasks, config.n_calibration,
-                                      np.random.default_rng(config.calibration_seed),
-                                      config.smooth)
-            fs = fs.with_scales(scales)
+            fs = fs.with_scales(self._calibrate(fs))
         self.features = fs
         if config.mix_planner > 0:
             from .planner import PlannerConfig, TrajectoryPlanner, planner_alternatives
@@ -219,9 +195,13 @@ class Learner:
             self._load_state()
 
     # ------------------------------------------------------------ setup
-    def _tasks(self, fpath):
+    def tasks(self):
+        """Return the scenario's (name, start, goal) tasks.
+
+        Random in-limit pairs for a robot the scenario does not fit.
+        """
         try:
-            tasks = load_scenario(fpath)['tasks']
+            tasks = load_scenario(self.config.features or None)['tasks']
         except (OSError, ValueError, AttributeError):
             tasks = []
         tasks = [t for t in tasks if t[1].shape == (self.robot.n,)]
@@ -230,6 +210,20 @@ class Learner:
             qs = self.robot.random_configurations(8, rng, margin=0.2)
             tasks = [(f'random_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(4)]
         return tasks
+
+    def _calibrate(self, fs: FeatureSet) -> np.ndarray:
+        """Calibrate one fixed scale per feature.
+
+        The std of raw features over smooth trajectories across the scenario's
+        tasks, conditioned as every choice set is (1 where a feature does not vary).
+        """
+        n = self.config.n_calibration
+        sampler = AlternativeSampler(self.robot, self.config.n_waypoints, SamplerConfig(n))
+        rng = np.random.default_rng(self.config.calibration_seed)
+        rows = [fs.raw(self.condition(self.retime(sampler.sample(start, goal, rng, m=n))))
+                for _, start, goal in self.tasks()]
+        sd = np.concatenate(rows).std(axis=0)
+        return np.where(sd > 1e-12, sd, 1.0)
 
     def _reset_posteriors(self):
         self.posteriors: Dict[str, ParticlePosterior] = {}
@@ -329,6 +323,21 @@ class Learner:
         return rej
 
     # ------------------------------------------------------------ learning
+    def retime(self, q: np.ndarray) -> np.ndarray:
+        """Re-time trajectories ``(M, T, n)`` as demonstrations are resampled.
+
+        Equal tool-path spacing with ``resample: arc_length``; unchanged with
+        ``resample: time``.
+        """
+        if self.config.resample != 'arc_length':
+            return q
+        tool = self.robot.frame_poses(q, [self.robot.tool_frame]).positions[:, :, 0]
+        return reparametrize_arc_length(q, tool)
+
+    def condition(self, q: np.ndarray) -> np.ndarray:
+        """The smoothing (and clipping to limits) shared by every row of a choice set."""
+        return condition(q, self.config.smooth, self.robot.lower, self.robot.upper)
+
     def choice_set(self, q_demo: np.ndarray, index: int) -> Tuple[np.ndarray, np.ndarray]:
         """Build a demonstration's conditioned choice set and its scaled features.
 
@@ -336,12 +345,8 @@ class Learner:
         row 0 is the demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        robot = self.robot
-        alts = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo)
-        tool = robot.frame_poses(alts, [robot.tool_frame]).positions[:, :, 0]
-        alts = reparametrize_arc_length(alts, tool)
-        allq = np.concatenate([q_demo[None], alts])
-        allq = condition(allq, self.config.smooth, robot.lower, robot.upper)
+        alts = self.retime(self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo))
+        allq = self.condition(np.concatenate([q_demo[None], alts]))
         return allq, self.features(allq)
 
     def process(self, demo: Demonstration) -> StepResult:

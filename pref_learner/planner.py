@@ -277,7 +277,7 @@ def plan_benchmark(quick: bool = False) -> dict:
     from .learner import Learner, LearnerConfig
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
     planner = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
-    tasks = L._tasks(None)
+    tasks = L.tasks()
     rng = np.random.default_rng(0)
     times, iters = [], []
     for k in range(4 if quick else 10):

@@ -19,7 +19,6 @@ import numpy as np
 
 from .alternatives import AlternativeSampler, SamplerConfig
 from .choice import choice_probabilities
-from .demonstrations import condition, reparametrize_arc_length
 
 
 @dataclass(frozen=True)
@@ -44,17 +43,13 @@ class SimulatedTeacher:
 
     def __init__(self, learner, true_weights: Sequence[float], config: TeacherConfig,
                  tasks=None):
-        from .features import load_scenario
         w = np.asarray(true_weights, dtype=np.float64)
         if w.shape != (learner.features.d,) or not np.linalg.norm(w) > 0:
             raise ValueError(f'true weights must be {learner.features.d} numbers, not all 0')
         self.theta = w / np.linalg.norm(w)
         self.learner = learner
         self.config = config
-        self.tasks = tasks or learner._tasks(learner.config.features or None) \
-            if tasks is None else tasks
-        if not self.tasks:
-            self.tasks = load_scenario()['tasks']
+        self.tasks = tasks if tasks is not None else learner.tasks()
         self.sampler = AlternativeSampler(learner.robot, learner.config.n_waypoints,
                                           SamplerConfig(config.n_candidates,
                                                         noise_scale=learner.config.noise_scale))
@@ -64,15 +59,12 @@ class SimulatedTeacher:
         c = self.config
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
         name, start, goal = self.tasks[index % len(self.tasks)]
-        robot = self.learner.robot
         cand = self.sampler.sample(start, goal, rng)
-        cand = np.concatenate([self.sampler.straight(start, goal)[None], cand])
-        tool = robot.frame_poses(cand, [robot.tool_frame]).positions[:, :, 0]
-        cand = reparametrize_arc_length(cand, tool)
+        cand = self.learner.retime(np.concatenate([self.sampler.straight(start, goal)[None],
+                                                   cand]))
         # the person moves along a raw candidate; they choose by its features as the
         # learner perceives them (after the shared conditioning)
-        feats = self.learner.features(condition(cand, self.learner.config.smooth,
-                                                robot.lower, robot.upper))
+        feats = self.learner.features(self.learner.condition(cand))
         p = choice_probabilities(feats, self.theta, c.beta, c.model)
         return name, cand[int(rng.choice(len(cand), p=p))]
 

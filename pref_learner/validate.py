@@ -114,7 +114,7 @@ def _arm_session(truth, person, n_demos, seed, n_particles, n_alternatives, plan
     for m, s in L.summaries().items():
         res[m] = {'cosine': float(s.mean @ t)}
         if planner is not None:
-            _, start, goal = L._tasks(None)[0]
+            _, start, goal = L.tasks()[0]
             best = planner.plan(t, start, goal, np.random.default_rng(seed))
             mine = planner.plan(s.mean, start, goal, np.random.default_rng(seed))
             res[m]['regret'] = float(best.features @ t - mine.features @ t)

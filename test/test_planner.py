@@ -17,7 +17,7 @@ from pref_learner.planner import (PlannerConfig, TrajectoryPlanner, planner_alte
 @pytest.fixture(scope='module')
 def setup():
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
-    return L, L._tasks(None)
+    return L, L.tasks()
 
 
 def test_objective_gradient_against_finite_differences(setup):
@@ -149,7 +149,7 @@ def test_planner_node_over_dds():
     from pref_learner.ros.planner_node import LATCHED, PlannerNode
     from ros_util import ros_context, spin_until, spinning
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
-    _, s, g = L._tasks(None)[0]
+    _, s, g = L.tasks()[0]
     with ros_context() as (ctx, ex):
         node = PlannerNode(context=ctx)
         client = rclpy.create_node('plan_client', context=ctx)
