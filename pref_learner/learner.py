@@ -300,6 +300,16 @@ class Learner:
     def set_teaching(self, on: bool) -> List[object]:
         return self._handle(self.recorder.set_teaching(on))
 
+    def add_demonstration(self, demo: Demonstration) -> List[object]:
+        """Learn from a whole demonstration; returns [StepResult] or [Rejection]."""
+        return self._handle([demo])
+
+    def save(self) -> None:
+        """Write the posterior(s) and manifest now (they are also written after each update)."""
+        if self.store is None:
+            raise ValueError('no state_dir configured')
+        self._save_posteriors()
+
     def _handle(self, events) -> List[object]:
         out = []
         for ev in events:
@@ -335,7 +345,7 @@ class Learner:
         return reparametrize_arc_length(q, tool)
 
     def condition(self, q: np.ndarray) -> np.ndarray:
-        """The smoothing (and clipping to limits) shared by every row of a choice set."""
+        """Smooth (and clip to limits) as every row of a choice set is."""
         return condition(q, self.config.smooth, self.robot.lower, self.robot.upper)
 
     def choice_set(self, q_demo: np.ndarray, index: int) -> Tuple[np.ndarray, np.ndarray]:

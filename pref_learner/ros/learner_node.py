@@ -332,9 +332,10 @@ class LearnerNode(Node):
             self._publish_estimates()
             return True, f'reset; previous state archived in {where}' if where else 'reset'
         if what == 'save':
-            if L.store is None:
-                return False, 'no state_dir configured'
-            L._save_posteriors()
+            try:
+                L.save()
+            except ValueError as exc:
+                return False, str(exc)
             return True, f'saved to {L.store.root}'
         if what == 'discard':
             if not L.discard_last():
@@ -367,8 +368,8 @@ class LearnerNode(Node):
             self._warn('bad_trajectory', '~/demonstration has NaN positions or non-increasing '
                        'time_from_start')
             return
-        self._results(self.learner._handle([Demonstration(t - t[0], q,
-                                                          self.learner.robot.joint_names)]))
+        self._results(self.learner.add_demonstration(
+            Demonstration(t - t[0], q, self.learner.robot.joint_names)))
 
     def _apply_runtime(self, cfg: LearnerConfig):
         """Apply new segmentation settings; during a demonstration, after it ends."""
