@@ -246,6 +246,15 @@ class Recorder:
             return self.stop()
         return []
 
+    def reconfigure(self, config: SegmentConfig) -> None:
+        """Use new segmentation settings from the next sample on (counters are kept)."""
+        if self.recording:
+            raise ValueError('cannot change segmentation settings during a demonstration')
+        self.config = config
+        self._win.clear()
+        self._ema = None
+        self._quiet_since = None
+
     def cancel(self) -> None:
         self._seg = None
         self._ring.clear()

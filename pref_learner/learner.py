@@ -300,6 +300,11 @@ class Learner:
     def set_teaching(self, on: bool) -> List[object]:
         return self._handle(self.recorder.set_teaching(on))
 
+    def reconfigure_segmentation(self, config: LearnerConfig) -> None:
+        """Adopt ``config``'s segmentation settings (the only run-time changes)."""
+        self.recorder.reconfigure(config.segment_config())
+        self.config = config
+
     def add_demonstration(self, demo: Demonstration) -> List[object]:
         """Learn from a whole demonstration; returns [StepResult] or [Rejection]."""
         return self._handle([demo])

@@ -180,3 +180,14 @@ def test_diagnostic_flags_tail_not_mode():
     assert not set_diagnostics(x, 0)['sparse']
     dt = set_diagnostics(tail, 0)
     assert dt['sparse'] and dt['percentiles'][0] > 99
+
+
+def test_reconfigure_keeps_counters_and_refuses_mid_demonstration():
+    rec = Recorder(NAMES, SegmentConfig(mode='manual'))
+    rec.feed(1, NAMES, np.zeros(7))
+    rec.feed(1, NAMES, np.zeros(7))                      # duplicate
+    rec.reconfigure(SegmentConfig(mode='motion', dwell=0.8))
+    assert rec.config.dwell == 0.8 and rec.counters['duplicate'] == 1
+    rec.start()
+    with pytest.raises(ValueError, match='during a demonstration'):
+        rec.reconfigure(SegmentConfig(mode='manual'))

@@ -373,16 +373,12 @@ class LearnerNode(Node):
 
     def _apply_runtime(self, cfg: LearnerConfig):
         """Apply new segmentation settings; during a demonstration, after it ends."""
-        from ..demonstrations import Recorder
         if self.learner.recorder.recording:
             self._pending_config = cfg
             return
         self._pending_config = None
+        self.learner.reconfigure_segmentation(cfg)
         self.config = cfg
-        self.learner.config = cfg
-        old = self.learner.recorder
-        self.learner.recorder = Recorder(self.learner.robot.joint_names, cfg.segment_config())
-        self.learner.recorder.counters.update(old.counters)
         self.get_logger().info('segmentation settings updated')
 
     def _on_estimate(self, r: StepResult):
