@@ -107,7 +107,10 @@ class LearnerNode(Node):
         self.counters = collections.Counter()
         self.last_warning = ''
         self._pending_config = None
+        self._max_skew = 0.0
+        self._summaries = {}
         self._declare_parameters()
+        self._max_skew = float(self.get_parameter('max_stamp_skew').value)
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
         for m in self.learner.messages:
@@ -120,6 +123,8 @@ class LearnerNode(Node):
             from ..bags import BagWriter
             self._bag = BagWriter(bag)
         self._make_interfaces()
+        self._js_topic = self.resolve_topic_name('joint_states')
+        self._teach_topic = self.resolve_topic_name('~/teaching')
         self._cache = {}
         self._latency = float('nan')
         self._worker = threading.Thread(target=self._run, name='pref_learner_worker',
@@ -191,6 +196,9 @@ class LearnerNode(Node):
 
     def _after_set(self, params):
         """Hand accepted run-time changes to the worker (checked in ``_on_set``)."""
+        for p in params:
+            if p.name == 'max_stamp_skew':
+                self._max_skew = float(p.value)
         changes = {p.name: p.value for p in params if p.name in _RUNTIME}
         if changes and hasattr(self, 'config'):
             self._enqueue(('config', self._runtime_config(changes)))
@@ -285,7 +293,7 @@ class LearnerNode(Node):
             if self._bag is not None:
                 self._bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState', recv, raw)
             stamp = msg.header.stamp.sec * 10**9 + msg.header.stamp.nanosec
-            skew = self.get_parameter('max_stamp_skew').value
+            skew = self._max_skew
             if skew > 0 and abs(stamp - time.time_ns()) * 1e-9 > skew:
                 self._warn('stamp_out_of_range', f'joint_states stamp {stamp * 1e-9:.3f} s is '
                            f'more than {skew} s from now')
@@ -298,7 +306,7 @@ class LearnerNode(Node):
         elif kind == 'teach':
             _, recv, on = item
             if self._bag is not None:
-                self._bag.write(self._teach_topic(),
+                self._bag.write(self._teach_topic,
                                 self._bag.boolean(on), recv)
             self._results(self.learner.set_teaching(on))
         elif kind == 'traj':
@@ -311,13 +319,6 @@ class LearnerNode(Node):
                 done.set()
         elif kind == 'config':
             self._apply_runtime(item[1])
-
-    @property
-    def _js_topic(self):
-        return self.resolve_topic_name('joint_states')
-
-    def _teach_topic(self):
-        return self.resolve_topic_name('~/teaching')
 
     def _service(self, what):
         L = self.learner
@@ -404,13 +405,14 @@ class LearnerNode(Node):
     # ------------------------------------------------------------ publishing
     def _publish_estimates(self):
         L = self.learner
-        msgs = {}
+        msgs, sums = {}, {}
         for m, post in L.posteriors.items():
-            s = post.summary()
-            for topic, (data, dims) in estimate_arrays(s, post).items():
+            sums[m] = post.summary()
+            for topic, (data, dims) in estimate_arrays(sums[m], post).items():
                 msgs[(m, topic)] = _array_msg(data, dims)
         with self._lock:
             self._cache = msgs
+            self._summaries = sums
         stamp = time.time_ns()
         for key, msg in msgs.items():
             self._pubs[key].publish(msg)
@@ -426,8 +428,9 @@ class LearnerNode(Node):
         arr = DiagnosticArray()
         arr.header.stamp = self.get_clock().now().to_msg()
         rc = L.recorder.counters
-        for m, post in L.posteriors.items():
-            s = post.summary()
+        with self._lock:
+            sums = dict(self._summaries)      # computed once per estimate, not per status
+        for m, s in sums.items():
             st = DiagnosticStatus()
             st.level = DiagnosticStatus.OK if not self.last_warning else DiagnosticStatus.WARN
             st.name = f'{self.get_name()}: {m}'
