@@ -76,25 +76,21 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     rng = np.random.default_rng(0)
     cfg = dict(model='less', ess_min_ratio=0.0)
     f0 = sets[0]
+    reps = 5 if quick else 15
+
+    def update_ms(n_particles, features):
+        post = ParticlePosterior.create(PosteriorConfig(n_particles=n_particles, **cfg), 6, rng)
+        rec = post.prepare(features, 0)
+        return _median_ms(lambda: post.update(rec, rng), reps)
     ns = [1000, 2000, 4000, 8000]
-    tn = []
-    for n in ns:
-        post = ParticlePosterior.create(PosteriorConfig(n_particles=n, **cfg), 6, rng)
-        rec = post.prepare(f0, 0)
-        tn.append(_median_ms(lambda: post.update(rec, rng), 5 if quick else 15))
-    out['posterior_update_scaling_exponent_particles'] = _slope(ns, tn)
+    out['posterior_update_scaling_exponent_particles'] = _slope(
+        ns, [update_ms(n, f0) for n in ns])
     ms = [125, 250, 500, 1000]
-    tm = []
-    post = ParticlePosterior.create(PosteriorConfig(n_particles=4000, **cfg), 6, rng)
-    for m in ms:
-        f = rng.normal(size=(m + 1, 6))
-        rec = post.prepare(f, 0)
-        tm.append(_median_ms(lambda: post.update(rec, rng), 5 if quick else 15))
-    out['posterior_update_scaling_exponent_alternatives'] = _slope(ms, tm)
+    out['posterior_update_scaling_exponent_alternatives'] = _slope(
+        ms, [update_ms(4000, rng.normal(size=(m + 1, 6))) for m in ms])
 
     # --- features and kinematics (issue: robot model and features)
     q = qs[0][1:]
-    reps = 5 if quick else 15
     out['features_ms'] = _median_ms(lambda: L.features.raw(q), reps)
     robot = L.robot
     qp = robot.to_pinocchio(q[0, 10])
@@ -141,22 +137,14 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, fl
     if 'core' in parts:
         res.update(core_benchmarks(quick))
     if 'planner' in parts:
-        try:
-            from .planner import plan_benchmark
-        except ImportError:
-            pass
-        else:
-            res.update(plan_benchmark(quick))
+        from .planner import plan_benchmark
+        res.update(plan_benchmark(quick))
     if 'node' in parts:
         from .ros.bench_node import node_benchmarks
         res.update(node_benchmarks(quick))
     if 'demo' in parts:
         res.update(demo_benchmark(quick))
     if 'validate' in parts:
-        try:
-            from .validate import run_studies
-        except ImportError:
-            pass
-        else:
-            res.update(run_studies(quick=True, out_dir=None)['figures'])
+        from .validate import run_studies
+        res.update(run_studies(quick=True, out_dir=None)['figures'])
     return res

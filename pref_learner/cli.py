@@ -230,6 +230,16 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f'{self.prog}: {message} (see --help)\n')
 
 
+def _learning_options(p, choices=None) -> None:
+    """Add the settings that decide what is learned (demo, learn and report)."""
+    p.add_argument('--model', default='both', choices=choices,
+                   help='boltzmann, less or both (default both)')
+    p.add_argument('--particles', type=int, default=4000)
+    p.add_argument('--alternatives', type=int, default=500)
+    p.add_argument('--beta', type=float, default=5.0)
+    p.add_argument('--seed', type=int, default=0)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog='pref-learner', description=(
         'Learn what a person teaching a robot arm cares about (weights over task features).'))
@@ -238,25 +248,17 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser('demo', help='simulated teaching session over ROS 2 on this machine')
     d.add_argument('--out', default='out/demo', help='output directory (default out/demo)')
-    d.add_argument('--model', default='both', choices=['boltzmann', 'less', 'both'])
+    _learning_options(d, choices=['boltzmann', 'less', 'both'])
     d.add_argument('--person', default='less', choices=['boltzmann', 'less'],
                    help='how the simulated person chooses')
     d.add_argument('--demonstrations', type=int, default=8)
-    d.add_argument('--particles', type=int, default=4000)
-    d.add_argument('--alternatives', type=int, default=500)
-    d.add_argument('--beta', type=float, default=5.0)
-    d.add_argument('--seed', type=int, default=0)
     d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
     d.set_defaults(func=cmd_demo)
 
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
     lrn.add_argument('bag')
     lrn.add_argument('--out', required=True, help='new directory for state and estimates bag')
-    lrn.add_argument('--model', default='both')
-    lrn.add_argument('--particles', type=int, default=4000)
-    lrn.add_argument('--alternatives', type=int, default=500)
-    lrn.add_argument('--beta', type=float, default=5.0)
-    lrn.add_argument('--seed', type=int, default=0)
+    _learning_options(lrn)
     lrn.set_defaults(func=cmd_learn)
 
     v = sub.add_parser('validate', help='the validation studies of the two choice models')
@@ -268,11 +270,7 @@ def build_parser() -> argparse.ArgumentParser:
     r = sub.add_parser('report', help='HTML report of a state directory or a bag')
     r.add_argument('source', help='state directory, or a bag to learn from first')
     r.add_argument('--out', required=True, help='directory for report.html and PNGs')
-    r.add_argument('--model', default='both')
-    r.add_argument('--particles', type=int, default=4000)
-    r.add_argument('--alternatives', type=int, default=500)
-    r.add_argument('--beta', type=float, default=5.0)
-    r.add_argument('--seed', type=int, default=0)
+    _learning_options(r)
     r.set_defaults(func=cmd_report)
 
     c = sub.add_parser('compare', help='which choice model explains these demonstrations')

@@ -67,3 +67,15 @@ def publish_stream(ex, pub, teach_pub, stamps, q, names, rate_hz=1000.0):
     publish_paced(pub, stamps, q, names, rate_hz)
     time.sleep(0.05)
     teach_pub.publish(Bool(data=False))
+
+
+def follow_status(node, topic='/pref_learner/status'):
+    """A dict kept up to date with the learner node's latest status values."""
+    from diagnostic_msgs.msg import DiagnosticArray
+    status = {}
+
+    def on_status(msg):
+        for st in msg.status:
+            status.update({kv.key: kv.value for kv in st.values})
+    node.create_subscription(DiagnosticArray, topic, on_status, LATCHED)
+    return status

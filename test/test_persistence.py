@@ -10,7 +10,6 @@ import sys
 import numpy as np
 import pytest
 import rclpy
-from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
@@ -20,7 +19,7 @@ from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.posterior import ParticlePosterior
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
 from pref_learner.ros.common import publish_paced
-from ros_util import LATCHED, publish_stream, ros_context, spin_until
+from ros_util import LATCHED, follow_status, publish_stream, ros_context, spin_until
 
 TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
 SMALL = dict(n_particles=800, n_alternatives=150)
@@ -85,13 +84,7 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
         with ros_context() as (ctx, ex):
             node = rclpy.create_node('persistence_client', context=ctx)
             ex.add_node(node)
-            status = {}
-
-            def on_status(msg):
-                for st in msg.status:
-                    status.update({kv.key: kv.value for kv in st.values})
-            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status,
-                                     LATCHED)
+            status = follow_status(node)
             pub = node.create_publisher(JointState, 'joint_states',
                                         QoSProfile(depth=100,
                                                    reliability=ReliabilityPolicy.RELIABLE))
@@ -130,13 +123,7 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             from std_msgs.msg import Float64MultiArray
             node.create_subscription(Float64MultiArray, '/pref_learner/weights',
                                      lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)
-            status = {}
-
-            def on_status2(msg):
-                for s_ in msg.status:
-                    status.update({kv.key: kv.value for kv in s_.values})
-            node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status2,
-                                     LATCHED)
+            status = follow_status(node)
             assert spin_until(ex, lambda: 'w' in got and status, 60)
             assert status['demonstrations'] == '3'
             np.testing.assert_allclose(got['w'], saved.summary().mean, atol=1e-12)

@@ -2,10 +2,13 @@
 # SPDX-License-Identifier: Apache-2.0
 """Pieces shared by the nodes and their clients: spinning a node, message builders."""
 
+import collections
 import os
+import threading
 import time
 
 import rclpy
+from rcl_interfaces.msg import ParameterDescriptor
 from sensor_msgs.msg import JointState
 
 
@@ -33,6 +36,13 @@ def run_node(factory, args=None, name='pref_learner') -> None:
         pass
 
 
+def declare_read_only(node, params) -> None:
+    """Declare read-only parameters from ``{name: (default, description)}``."""
+    for name, (default, description) in params.items():
+        node.declare_parameter(name, default, ParameterDescriptor(description=description,
+                                                                  read_only=True))
+
+
 def joint_state(stamp_ns: int, names, positions) -> JointState:
     m = JointState()
     m.header.stamp.sec = int(stamp_ns // 10**9)
@@ -55,3 +65,51 @@ def publish_paced(pub, stamps, q, names, rate_hz: float, every=None) -> int:
         if d > 0:
             time.sleep(d)
     return len(stamps)
+
+
+class QueueWorker:
+    """A plain thread that handles queued items in arrival order.
+
+    Callbacks only :meth:`put`; ``handle(item)`` runs on the thread and any
+    exception it raises goes to ``on_error(exc)``, so one bad input never stops
+    the node. The queue is bounded: when full the oldest item is dropped and
+    counted in :attr:`dropped`.
+    """
+
+    def __init__(self, handle, on_error, maxlen: int, name: str, alive=lambda: True):
+        self._handle, self._on_error, self._alive = handle, on_error, alive
+        self._queue = collections.deque(maxlen=maxlen)
+        self._wake = threading.Event()
+        self._stop = threading.Event()
+        self.dropped = 0
+        self._thread = threading.Thread(target=self._run, name=name, daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def put(self, item) -> None:
+        if len(self._queue) == self._queue.maxlen:
+            self.dropped += 1
+        self._queue.append(item)
+        self._wake.set()
+
+    def __len__(self) -> int:
+        return len(self._queue)
+
+    def _run(self) -> None:
+        while not self._stop.is_set() and self._alive():
+            self._wake.clear()
+            if not self._queue:
+                self._wake.wait(0.05)
+                continue
+            item = self._queue.popleft()
+            try:
+                self._handle(item)
+            except Exception as exc:  # noqa: BLE001 -- reported, the worker goes on
+                self._on_error(exc)
+
+    def stop(self, timeout: float = 10.0) -> None:
+        self._stop.set()
+        self._wake.set()
+        if self._thread.is_alive():
+            self._thread.join(timeout=timeout)

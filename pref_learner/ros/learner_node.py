@@ -30,6 +30,7 @@ from visualization_msgs.msg import Marker, MarkerArray
 
 from ..bags import estimate_arrays
 from ..learner import Learner, LearnerConfig, StepResult
+from .common import QueueWorker
 
 ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                           durability=DurabilityPolicy.TRANSIENT_LOCAL,
@@ -100,9 +101,8 @@ class LearnerNode(Node):
 
     def __init__(self, **kwargs):
         super().__init__('pref_learner', **kwargs)
-        self._queue = collections.deque(maxlen=200_000)
-        self._wake = threading.Event()
-        self._stop = threading.Event()
+        self._worker = QueueWorker(self._handle_item, self._on_worker_error, 200_000,
+                                   'pref_learner_worker', alive=lambda: self.context.ok())
         self._lock = threading.Lock()
         self.counters = collections.Counter()
         self.last_warning = ''
@@ -127,8 +127,6 @@ class LearnerNode(Node):
         self._teach_topic = self.resolve_topic_name('~/teaching')
         self._cache = {}
         self._latency = float('nan')
-        self._worker = threading.Thread(target=self._run, name='pref_learner_worker',
-                                        daemon=True)
         self._worker.start()
         self._publish_estimates()
         period = self.get_parameter('publish_period').value
@@ -225,10 +223,7 @@ class LearnerNode(Node):
         self._marker_pub = self.create_publisher(MarkerArray, '~/markers', ESTIMATE_QOS)
 
     def _enqueue(self, item):
-        if len(self._queue) == self._queue.maxlen:
-            self.counters['dropped_queue_full'] += 1
-        self._queue.append(item)
-        self._wake.set()
+        self._worker.put(item)
 
     def _on_joint_states(self, raw: bytes):
         self._enqueue(('js', time.time_ns(), raw))
@@ -269,21 +264,14 @@ class LearnerNode(Node):
         self.get_logger().warning(text)
 
     # ------------------------------------------------------------ worker
-    def _run(self):
-        while not self._stop.is_set() and self.context.ok():
-            if not self._queue:
-                self._wake.wait(0.05)
-                self._wake.clear()
-                continue
-            item = self._queue.popleft()
-            try:
-                self._handle(item)
-                if self._pending_config is not None and not self.learner.recorder.recording:
-                    self._apply_runtime(self._pending_config)
-            except Exception as exc:  # the node keeps running whatever one input does
-                if not self.context.ok():
-                    return  # shutting down: nothing left to publish to
-                self._warn('internal_error', f'{type(exc).__name__}: {exc}')
+    def _handle_item(self, item):
+        self._handle(item)
+        if self._pending_config is not None and not self.learner.recorder.recording:
+            self._apply_runtime(self._pending_config)
+
+    def _on_worker_error(self, exc):
+        if self.context.ok():  # after shutdown there is nothing left to publish to
+            self._warn('internal_error', f'{type(exc).__name__}: {exc}')
 
     def _handle(self, item):
         kind = item[0]
@@ -445,7 +433,8 @@ class LearnerNode(Node):
                 'last_rejection': (L.rejections[-1]['reason'] + ': '
                                    + L.rejections[-1]['detail']) if L.rejections else '',
                 'last_update_latency_ms': f'{self._latency * 1e3:.1f}',
-                'buffer_fill': str(len(self._queue)),
+                'buffer_fill': str(len(self._worker)),
+                'node_dropped_queue_full': str(self._worker.dropped),
                 'recording': str(L.recorder.recording).lower(),
                 'samples': str(rc.get('samples', 0)),
                 'weights': json.dumps(np.round(s.mean, 6).tolist()),
@@ -492,10 +481,8 @@ class LearnerNode(Node):
         self._publish_status()
 
     def destroy_node(self):
-        self._stop.set()
-        self._wake.set()
         if getattr(self, '_worker', None) is not None:
-            self._worker.join(timeout=10.0)
+            self._worker.stop()
         if getattr(self, '_bag', None) is not None:
             self._bag.close()
             self._bag = None

@@ -5,12 +5,10 @@
 from __future__ import annotations
 
 import collections
-import threading
 
 import numpy as np
 from builtin_interfaces.msg import Duration
 from geometry_msgs.msg import Point
-from rcl_interfaces.msg import ParameterDescriptor
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
 from std_msgs.msg import Float64MultiArray
@@ -19,6 +17,7 @@ from visualization_msgs.msg import Marker, MarkerArray
 
 from ..learner import Learner, LearnerConfig
 from ..planner import PlannerConfig, TrajectoryPlanner, time_parametrize
+from .common import QueueWorker, declare_read_only
 
 LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                      durability=DurabilityPolicy.TRANSIENT_LOCAL)
@@ -43,8 +42,7 @@ class PlannerNode(Node):
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
             'seed': (0, 'seed of the restarts'),
         }
-        for k, (v, d) in params.items():
-            self.declare_parameter(k, v, ParameterDescriptor(description=d, read_only=True))
+        declare_read_only(self, params)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
         L = Learner(LearnerConfig(features=g('features'), n_particles=1, n_alternatives=1,
                                   calibration_seed=g('calibration_seed')))
@@ -63,11 +61,8 @@ class PlannerNode(Node):
         self.create_subscription(JointTrajectory, '~/request', self._on_request, 10)
         self.traj_pub = self.create_publisher(JointTrajectory, '~/trajectory', 10)
         self.marker_pub = self.create_publisher(MarkerArray, '~/markers', LATCHED)
-        self._queue = collections.deque(maxlen=16)
-        self._wake = threading.Event()
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, daemon=True)
-        self._thread.start()
+        self._worker = QueueWorker(self._plan, self._on_error, 16, 'pref_planner_worker')
+        self._worker.start()
 
     def _warn(self, key, text):
         self.counters[key] += 1
@@ -84,22 +79,13 @@ class PlannerNode(Node):
             self.particles = arr
 
     def _on_request(self, msg):
-        self._queue.append(msg)
-        self._wake.set()
+        self._worker.put(msg)
 
-    def _run(self):
-        while not self._stop.is_set():
-            if not self._queue:
-                self._wake.wait(0.1)
-                self._wake.clear()
-                continue
-            msg = self._queue.popleft()
-            try:
-                self._plan(msg)
-            except ValueError as exc:
-                self._warn('bad_request', f'planning request refused: {exc}')
-            except Exception as exc:  # keep running whatever one request does
-                self._warn('internal_error', f'{type(exc).__name__}: {exc}')
+    def _on_error(self, exc):
+        if isinstance(exc, ValueError):
+            self._warn('bad_request', f'planning request refused: {exc}')
+        else:
+            self._warn('internal_error', f'{type(exc).__name__}: {exc}')
 
     def _plan(self, msg: JointTrajectory):
         if len(msg.points) != 2:
@@ -152,10 +138,8 @@ class PlannerNode(Node):
         self.counters['plans'] += 1
 
     def destroy_node(self):
-        self._stop.set()
-        self._wake.set()
-        if getattr(self, '_thread', None) is not None:
-            self._thread.join(timeout=10.0)
+        if getattr(self, '_worker', None) is not None:
+            self._worker.stop()
         super().destroy_node()
 
 

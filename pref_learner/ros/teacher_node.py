@@ -10,7 +10,6 @@ import time
 
 import numpy as np
 import rclpy
-from rcl_interfaces.msg import ParameterDescriptor
 from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
@@ -18,6 +17,7 @@ from std_msgs.msg import Bool
 
 from ..learner import Learner, LearnerConfig
 from ..sim import SimulatedTeacher, TeacherConfig
+from .common import declare_read_only
 
 
 class TeacherNode(Node):
@@ -39,8 +39,7 @@ class TeacherNode(Node):
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
         }
-        for k, (v, d) in p.items():
-            self.declare_parameter(k, v, ParameterDescriptor(description=d, read_only=True))
+        declare_read_only(self, p)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
         self.learner = Learner(LearnerConfig(features=g('features'), n_particles=1,
                                              n_alternatives=1,
