@@ -23,7 +23,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
-from typing import Dict, Optional, Sequence, Tuple
+from typing import Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -354,8 +354,3 @@ class RobotModel:
         jac = pin.getFrameJacobian(self.model, self.data, fid, pin.LOCAL_WORLD_ALIGNED)
         cols = [self.model.joints[j].idx_v for j in self._jid]
         return np.array(jac[:, cols])
-
-    def describe(self) -> Dict[str, object]:
-        return {'source': self.source, 'joint_names': list(self.joint_names),
-                'tool_frame': self.tool_frame,
-                'lower': self.lower.tolist(), 'upper': self.upper.tolist()}
