@@ -33,7 +33,7 @@ the learner derives it from a seed stored with each demonstration.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Callable, Dict, Optional
+from typing import Callable, Dict, Optional, Tuple
 
 import numpy as np
 
@@ -77,55 +77,128 @@ class SmoothNoise:
         return float(h * nrm ** 2 * 9.0 * (T - 2) * np.sum(np.asarray(scale) ** 2))
 
 
+KINDS = ('smooth', 'near_optimal', 'perturb', 'planner')
+
+
 @dataclass(frozen=True)
 class SamplerConfig:
-    """Mixture of samplers and their scales."""
+    """Mixture of samplers, their spread levels and the near-optimal ascent.
+
+    ``spreads`` are the option spreads the learner considers, each a fraction
+    of every joint's range (2 pi for continuous joints). The alternatives are
+    split evenly between the levels (group ``g`` of a row is its level), and
+    within a level by ``mix``. One level is a fixed spread.
+    """
 
     n_alternatives: int = 500
-    mix: Dict[str, float] = field(default_factory=lambda: {'smooth': 0.8, 'perturb': 0.2})
-    noise_scale: float = 0.08          # fraction of each joint's range (pi if continuous)
+    mix: Dict[str, float] = field(default_factory=lambda: {'smooth': 1.0})
+    spreads: Tuple[float, ...] = (0.08,)
     max_redraws: int = 8
+    ascent_steps: int = 8
+    ascent_step: float = 0.25          # largest waypoint move per step, x the level's spread
 
     def __post_init__(self):
         if self.n_alternatives < 1:
             raise ValueError(f'n_alternatives must be >= 1, got {self.n_alternatives}')
-        bad = sorted(set(self.mix) - {'smooth', 'perturb', 'planner'})
+        bad = sorted(set(self.mix) - set(KINDS))
         if bad:
-            raise ValueError(f'sampler mix has unknown kinds {bad}; allowed: smooth, perturb, '
-                             'planner')
+            raise ValueError(f'sampler mix has unknown kinds {bad}; allowed: {list(KINDS)}')
         if any(v < 0 for v in self.mix.values()) or sum(self.mix.values()) <= 0:
             raise ValueError(f'sampler mix proportions must be >= 0 and not all 0: {self.mix}')
-        if not self.noise_scale > 0:
-            raise ValueError(f'noise_scale must be > 0, got {self.noise_scale}')
+        sp = tuple(self.spreads)
+        if not sp or any(not (0 < float(v) <= 1.0) for v in sp):
+            raise ValueError(f'spreads must be one or more fractions in (0, 1], got {sp!r}')
+        if len(set(sp)) != len(sp):
+            raise ValueError(f'spreads must be distinct, got {sp!r}')
+        if self.n_alternatives < len(self.option_models()):
+            raise ValueError(f'n_alternatives ({self.n_alternatives}) must be >= the number '
+                             f'of option levels ({len(self.option_models())})')
+        if self.ascent_steps < 0 or not self.ascent_step > 0:
+            raise ValueError('ascent_steps must be >= 0 and ascent_step > 0')
 
-    def counts(self) -> Dict[str, int]:
-        """Count each kind (largest remainder, so they sum to n_alternatives)."""
+    @property
+    def noise_scale(self) -> float:
+        """The middle spread level (what calibration and one-level sets use)."""
+        return float(sorted(self.spreads)[len(self.spreads) // 2])
+
+    def counts(self, m: Optional[int] = None, mix: Optional[Dict[str, float]] = None
+               ) -> Dict[str, int]:
+        """Count each kind among ``m`` (default n_alternatives) by largest remainder."""
+        return _split(self.n_alternatives if m is None else m, mix or self.mix)
+
+    def option_models(self) -> Tuple[Tuple[str, float, Dict[str, float]], ...]:
+        """The option models (levels) of a set: ``(label, spread, mix)`` each.
+
+        One spread: one level holding every kind of the mix. Several spreads:
+        one level per spread of smooth draws (with any perturb or planner
+        share), and near-optimal draws form a level of their own at the
+        middle spread, so the posterior's level coordinate says which option
+        model explains the person's demonstrations.
+        """
+        if len(self.spreads) == 1:
+            return (('mixed %g' % self.spreads[0], float(self.spreads[0]), dict(self.mix)),)
+        rest = {k: v for k, v in self.mix.items() if k != 'near_optimal' and v > 0}
+        out = [('smooth %g' % s, float(s), rest) for s in self.spreads] if rest else []
+        if self.mix.get('near_optimal', 0) > 0:
+            out.append(('near-optimal %g' % self.noise_scale, self.noise_scale,
+                        {'near_optimal': 1.0}))
+        return tuple(out)
+
+    def level_counts(self, m: Optional[int] = None) -> np.ndarray:
+        """Alternatives per level ``(L,)``: near-optimal its mix share, the rest evenly."""
+        m = self.n_alternatives if m is None else m
+        models = self.option_models()
+        L = len(models)
+        if L == 1:
+            return np.array([m])
         tot = sum(self.mix.values())
-        kinds = sorted(self.mix)
-        raw = np.array([self.mix[k] / tot * self.n_alternatives for k in kinds])
-        c = np.floor(raw).astype(int)
-        for i in np.argsort(-(raw - c))[: self.n_alternatives - c.sum()]:
-            c[i] += 1
-        return {k: int(v) for k, v in zip(kinds, c)}
+        share = self.mix.get('near_optimal', 0) / tot
+        no = int(round(m * share)) if models[-1][2] == {'near_optimal': 1.0} else 0
+        if no:
+            no = min(max(no, 1), m - (L - 1))
+            L -= 1
+        rest = m - no
+        counts = [rest // L + (1 if i < rest % L else 0) for i in range(L)]
+        return np.array(counts + ([no] if no else []))
+
+
+def _split(m: int, mix: Dict[str, float]) -> Dict[str, int]:
+    tot = sum(mix.values())
+    kinds = sorted(k for k, v in mix.items() if v > 0)
+    raw = np.array([mix[k] / tot * m for k in kinds])
+    c = np.floor(raw).astype(int)
+    for i in np.argsort(-(raw - c))[: m - c.sum()]:
+        c[i] += 1
+    return {k: int(v) for k, v in zip(kinds, c)}
 
 
 class AlternativeSampler:
-    """Draws alternative trajectories for one start/goal pair."""
+    """Draws alternative trajectories for one start/goal pair.
+
+    ``ascent(q (k, T, n), weights (k, d)) -> (rewards (k,), gradients (k, T, n))``
+    serves the near-optimal kind (the task model gives it: scaled reward and
+    its gradient); ``planner`` the slow ``planner`` kind.
+    """
 
     def __init__(self, robot: RobotModel, n_waypoints: int,
                  config: SamplerConfig = SamplerConfig(),
-                 planner: Optional[Callable] = None, n_features: Optional[int] = None):
+                 planner: Optional[Callable] = None, n_features: Optional[int] = None,
+                 ascent: Optional[Callable] = None):
         self.robot = robot
         self.T = n_waypoints
         self.config = config
         self.noise = SmoothNoise(n_waypoints)
         rng_ = np.where(np.isfinite(robot.upper - robot.lower), robot.upper - robot.lower,
                         2 * np.pi)
-        self.scale = config.noise_scale * rng_
+        self.span = rng_
         self.planner = planner
+        self.ascent = ascent
         self.n_features = n_features
         if config.mix.get('planner', 0) > 0 and planner is None:
             raise ValueError('sampler mix asks for planner alternatives but no planner is set')
+        if config.mix.get('near_optimal', 0) > 0 and (ascent is None or n_features is None):
+            raise ValueError('sampler mix asks for near-optimal alternatives but no reward '
+                             'gradient (ascent) is set')
 
     def straight(self, start: np.ndarray, goal: np.ndarray) -> np.ndarray:
         s = np.linspace(0.0, 1.0, self.T)[:, None]
@@ -137,19 +210,21 @@ class AlternativeSampler:
         lo, hi = self.robot.lower, self.robot.upper
         return np.all((q >= lo) & (q <= hi), axis=(1, 2))
 
-    def _draw(self, k: int, n: int, rng: np.random.Generator) -> np.ndarray:
+    def _draw(self, k: int, n: int, scale: np.ndarray, rng: np.random.Generator) -> np.ndarray:
         amp = rng.random(k)[:, None, None]     # amplitude uniform in [0, 1] x scale
-        return self.noise.draw((k, n), rng) * self.scale * amp
+        return self.noise.draw((k, n), rng) * scale * amp
 
-    def _noisy(self, base: np.ndarray, m: int, rng: np.random.Generator) -> np.ndarray:
+    def _noisy(self, base: np.ndarray, m: int, spread: float,
+               rng: np.random.Generator) -> np.ndarray:
         n = base.shape[-1]
-        out = base[None] + self._draw(m, n, rng)
+        scale = spread * self.span
+        out = base[None] + self._draw(m, n, scale, rng)
         for _ in range(self.config.max_redraws):
             bad = ~self._within(out)
             if not bad.any():
                 break
             k = int(bad.sum())
-            out[bad] = base[None] + self._draw(k, n, rng)
+            out[bad] = base[None] + self._draw(k, n, scale, rng)
         bad = ~self._within(out)
         factor = 0.5
         while bad.any():
@@ -161,34 +236,71 @@ class AlternativeSampler:
         out[:, 0], out[:, -1] = base[0], base[-1]
         return out
 
+    def _near_optimal(self, line: np.ndarray, k: int, spread: float, weights: np.ndarray,
+                      rng: np.random.Generator) -> np.ndarray:
+        """Smooth draws moved up the reward of ``weights (k, d)`` by preconditioned ascent.
+
+        Each step moves along the reward gradient smoothed by the noise
+        covariance (so paths stay smooth, endpoints fixed), normalised so no
+        waypoint moves more than ``ascent_step`` x the level's spread of its
+        joint's range; joint limits are kept by clipping.
+        """
+        q = self._noisy(line, k, spread, rng)
+        op = self.noise.op
+        scale = spread * self.span
+        lo, hi = self.robot.lower, self.robot.upper
+        for _ in range(self.config.ascent_steps):
+            _, g = self.ascent(q, weights)                                # (k, T, n)
+            pg = np.einsum('ij,kj...->ki...', op, np.einsum('ji,kj...->ki...', op,
+                                                            g[:, 1:-1]))
+            pg *= scale ** 2
+            peak = np.max(np.abs(pg) / scale, axis=(1, 2))
+            ok = peak > 0
+            pg[ok] *= (self.config.ascent_step / peak[ok])[:, None, None]
+            q[:, 1:-1] = np.clip(q[:, 1:-1] + pg, lo, hi)
+        return q
+
     def sample(self, start, goal, rng: np.random.Generator, demo: Optional[np.ndarray] = None,
-               m: Optional[int] = None) -> np.ndarray:
-        """``m`` alternatives ``(m, T, n)`` from the configured mixture."""
+               m: Optional[int] = None, weights: Optional[Callable] = None):
+        """Draw ``m`` alternatives from the configured mixture and spread levels.
+
+        ``weights(k, rng) -> (k, d)`` gives reward weights for the near-optimal
+        kind (drawn from the current posterior; uniform on the sphere when not
+        given). Returns ``(alternatives (m, T, n), groups (m,))``, ``groups``
+        the spread level of each row.
+        """
         start = self.robot.check_configurations(start, 'start')
         goal = self.robot.check_configurations(goal, 'goal')
         cfg = self.config
-        if m is not None and m != cfg.n_alternatives:
-            cfg = SamplerConfig(m, cfg.mix, cfg.noise_scale, cfg.max_redraws)
-        counts = cfg.counts()
-        parts = []
+        m = cfg.n_alternatives if m is None else int(m)
         line = self.straight(start, goal)
-        for kind in sorted(counts):
-            k = counts[kind]
-            if k == 0:
-                continue
-            if kind == 'smooth':
-                parts.append(self._noisy(line, k, rng))
-            elif kind == 'perturb':
-                base = line if demo is None else np.asarray(demo, dtype=np.float64)
-                if base.shape != line.shape:
-                    raise ValueError(f'demo must be {line.shape}, got {base.shape}')
-                parts.append(self._noisy(base, k, rng))
-            else:
-                d = self.n_features
-                w = rng.standard_normal((k, d))
-                w /= np.linalg.norm(w, axis=1, keepdims=True)
-                parts.append(np.asarray(self.planner(start, goal, w, rng)))
-        return np.concatenate(parts, axis=0)
+        parts, groups = [], []
+        for g, ((_, spread, mix), m_level) in enumerate(zip(cfg.option_models(),
+                                                            cfg.level_counts(m))):
+            for kind, k in sorted(cfg.counts(int(m_level), mix).items()):
+                if k == 0:
+                    continue
+                if kind == 'smooth':
+                    part = self._noisy(line, k, spread, rng)
+                elif kind == 'perturb':
+                    base = line if demo is None else np.asarray(demo, dtype=np.float64)
+                    if base.shape != line.shape:
+                        raise ValueError(f'demo must be {line.shape}, got {base.shape}')
+                    part = self._noisy(base, k, spread, rng)
+                else:
+                    d = self.n_features
+                    if weights is not None:
+                        w = np.asarray(weights(k, rng), dtype=np.float64)
+                    else:
+                        w = rng.standard_normal((k, d))
+                        w /= np.linalg.norm(w, axis=1, keepdims=True)
+                    if kind == 'near_optimal':
+                        part = self._near_optimal(line, k, spread, w, rng)
+                    else:
+                        part = np.asarray(self.planner(start, goal, w, rng))
+                parts.append(part)
+                groups.append(np.full(k, g, dtype=np.int64))
+        return np.concatenate(parts, axis=0), np.concatenate(groups)
 
 
 def set_diagnostics(features: np.ndarray, chosen: int, log_sim: Optional[np.ndarray] = None,

@@ -132,7 +132,7 @@ def demo_benchmark(quick: bool = False) -> Dict[str, float]:
 def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, float]:
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
-    parts = parts or ['core', 'planner', 'node', 'demo', 'validate']
+    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
     if 'core' in parts:
         res.update(core_benchmarks(quick))
@@ -146,5 +146,13 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, fl
         res.update(demo_benchmark(quick))
     if 'validate' in parts:
         from .validate import run_studies
-        res.update(run_studies(quick=True, out_dir=None)['figures'])
+        figs = run_studies(quick=True, out_dir=None)['figures']
+        res.update({k: v for k, v in figs.items() if not k.startswith(('calib_', 'sbc_'))})
+    if 'calibration' in parts:
+        from .validate import calibration_figures, study_calibration, study_sbc
+        t = time.perf_counter()
+        calib = study_calibration(n_truths=8 if quick else 24, n_demos=10,
+                                  n_jobs=min(2, os.cpu_count() or 1))
+        res.update(calibration_figures(calib, study_sbc(n_runs=60 if quick else 200)))
+        res['calibration_wall_s'] = time.perf_counter() - t
     return res

@@ -49,14 +49,15 @@ def cmd_demo(args) -> int:
                    '-p', f'model:={args.model}', '-p', f'state_dir:={state}',
                    '-p', f'record_bag:={bag}', '-p', f'n_particles:={args.particles}',
                    '-p', f'n_alternatives:={args.alternatives}', '-p', f'seed:={args.seed}',
-                   '-p', f'beta:={float(args.beta)}', '--log-level', 'warn']
+                   *_beta_params(args), '--log-level', 'warn']
     teacher_cmd = [py, '-m', 'pref_learner.ros.teacher_node', '--ros-args',
                    '-p', f'true_weights:={list(map(float, truth))}',
-                   '-p', f'model:={args.person}', '-p', f'beta:={float(args.beta)}',
+                   '-p', f'model:={args.person}', '-p', f'beta:={float(args.person_beta)}',
                    '-p', f'n_demonstrations:={args.demonstrations}',
                    '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
                    '--log-level', 'warn']
-    print(f'pref-learner demo: a simulated person ({args.person} chooser, beta {args.beta}) '
+    print(f'pref-learner demo: a simulated person ({args.person} chooser, beta '
+          f'{args.person_beta}) '
           f'teaches {args.demonstrations} tube transfers on the bench arm; '
           f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, '
           f'discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
@@ -78,7 +79,7 @@ def cmd_demo(args) -> int:
     from .learner import Learner, LearnerConfig
     final = Learner(LearnerConfig(model=args.model, state_dir=str(state),
                                   n_particles=args.particles, n_alternatives=args.alternatives,
-                                  seed=args.seed, beta=float(args.beta)))
+                                  seed=args.seed, **_beta_config(args)))
     names = final.names
     print()
     print('feature'.ljust(22) + 'true'.rjust(7) + ''.join(
@@ -95,6 +96,8 @@ def cmd_demo(args) -> int:
               'cosine': {m: float(sums[m].mean @ truth) for m in final.config.models},
               'state_dir': str(state), 'bag': str(bag)}
     print()
+    for line in estimate_notes(final):
+        print(line)
     for m, c in result['cosine'].items():
         print(f'cosine(estimate, truth) {m}: {c:.3f}')
     print(f'demonstrations accepted: {final.n_demonstrations}; '
@@ -124,8 +127,8 @@ def cmd_learn(args) -> int:
         raise CliError(f'output directory {out} is not empty')
     try:
         cfg = LearnerConfig(model=args.model, seed=args.seed, n_particles=args.particles,
-                            n_alternatives=args.alternatives, beta=float(args.beta),
-                            state_dir=str(out / 'state'))
+                            n_alternatives=args.alternatives, state_dir=str(out / 'state'),
+                            **_beta_config(args))
     except ValueError as exc:
         raise CliError(str(exc)) from None
     events = list(read_stream(bag))
@@ -236,8 +239,32 @@ def _learning_options(p, choices=None) -> None:
                    help='boltzmann, less or both (default both)')
     p.add_argument('--particles', type=int, default=4000)
     p.add_argument('--alternatives', type=int, default=500)
-    p.add_argument('--beta', type=float, default=5.0)
+    p.add_argument('--beta', type=float, default=None,
+                   help='fix the rationality at this value (default: inferred, log-uniform '
+                   'prior on 0.5-50)')
     p.add_argument('--seed', type=int, default=0)
+
+
+def _beta_config(args) -> dict:
+    """LearnerConfig settings for ``--beta`` (fixed) or its absence (inferred)."""
+    if args.beta is None:
+        return {}
+    return {'beta': float(args.beta), 'beta_min': 0.0, 'beta_max': 0.0}
+
+
+def _beta_params(args) -> list:
+    """The learner node's ``--ros-args`` for the same choice."""
+    out = []
+    for k, v in _beta_config(args).items():
+        out += ['-p', f'{k}:={float(v)}']
+    return out
+
+
+def estimate_notes(learner) -> list:
+    """Lines on rationality, option model, checks and moves of a learner's estimates."""
+    from .report import estimate_note_lines
+    return estimate_note_lines(learner.summaries(), learner.option_labels(),
+                               learner.history_diagnostics())
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -251,6 +278,8 @@ def build_parser() -> argparse.ArgumentParser:
     _learning_options(d, choices=['boltzmann', 'less', 'both'])
     d.add_argument('--person', default='less', choices=['boltzmann', 'less'],
                    help='how the simulated person chooses')
+    d.add_argument('--person-beta', type=float, default=5.0,
+                   help="the simulated person's rationality (the learner does not know it)")
     d.add_argument('--demonstrations', type=int, default=8)
     d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
     d.set_defaults(func=cmd_demo)
@@ -285,7 +314,8 @@ def build_parser() -> argparse.ArgumentParser:
     b = sub.add_parser('bench', help='benchmark figures as JSON')
     b.add_argument('--json', help='write the figures to this file')
     b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
-    b.add_argument('--only', nargs='+', choices=['core', 'planner', 'node', 'demo', 'validate'],
+    b.add_argument('--only', nargs='+',
+                   choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration'],
                    help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p

@@ -395,12 +395,23 @@ class FeatureSet:
     def value_and_gradient(self, q: np.ndarray):
         """Compute raw features ``(d,)`` and gradients ``(d, T, n)`` of one trajectory.
 
-        One kinematics pass serves both.
+        One kinematics pass serves both (see :meth:`values_and_gradients`).
         """
         q = np.asarray(q, dtype=np.float64)
-        T, n = q.shape
-        grads = np.zeros((self.d, T, n))
-        vals = np.empty(self.d)
+        vals, grads = self.values_and_gradients(q[None])
+        return vals[0], grads[0]
+
+    def values_and_gradients(self, q: np.ndarray):
+        """Raw features ``(B, d)`` and gradients ``(B, d, T, n)`` of trajectories ``(B, T, n)``.
+
+        Analytic: waypoint values through the frame Jacobians, chained through
+        each aggregate (min and max use the subgradient at the extreme
+        waypoint); one batched kinematics pass serves every trajectory.
+        """
+        q = np.asarray(q, dtype=np.float64)
+        B, T, n = q.shape
+        grads = np.zeros((B, self.d, T, n))
+        vals = np.empty((B, self.d))
         poses, (jp, jr) = self.robot.frame_poses(q, self.frames, with_jacobian=True) \
             if self.frames else (None, (None, None))
         for j, s in enumerate(self.specs):
@@ -409,46 +420,48 @@ class FeatureSet:
                 if gfun is None:
                     raise ValueError(f'feature {s.name}: user type has no .gradient; the '
                                      'planner needs one')
-                grads[j] = gfun(q, s.params)
                 k = poses.index(s.frame)
-                vals[j] = float(s.func(q[None], poses.positions[None, :, k],
-                                       poses.rotations[None, :, k], s.params)[0])
+                vals[:, j] = np.asarray(s.func(q, poses.positions[:, :, k],
+                                               poses.rotations[:, :, k], s.params),
+                                        dtype=np.float64)
+                for b in range(B):
+                    grads[b, j] = gfun(q[b], s.params)
                 continue
             if s.type in ('effort', 'jerk'):
                 order = 1 if s.type == 'effort' else 3
                 h = 1.0 / (T - 1)
                 D = _diff_matrix(T, order) / h ** order
-                Dq = D @ q
-                vals[j] = h * float(np.sum(Dq * Dq))
-                grads[j] = 2.0 * h * (D.T @ Dq)
+                Dq = np.einsum('st,btn->bsn', D, q)
+                vals[:, j] = h * np.sum(Dq * Dq, axis=(1, 2))
+                grads[:, j] = 2.0 * h * np.einsum('st,bsn->btn', D, Dq)
                 continue
             k = poses.index(s.frame)
-            pos, rot = poses.positions[:, k], poses.rotations[:, k]
-            Jp, Jr = jp[:, k], jr[:, k]                       # (T, 3, n)
+            pos, rot = poses.positions[:, :, k], poses.rotations[:, :, k]
+            Jp, Jr = jp[:, :, k], jr[:, :, k]                 # (B, T, 3, n)
             if s.type == 'path_length':
-                seg = np.diff(pos, axis=0)
+                seg = np.diff(pos, axis=1)
                 ln = np.linalg.norm(seg, axis=-1)
-                vals[j] = float(ln.sum())
-                u = seg / np.maximum(ln, 1e-12)[:, None]
-                dpos = np.zeros((T, 3))
-                dpos[1:] += u
-                dpos[:-1] -= u
-                grads[j] = np.einsum('ti,tin->tn', dpos, Jp)
+                vals[:, j] = ln.sum(axis=1)
+                u = seg / np.maximum(ln, 1e-12)[..., None]
+                dpos = np.zeros((B, T, 3))
+                dpos[:, 1:] += u
+                dpos[:, :-1] -= u
+                grads[:, j] = np.einsum('bti,btin->btn', dpos, Jp)
                 continue
             g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot)
-            vals[j], w, dpos_agg = _aggregate(s.aggregate, g, pos)
-            total = np.zeros((T, n))
+            vals[:, j], w, dpos_agg = _aggregate(s.aggregate, g, pos)
+            total = np.zeros((B, T, n))
             if dg_dpos is not None:
-                total += w[:, None] * np.einsum('ti,tin->tn', dg_dpos, Jp)
+                total += w[..., None] * np.einsum('bti,btin->btn', dg_dpos, Jp)
             if dg_daxis is not None:
                 kx = 'xyz'.index(s.params['axis'])
-                axis = rot[:, :, kx]
+                axis = rot[..., :, kx]                         # (B, T, 3)
                 # d axis / d q_j = omega_j x axis
-                dax = np.cross(np.moveaxis(Jr, 2, 1), axis[:, None, :])  # (T, n, 3)
-                total += w[:, None] * np.einsum('ti,tni->tn', dg_daxis, dax)
+                dax = np.cross(np.moveaxis(Jr, -1, -2), axis[:, :, None, :])  # (B, T, n, 3)
+                total += w[..., None] * np.einsum('bti,btni->btn', dg_daxis, dax)
             if dpos_agg is not None:
-                total += np.einsum('ti,tin->tn', dpos_agg, Jp)
-            grads[j] = total
+                total += np.einsum('bti,btin->btn', dpos_agg, Jp)
+            grads[:, j] = total
         return vals, grads
 
     def describe(self) -> List[dict]:

@@ -37,6 +37,8 @@ from .store import StateStore
 log = logging.getLogger('pref_learner')
 
 MODEL_CHOICES = ('boltzmann', 'less', 'both')
+#: a demonstration whose one-step-ahead predictive p-value is below this is flagged
+ATYPICAL_PVALUE = 0.05
 
 
 @dataclass(frozen=True)
@@ -48,16 +50,19 @@ class LearnerConfig:
     tool_frame: str = 'tool_tip'
     features: str = ''                  # feature YAML path; '' = the shipped scenario
     model: str = 'less'                 # boltzmann | less | both
-    beta: float = 5.0
-    beta_min: float = 0.0               # > 0 together with beta_max: infer beta
-    beta_max: float = 0.0
+    beta: float = 5.0                   # used when beta is not inferred
+    beta_min: float = 0.5               # log-uniform prior range of the inferred beta;
+    beta_max: float = 50.0              # both 0: beta fixed at ``beta``
     n_particles: int = 4000
     n_alternatives: int = 500
-    mix_smooth: float = 0.8
-    mix_perturb: float = 0.2
+    mix_smooth: float = 0.8             # smooth random draws between start and goal
+    mix_near_optimal: float = 0.2       # draws moved up the reward of sampled weights
+    mix_perturb: float = 0.0            # noisy copies of the demonstration (biased; opt-in)
     mix_planner: float = 0.0            # share of alternatives optimised under random weights
     planner_jobs: int = 1               # worker processes for planner alternatives
-    noise_scale: float = 0.08
+    spreads: Tuple[float, ...] = (0.02, 0.04, 0.08, 0.16)   # option-spread levels (inferred)
+    ascent_steps: int = 8
+    ascent_step: float = 0.25
     n_waypoints: int = 64
     resample: str = 'arc_length'
     lowpass_hz: float = 10.0
@@ -85,6 +90,10 @@ class LearnerConfig:
             raise ValueError(f'n_alternatives must be >= 1, got {self.n_alternatives}')
         if (self.beta_min > 0) != (self.beta_max > 0):
             raise ValueError('set both beta_min and beta_max (> 0) to infer beta, or neither')
+        if self.beta_min > 0 and not self.beta_min < self.beta_max:
+            raise ValueError(f'beta_min ({self.beta_min}) must be below beta_max '
+                             f'({self.beta_max})')
+        object.__setattr__(self, 'spreads', tuple(float(v) for v in self.spreads))
         if self.resample not in ('time', 'arc_length'):
             raise ValueError(f'resample {self.resample!r} is unknown; allowed: time, arc_length')
         if self.seed < 0:
@@ -110,10 +119,11 @@ class LearnerConfig:
         return PrepareConfig(self.n_waypoints, self.resample, self.lowpass_hz, self.smooth)
 
     def sampler_config(self) -> SamplerConfig:
-        mix = {'smooth': self.mix_smooth, 'perturb': self.mix_perturb}
-        if self.mix_planner > 0:
-            mix['planner'] = self.mix_planner
-        return SamplerConfig(self.n_alternatives, mix, self.noise_scale)
+        mix = {'smooth': self.mix_smooth, 'near_optimal': self.mix_near_optimal,
+               'perturb': self.mix_perturb, 'planner': self.mix_planner}
+        return SamplerConfig(self.n_alternatives, {k: v for k, v in mix.items() if v > 0},
+                             self.spreads, ascent_steps=self.ascent_steps,
+                             ascent_step=self.ascent_step)
 
     def posterior_config(self, model: str) -> PosteriorConfig:
         br = (self.beta_min, self.beta_max) if self.beta_min > 0 else None
@@ -123,7 +133,8 @@ class LearnerConfig:
         except ValueError:
             pass
         return PosteriorConfig(n_particles=self.n_particles, model=model, beta=self.beta,
-                               beta_range=br, bandwidth=bw)
+                               beta_range=br, bandwidth=bw,
+                               n_levels=len(self.sampler_config().option_models()))
 
     def learning_hash(self) -> str:
         """Hash of every setting that changes what is learned (not state_dir)."""
@@ -182,13 +193,14 @@ class Learner:
             planner_fn = None
         self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
                                           config.sampler_config(), planner=planner_fn,
-                                          n_features=fs.d)
+                                          n_features=fs.d, ascent=self.reward_gradient)
         self.recorder = Recorder(self.robot.joint_names, config.segment_config())
         self.prepare_config = config.prepare_config()
         self.store = StateStore(config.state_dir) if config.state_dir else None
         self.hash = config.learning_hash()
         self.rejections: List[dict] = []
         self._demos: List[Demonstration] = []
+        self._diagnostics: List[dict] = []
         self._reset_posteriors()
         self.messages: List[str] = []
         if self.store is not None:
@@ -218,9 +230,11 @@ class Learner:
         tasks, conditioned as every choice set is (1 where a feature does not vary).
         """
         n = self.config.n_calibration
-        sampler = AlternativeSampler(self.robot, self.config.n_waypoints, SamplerConfig(n))
+        spread = self.config.sampler_config().noise_scale
+        sampler = AlternativeSampler(self.robot, self.config.n_waypoints,
+                                     SamplerConfig(n, {'smooth': 1.0}, (spread,)))
         rng = np.random.default_rng(self.config.calibration_seed)
-        rows = [fs.raw(self.condition(self.retime(sampler.sample(start, goal, rng, m=n))))
+        rows = [fs.raw(self.condition(self.retime(sampler.sample(start, goal, rng, m=n)[0])))
                 for _, start, goal in self.tasks()]
         sd = np.concatenate(rows).std(axis=0)
         return np.where(sd > 1e-12, sd, 1.0)
@@ -231,6 +245,16 @@ class Learner:
             rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, 0, k]))
             self.posteriors[m] = ParticlePosterior.create(self.config.posterior_config(m),
                                                           self.features.d, rng)
+
+    def option_labels(self) -> Tuple[str, ...]:
+        """Names of the option levels (the posterior's level coordinate), in order."""
+        return tuple(lab for lab, _, _ in self.config.sampler_config().option_models())
+
+    def history_diagnostics(self) -> List[dict]:
+        """Per-demonstration set diagnostics and posterior checks, in order."""
+        if len(self._diagnostics) == len(self._demos) or self.store is None:
+            return list(self._diagnostics)
+        return [h['diagnostics'] for h in self.store.read_history()]
 
     @property
     def names(self) -> Tuple[str, ...]:
@@ -353,16 +377,38 @@ class Learner:
         """Smooth (and clip to limits) as every row of a choice set is."""
         return condition(q, self.config.smooth, self.robot.lower, self.robot.upper)
 
-    def choice_set(self, q_demo: np.ndarray, index: int) -> Tuple[np.ndarray, np.ndarray]:
+    def reward_gradient(self, q: np.ndarray, weights: np.ndarray):
+        """Scaled rewards ``(k,)`` and their gradients ``(k, T, n)`` for ``weights (k, d)``."""
+        vals, grads = self.features.values_and_gradients(q)
+        w = np.asarray(weights, dtype=np.float64) / self.features.scales
+        return np.einsum('kd,kd->k', w, vals), np.einsum('kd,kdtn->ktn', w, grads)
+
+    def _weight_source(self, k: int, rng: np.random.Generator) -> np.ndarray:
+        """Weights for near-optimal alternatives: half from the prior, half from the posterior."""
+        d = self.features.d
+        w = rng.standard_normal((k, d))
+        w /= np.linalg.norm(w, axis=1, keepdims=True)
+        post = next(iter(self.posteriors.values()))
+        if post.records:
+            half = k // 2
+            idx = rng.choice(post.n_particles, half, p=post.weights)
+            w[:half] = post.theta[idx]
+        return w
+
+    def choice_set(self, q_demo: np.ndarray, index: int):
         """Build a demonstration's conditioned choice set and its scaled features.
 
-        Returns ``(1 + M, T, n)`` trajectories and ``(1 + M, d)`` features;
-        row 0 is the demonstration.
+        Returns ``(1 + M, T, n)`` trajectories, ``(1 + M, d)`` features and
+        ``(1 + M,)`` spread levels (``-1`` on row 0, the demonstration). Only
+        the start and goal of the demonstration are used (and its path only
+        with the opt-in ``perturb`` kind); near-optimal draws use weights from
+        the posterior as it stands before this demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        alts = self.retime(self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo))
-        allq = self.condition(np.concatenate([q_demo[None], alts]))
-        return allq, self.features(allq)
+        alts, groups = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo,
+                                           weights=self._weight_source)
+        allq = self.condition(np.concatenate([q_demo[None], self.retime(alts)]))
+        return allq, self.features(allq), np.concatenate([[-1], groups])
 
     def process(self, demo: Demonstration) -> StepResult:
         """Learn from one accepted demonstration (stored first, then the posterior)."""
@@ -388,20 +434,23 @@ class Learner:
         t0 = time.perf_counter()
         index = len(self._demos)
         q = prepare(demo, self.prepare_config, self.robot)
-        allq, feats = self.choice_set(q, index)
-        new, infos, rngs = {}, {}, {}
+        allq, feats, groups = self.choice_set(q, index)
+        new, infos, rngs, ppc = {}, {}, {}, {}
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
-            new[m], infos[m] = post.update((feats, 0), rngs[m], move=False)
+            rec = post.prepare(feats, 0, groups)
+            ppc[m] = post.predictive_pvalue(rec)
+            new[m], infos[m] = post.update(rec, rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
-        rec = next(iter(self.posteriors.values())).records[-1]
-        ls = rec.log_sim if rec.log_sim is not None else None
-        diag = set_diagnostics(feats, 0, ls)
+        diag = set_diagnostics(feats, 0)
+        diag['predictive_pvalue'] = ppc
+        diag['atypical'] = bool(diag['outside'] or min(ppc.values()) < ATYPICAL_PVALUE)
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
+        self._diagnostics = self._diagnostics[:index] + [diag]
         res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
                          time.perf_counter() - t0, diag, paths)
         if self.on_estimate is not None and persist:
@@ -426,6 +475,7 @@ class Learner:
             'learning_hash': self.hash, 'models': list(self.config.models),
             'seed': self.config.seed, 'calibration_seed': self.config.calibration_seed,
             'feature_names': list(self.names), 'scales': self.features.scales.tolist(),
+            'option_models': list(self.option_labels()),
             'n_demonstrations': len(self._demos), 'version': __version__,
             'config': {k: v for k, v in asdict(self.config).items() if k != 'urdf'},
             'features': self.features.describe()})

@@ -32,11 +32,12 @@ from pathlib import Path
 from typing import NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
+from scipy.special import logsumexp
 from scipy.stats import vonmises_fisher
 
 from . import choice
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 
 def _logsumexp_rows(r: np.ndarray) -> np.ndarray:
@@ -75,30 +76,102 @@ def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarra
     return x / np.linalg.norm(x, axis=1, keepdims=True)
 
 
+def log_kde(points: np.ndarray, x: np.ndarray) -> float:
+    """Log density at ``x (d,)`` of a Gaussian kernel density estimate of ``points (M, d)``.
+
+    Full covariance times Scott's factor squared, as ``scipy.stats.gaussian_kde``
+    (Scott 1992); a tiny ridge keeps a degenerate set's covariance invertible.
+    """
+    pts = np.asarray(points, dtype=np.float64)
+    m, d = pts.shape
+    if m < 2:
+        return 0.0
+    cov = np.atleast_2d(np.cov(pts, rowvar=False)) * choice.scott_factor(m, d) ** 2
+    cov = cov + np.eye(d) * (1e-12 + 1e-9 * np.trace(cov) / d)
+    chol = np.linalg.cholesky(cov)
+    z = np.linalg.solve(chol, (x[None, :] - pts).T)             # (d, M)
+    log_det = 2.0 * float(np.sum(np.log(np.diag(chol))))
+    return float(logsumexp(-0.5 * np.sum(z * z, axis=0)) - math.log(m)
+                 - 0.5 * (d * math.log(2 * math.pi) + log_det))
+
+
 @dataclass(frozen=True)
 class ChoiceRecord:
     """One demonstration as the posterior needs it.
 
     features : (K, d) scaled features of the demonstration and its alternatives.
     chosen : row index of the demonstration.
-    log_sim : (K,) LESS log-similarity sums of the set (``None`` until needed).
+    groups : (K,) option-spread level of each alternative (``-1`` on the chosen row).
+    n_levels : number of spread levels L; a particle at level g compares the
+        demonstration with the alternatives of group g only.
+    log_sim : (K,) LESS log-similarity sums of each alternative within its level's
+        set (demonstration included); ``None`` for the Boltzmann model.
+    log_sim_chosen : (L,) the demonstration's log-similarity sum within each level's set.
+    log_density : (L,) log density of the demonstration's features under each level's
+        alternatives (Gaussian KDE). It makes levels comparable: with it the
+        likelihood is that of the demonstration's features, not only of the
+        choice among a given set (0 with one level, where it is a constant).
     """
 
     features: np.ndarray
     chosen: int
+    groups: np.ndarray
+    n_levels: int = 1
     log_sim: Optional[np.ndarray] = None
+    log_sim_chosen: Optional[np.ndarray] = None
+    log_density: Optional[np.ndarray] = None
 
     @classmethod
-    def build(cls, features, chosen, bandwidth='scott', with_similarity=True):
+    def build(cls, features, chosen, bandwidth='scott', with_similarity=True, groups=None,
+              n_levels: Optional[int] = None):
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
-        ls = choice.log_similarity_sums(x, bandwidth) if with_similarity else None
-        return cls(x, c, ls)
+        k = x.shape[0]
+        if groups is None:
+            g = np.zeros(k, dtype=np.int64)
+        else:
+            g = np.asarray(groups, dtype=np.int64).copy()
+            if g.shape != (k,):
+                raise ValueError(f'groups must have shape ({k},), got {g.shape}')
+        g[c] = -1
+        L = int(n_levels) if n_levels is not None else int(max(g.max(), 0)) + 1
+        if L < 1 or np.any(g[np.arange(k) != c] < 0) or np.any(g >= L):
+            raise ValueError(f'groups must lie in [0, {L}) on every alternative')
+        for lev in range(L):
+            if not np.any(g == lev) and k > 1:
+                raise ValueError(f'spread level {lev} has no alternatives in this set')
+        ls = lsc = None
+        if with_similarity:
+            ls = np.zeros(k)
+            lsc = np.zeros(L)
+        dens = np.zeros(L)
+        for lev in range(L):
+            cols = np.concatenate([[c], np.flatnonzero(g == lev)])
+            if with_similarity:
+                s = choice.log_similarity_sums(x[cols], bandwidth)
+                ls[cols[1:]] = s[1:]
+                lsc[lev] = s[0]
+            if L > 1:
+                dens[lev] = log_kde(x[cols[1:]], x[c])
+        return cls(x, c, g, L, ls, lsc, dens)
+
+    def columns(self, level: int) -> np.ndarray:
+        """Row indices compared at ``level``: the chosen row first, then that level's."""
+        return np.concatenate([[self.chosen], np.flatnonzero(self.groups == level)])
 
 
 @dataclass(frozen=True)
 class PosteriorConfig:
-    """Hyperparameters of the particle posterior (stored unchanged)."""
+    """Hyperparameters of the particle posterior (stored unchanged).
+
+    ``beta_range`` (low, high): infer the rationality with a log-uniform prior
+    on it; ``None`` keeps ``beta`` fixed. ``n_levels``: number of option-spread
+    levels (uniform prior over them) carried as a discrete coordinate.
+    Tempering keeps the effective sample size at least ``ess_target`` x N in
+    every step; after each resampling the moves run at least ``n_moves``
+    rounds and until ``diversity_target`` of the particles have moved (at
+    most ``max_move_rounds``).
+    """
 
     n_particles: int = 4000
     model: str = 'less'
@@ -108,8 +181,12 @@ class PosteriorConfig:
     prior_mean: Optional[Tuple[float, ...]] = None
     prior_kappa: float = 1.0
     ess_min_ratio: float = 0.5
-    n_moves: int = 3
+    n_moves: int = 2
     bandwidth: object = 'scott'
+    n_levels: int = 1
+    ess_target: float = 0.5
+    diversity_target: float = 0.8
+    max_move_rounds: int = 8
 
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
@@ -130,8 +207,16 @@ class PosteriorConfig:
                 raise ValueError(f'prior_kappa must be > 0, got {self.prior_kappa!r}')
         if not 0.0 <= self.ess_min_ratio <= 1.0:
             raise ValueError(f'ess_min_ratio must be in [0, 1], got {self.ess_min_ratio!r}')
-        if self.n_moves < 0:
-            raise ValueError(f'n_moves must be >= 0, got {self.n_moves!r}')
+        if not 0.0 < self.ess_target < 1.0:
+            raise ValueError(f'ess_target must be in (0, 1), got {self.ess_target!r}')
+        if self.n_moves < 0 or self.max_move_rounds < self.n_moves:
+            raise ValueError(f'need 0 <= n_moves <= max_move_rounds, got {self.n_moves!r}, '
+                             f'{self.max_move_rounds!r}')
+        if not 0.0 <= self.diversity_target <= 1.0:
+            raise ValueError(f'diversity_target must be in [0, 1], got '
+                             f'{self.diversity_target!r}')
+        if not isinstance(self.n_levels, (int, np.integer)) or self.n_levels < 1:
+            raise ValueError(f'n_levels must be an integer >= 1, got {self.n_levels!r}')
         if isinstance(self.bandwidth, str):
             choice.resolve_bandwidth(self.bandwidth, 2, 1)
         else:
@@ -143,18 +228,27 @@ class PosteriorConfig:
 
 
 class UpdateInfo(NamedTuple):
-    """What one update did."""
+    """What one update did (acceptance: mean Metropolis-Hastings acceptance of its moves)."""
 
     ess: float
     ess_before_resampling: float
     resampled: bool
     acceptance: float
     n_demonstrations: int
+    tempering_steps: int = 1
+    move_rounds: int = 0
+    moved_fraction: float = float('nan')
 
 
 @dataclass(frozen=True)
 class Summary:
-    """Summary of a posterior; vectors are in feature order."""
+    """Summary of a posterior; vectors are in feature order.
+
+    ``level_probs`` is the posterior over the option-spread levels;
+    ``beta_low_mass`` the posterior mass of beta in the lowest tenth of its
+    log range (high when no weights explain the demonstrations well);
+    ``acceptance`` the last moves' acceptance rate (NaN before any move).
+    """
 
     mean: np.ndarray
     map: np.ndarray
@@ -167,12 +261,24 @@ class Summary:
     n_demonstrations: int
     beta_mean: float
     beta_ci: Tuple[float, float]
+    level_probs: Tuple[float, ...] = (1.0,)
+    beta_low_mass: float = 0.0
+    acceptance: float = float('nan')
+    beta_inferred: bool = False
+
+    #: warn when this much of beta's posterior mass sits in the lowest tenth of its range
+    BETA_LOW_WARNING = 0.5
+
+    @property
+    def beta_at_low_end(self) -> bool:
+        return self.beta_inferred and self.beta_low_mass >= self.BETA_LOW_WARNING
 
     def to_dict(self) -> dict:
         out = {}
         for k, v in asdict(self).items():
             out[k] = v.tolist() if isinstance(v, np.ndarray) else v
         out['beta_ci'] = list(self.beta_ci)
+        out['level_probs'] = list(self.level_probs)
         return out
 
 
@@ -184,9 +290,24 @@ def weighted_quantile(x: np.ndarray, w: np.ndarray, q: Sequence[float]) -> np.nd
     return x[order][np.minimum(idx, x.shape[0] - 1)]
 
 
+def _next_temperature(log_w: np.ndarray, ll: np.ndarray, remaining: float,
+                      target: float) -> float:
+    """Largest increment ``delta <= remaining`` keeping ESS(log_w + delta ll) >= target."""
+    if ess_from_log_weights(log_w + remaining * ll) >= target:
+        return remaining
+    lo, hi = 0.0, remaining
+    for _ in range(50):
+        mid = 0.5 * (lo + hi)
+        if ess_from_log_weights(log_w + mid * ll) >= target:
+            lo = mid
+        else:
+            hi = mid
+    return max(lo, remaining * 1e-6)
+
+
 @dataclass(frozen=True)
 class ParticlePosterior:
-    """Immutable particle approximation of p(theta[, beta] | demonstrations)."""
+    """Immutable particle approximation of p(theta[, beta][, level] | demonstrations)."""
 
     config: PosteriorConfig
     theta: np.ndarray
@@ -194,8 +315,10 @@ class ParticlePosterior:
     log_lik: np.ndarray
     log_beta: Optional[np.ndarray] = None
     records: Tuple[ChoiceRecord, ...] = field(default_factory=tuple)
-    step_size: float = 0.5
+    step_size: float = 1.0
     moves_pending: bool = False
+    level: Optional[np.ndarray] = None
+    acceptance: float = float('nan')
 
     # ------------------------------------------------------------ creation
     @classmethod
@@ -220,8 +343,11 @@ class ParticlePosterior:
         if config.infer_beta:
             lo, hi = np.log(config.beta_range)
             log_beta = rng.uniform(lo, hi, n)
+        level = None
+        if config.n_levels > 1:
+            level = rng.integers(0, config.n_levels, n)
         lw = np.full(n, -np.log(n))
-        return cls(config, theta, lw, np.zeros(n), log_beta, ())
+        return cls(config, theta, lw, np.zeros(n), log_beta, (), level=level)
 
     # ------------------------------------------------------------ basics
     @property
@@ -243,11 +369,19 @@ class ParticlePosterior:
         return np.exp(self.log_beta)
 
     @property
+    def levels(self) -> np.ndarray:
+        """Spread level of each particle ``(N,)`` (all 0 with one level)."""
+        if self.level is None:
+            return np.zeros(self.n_particles, dtype=np.int64)
+        return self.level
+
+    @property
     def ess(self) -> float:
         return ess_from_log_weights(self.log_weights)
 
-    def log_prior(self, theta: np.ndarray, log_beta: Optional[np.ndarray]) -> np.ndarray:
-        """Unnormalised log prior density on the sphere (and log beta), ``(N,)``."""
+    def log_prior(self, theta: np.ndarray, log_beta: Optional[np.ndarray],
+                  level: Optional[np.ndarray] = None) -> np.ndarray:
+        """Unnormalised log prior density on the sphere (and log beta, level), ``(N,)``."""
         lp = np.zeros(theta.shape[0])
         if self.config.prior == 'vmf':
             mu = np.asarray(self.config.prior_mean, dtype=np.float64)
@@ -255,129 +389,271 @@ class ParticlePosterior:
         if log_beta is not None:
             lo, hi = np.log(self.config.beta_range)
             lp = np.where((log_beta >= lo) & (log_beta <= hi), lp, -np.inf)
+        if level is not None:
+            lp = np.where((level >= 0) & (level < self.config.n_levels), lp, -np.inf)
         return lp
 
-    def record_loglik(self, record: ChoiceRecord, theta: np.ndarray,
-                      beta: np.ndarray) -> np.ndarray:
-        """Log-likelihood of one stored demonstration for particles ``theta (N, d)``."""
-        x = record.features
-        r = theta @ x.T
-        r *= beta[:, None]
-        if self.config.model == 'less':
-            r -= record.log_sim[None, :]
-        chosen = r[:, record.chosen].copy()
-        return chosen - _logsumexp_rows(r)
+    def record_loglik(self, record: ChoiceRecord, theta: np.ndarray, beta: np.ndarray,
+                      level: Optional[np.ndarray] = None,
+                      with_density: bool = True) -> np.ndarray:
+        """Log-likelihood of one stored demonstration for particles ``theta (N, d)``.
 
-    def total_loglik(self, theta: np.ndarray, beta: np.ndarray) -> np.ndarray:
+        ``level (N,)``: each particle's spread level (all 0 when ``None``).
+        ``with_density=False`` gives the choice probability alone (the
+        demonstration given its set).
+        """
+        x = record.features
+        less = self.config.model == 'less'
+        if record.n_levels == 1:
+            r = theta @ x.T
+            r *= beta[:, None]
+            if less:
+                ls = record.log_sim.copy()
+                ls[record.chosen] = record.log_sim_chosen[0]
+                r -= ls[None, :]
+            chosen = r[:, record.chosen].copy()
+            out = chosen - _logsumexp_rows(r)
+            return out + record.log_density[0] if with_density else out
+        lev = np.zeros(theta.shape[0], dtype=np.int64) if level is None else level
+        out = np.full(theta.shape[0], -np.inf)
+        for g in range(record.n_levels):
+            sel = np.flatnonzero(lev == g)
+            if sel.size == 0:
+                continue
+            cols = record.columns(g)
+            r = theta[sel] @ x[cols].T
+            r *= beta[sel, None]
+            if less:
+                ls = record.log_sim[cols]
+                ls[0] = record.log_sim_chosen[g]
+                r -= ls[None, :]
+            chosen = r[:, 0].copy()
+            out[sel] = chosen - _logsumexp_rows(r) + (record.log_density[g] if with_density
+                                                      else 0.0)
+        return out
+
+    def total_loglik(self, theta: np.ndarray, beta: np.ndarray,
+                     level: Optional[np.ndarray] = None) -> np.ndarray:
         """Sum of log-likelihoods of every stored demonstration, ``(N,)``."""
         out = np.zeros(theta.shape[0])
         for rec in self.records:
-            out += self.record_loglik(rec, theta, beta)
+            out += self.record_loglik(rec, theta, beta, level)
         return out
 
+    def predictive_choice(self, record: ChoiceRecord) -> np.ndarray:
+        """Posterior predictive probability of each row of ``record``'s set, ``(K,)``.
+
+        ``sum_p w_p P(row | theta_p, beta_p, level_p)``; rows outside a
+        particle's spread level have probability 0 for it.
+        """
+        x = record.features
+        w = self.weights
+        beta = self.beta
+        lev = self.levels
+        out = np.zeros(x.shape[0])
+        for g in range(record.n_levels):
+            sel = np.flatnonzero(lev == g)
+            if sel.size == 0:
+                continue
+            cols = record.columns(g)
+            r = self.theta[sel] @ x[cols].T
+            r *= beta[sel, None]
+            if record.log_sim is not None and self.config.model == 'less':
+                ls = record.log_sim[cols]
+                ls[0] = record.log_sim_chosen[g]
+                r -= ls[None, :]
+            r -= r.max(axis=1, keepdims=True)
+            np.exp(r, out=r)
+            r /= r.sum(axis=1, keepdims=True)
+            out[cols] += w[sel] @ r
+        return out
+
+    def predictive_pvalue(self, record: ChoiceRecord) -> float:
+        """Posterior predictive p-value of the demonstration within its set.
+
+        The predictive probability of all rows no more probable than the
+        chosen one (a discrete posterior predictive check, Gelman et al.,
+        Bayesian Data Analysis, ch. 6, from memory). Small values mean the
+        demonstration does not look like a choice from the assumed options
+        under what the posterior believes.
+        """
+        p = self.predictive_choice(record)
+        return float(np.sum(p[p <= p[record.chosen] * (1.0 + 1e-12)]))
+
     # ------------------------------------------------------------ update
-    def prepare(self, features, chosen) -> ChoiceRecord:
-        """Validate one choice set and precompute what this model needs."""
+    def prepare(self, features, chosen, groups=None) -> ChoiceRecord:
+        """Validate one choice set and precompute what this model needs.
+
+        ``groups (K,)``: the spread level of each alternative (needed with
+        more than one level).
+        """
         x = choice._check_matrix(features)
         if x.shape[1] != self.d:
             raise ValueError(f'features have d = {x.shape[1]} columns but the posterior has '
                              f'd = {self.d}')
+        if groups is None and self.config.n_levels > 1:
+            raise ValueError(f'the posterior has {self.config.n_levels} spread levels; give '
+                             'the spread level (groups) of every alternative')
         return ChoiceRecord.build(x, chosen, self.config.bandwidth,
-                                  with_similarity=self.config.model == 'less')
+                                  with_similarity=self.config.model == 'less', groups=groups,
+                                  n_levels=self.config.n_levels)
 
     def update(self, record, rng: np.random.Generator, move: bool = True):
-        """Add one demonstration; returns ``(new_posterior, UpdateInfo)``.
+        """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
 
-        ``record`` is a :class:`ChoiceRecord` or a ``(features (K, d), chosen)`` pair.
-        With ``move=False`` the Metropolis-Hastings moves that follow a
-        resampling are left pending (``moves_pending``) so that the caller can
-        publish the reweighted estimate first and run :meth:`rejuvenate` next.
+        ``record`` is a :class:`ChoiceRecord`, a ``(features (K, d), chosen)``
+        pair or a ``(features, chosen, groups)`` triple. The new likelihood
+        enters in steps ``0 < phi_1 < ... < 1`` chosen by bisection so the ESS
+        stays at least ``ess_target`` x N in each (Del Moral, Doucet & Jasra
+        2006); between steps the particles are resampled and moved under the
+        tempered target. With ``move=False`` the moves after the last step are
+        left pending (``moves_pending``) so that the caller can publish the
+        estimate first and run :meth:`rejuvenate` next.
         """
         if not isinstance(record, ChoiceRecord):
-            features, chosen = record
-            record = self.prepare(features, chosen)
+            record = self.prepare(*record)
         elif record.features.shape[1] != self.d:
             raise ValueError(f'record has d = {record.features.shape[1]}, posterior d = {self.d}')
+        elif record.n_levels != self.config.n_levels:
+            raise ValueError(f'record has {record.n_levels} spread levels, the posterior '
+                             f'{self.config.n_levels}')
         elif self.config.model == 'less' and record.log_sim is None:
-            record = replace(record, log_sim=choice.log_similarity_sums(
-                record.features, self.config.bandwidth))
-        ll = self.record_loglik(record, self.theta, self.beta)
+            record = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
+                                        True, record.groups, record.n_levels)
+        ll = self.record_loglik(record, self.theta, self.beta, self.level)
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '
                              'particles; features are out of range')
-        log_w = log_normalise(self.log_weights + ll)
-        new = replace(self, log_weights=log_w, log_lik=self.log_lik + ll,
-                      records=self.records + (record,))
-        ess0 = ess_from_log_weights(log_w)
         n = self.n_particles
+        cur = self
+        phi, steps, rounds = 0.0, 0, 0
+        accs, moved = [], float('nan')
+        ess0 = float('nan')
         resampled = False
-        acc = float('nan')
-        if ess0 < self.config.ess_min_ratio * n:
-            new = new._resample(rng)
-            resampled = True
+        while phi < 1.0 and steps < 200:
+            delta = _next_temperature(cur.log_weights, ll, 1.0 - phi,
+                                      self.config.ess_target * n)
+            phi = 1.0 if phi + delta >= 1.0 - 1e-12 else phi + delta
+            steps += 1
+            log_w = log_normalise(cur.log_weights + delta * ll)
+            ess0 = ess_from_log_weights(log_w)
+            cur = replace(cur, log_weights=log_w)
+            if phi < 1.0 or ess0 < self.config.ess_min_ratio * n:
+                idx = systematic_resample(log_w, rng)
+                cur = cur._take(idx)
+                ll = ll[idx]
+                resampled = True
+                if phi < 1.0:
+                    cur, ll, acc, r_, moved = cur._move(rng, record, phi, ll)
+                    accs.append(acc)
+                    rounds += r_
+        new = replace(cur, log_lik=cur.log_lik + ll, records=self.records + (record,),
+                      moves_pending=False)
+        if resampled:
             if move:
-                new, acc = new._rejuvenate(rng)
+                new, _, acc, r_, moved = new._move(rng, None, 0.0, None)
+                accs.append(acc)
+                rounds += r_
             else:
                 new = replace(new, moves_pending=True)
-        info = UpdateInfo(new.ess, ess0, resampled, acc, len(new.records))
+        acc = float(np.mean(accs)) if accs else float('nan')
+        if accs:
+            new = replace(new, acceptance=acc)
+        info = UpdateInfo(new.ess, ess0, resampled, acc, len(new.records), steps, rounds,
+                          moved)
         return new, info
 
     def rejuvenate(self, rng: np.random.Generator) -> Tuple['ParticlePosterior', float]:
         """Run the moves left pending by ``update(move=False)``; (posterior, acceptance)."""
         if not self.moves_pending:
             return self, float('nan')
-        new, acc = self._rejuvenate(rng)
-        return replace(new, moves_pending=False), acc
+        new, _, acc, _, _ = self._move(rng, None, 0.0, None)
+        return replace(new, moves_pending=False, acceptance=acc), acc
 
-    def _resample(self, rng):
-        idx = systematic_resample(self.log_weights, rng)
-        n = self.n_particles
+    def _take(self, idx: np.ndarray) -> 'ParticlePosterior':
+        n = len(idx)
         return replace(self, theta=self.theta[idx], log_lik=self.log_lik[idx],
                        log_beta=None if self.log_beta is None else self.log_beta[idx],
+                       level=None if self.level is None else self.level[idx],
                        log_weights=np.full(n, -np.log(n)))
 
-    def _rejuvenate(self, rng) -> Tuple['ParticlePosterior', float]:
-        """Metropolis-Hastings moves targeting prior x all stored likelihoods.
+    def _resample(self, rng):
+        return self._take(systematic_resample(self.log_weights, rng))
 
-        Proposal: ``theta' = normalise(theta + s * eps)``, eps ~ N(0, I), whose
-        density depends only on theta.theta', hence symmetric; log beta moves
-        by a Gaussian random walk (uniform prior on log beta, reflected by
-        rejection outside the range). The step shrinks or grows with the
-        acceptance rate.
+    def _move(self, rng, extra: Optional[ChoiceRecord], phi: float, ll_extra):
+        """Metropolis-Hastings moves on equally weighted particles.
+
+        Target: prior x all stored likelihoods (x the likelihood of ``extra``
+        raised to ``phi`` while tempering). Proposal: ``theta' =
+        normalise(theta + s eps)``, eps ~ N(0, I), whose density depends only
+        on theta.theta', hence symmetric; ``s`` follows the cloud's angular
+        spread times a factor tuned toward 15-40 % acceptance; log beta moves
+        by a Gaussian step proportional to its spread; the spread level moves
+        to a neighbour with probability 0.3 (rejected outside the range).
+        Rounds run until ``diversity_target`` of the particles have moved at
+        least once (at least ``n_moves``, at most ``max_move_rounds``).
+        Returns ``(posterior, ll_extra, acceptance, rounds, moved_fraction)``.
         """
-        theta, log_beta, log_lik = self.theta, self.log_beta, self.log_lik
+        cfg = self.config
+        theta, log_beta, level, log_lik = self.theta, self.log_beta, self.level, self.log_lik
         n, d = theta.shape
-        w = self.weights
-        r_len = float(np.linalg.norm(w @ theta))
-        spread = math.sqrt(max(2.0 * (1.0 - min(r_len, 1.0)) / max(d - 1, 1), 1e-8))
-        step = float(np.clip(spread * 1.0, 1e-4, 1.0))
-        lp = self.log_prior(theta, log_beta)
-        acc_total = 0.0
-        for _ in range(self.config.n_moves):
+        if cfg.max_move_rounds == 0 or (not self.records and extra is None):
+            return self, ll_extra, float('nan'), 0, 0.0
+        r_len = float(np.linalg.norm(theta.mean(axis=0)))
+        spread = math.sqrt(max(2.0 * (1.0 - min(r_len, 1.0)) / max(d - 1, 1), 1e-10))
+        base = 2.38 / math.sqrt(max(d - 1 + (log_beta is not None), 1))
+        factor = float(self.step_size)
+        sd_lb = float(np.std(log_beta)) if log_beta is not None else 0.0
+        lp = self.log_prior(theta, log_beta, level)
+        moved = np.zeros(n, dtype=bool)
+        rates = []
+        for rnd in range(cfg.max_move_rounds):
+            if rnd >= cfg.n_moves and moved.mean() >= cfg.diversity_target:
+                break
+            step = float(np.clip(factor * base * spread, 1e-5, 1.5))
             prop = theta + step * rng.standard_normal((n, d))
             prop /= np.linalg.norm(prop, axis=1, keepdims=True)
             prop_lb = None
             if log_beta is not None:
-                prop_lb = log_beta + 0.2 * rng.standard_normal(n)
-            lp_new = self.log_prior(prop, prop_lb)
+                prop_lb = log_beta + factor * base * max(sd_lb, 0.02) * rng.standard_normal(n)
+            prop_lv = None
+            if level is not None:
+                jump = np.where(rng.random(n) < 0.3, rng.choice([-1, 1], n), 0)
+                prop_lv = level + jump
+            lp_new = self.log_prior(prop, prop_lb, prop_lv)
             beta_new = self.beta if prop_lb is None else np.exp(prop_lb)
-            ll_new = self.total_loglik(prop, beta_new)
-            log_a = (lp_new + ll_new) - (lp + log_lik)
+            ok = np.isfinite(lp_new)
+            lv_eval = None if prop_lv is None else np.clip(prop_lv, 0, cfg.n_levels - 1)
+            ll_new = self.total_loglik(prop, beta_new, lv_eval)
+            cur_extra = 0.0
+            new_extra = 0.0
+            if extra is not None:
+                ex = self.record_loglik(extra, prop, beta_new, lv_eval)
+                new_extra = phi * ex
+                cur_extra = phi * ll_extra
+            log_a = np.where(ok, (lp_new + ll_new + new_extra) - (lp + log_lik + cur_extra),
+                             -np.inf)
             accept = np.log(rng.random(n)) < log_a
             theta = np.where(accept[:, None], prop, theta)
             log_lik = np.where(accept, ll_new, log_lik)
             lp = np.where(accept, lp_new, lp)
+            if extra is not None:
+                ll_extra = np.where(accept, ex, ll_extra)
             if log_beta is not None:
                 log_beta = np.where(accept, prop_lb, log_beta)
+            if level is not None:
+                level = np.where(accept, prop_lv, level)
             rate = float(accept.mean())
-            acc_total += rate
+            rates.append(rate)
+            moved |= accept
             if rate < 0.15:
-                step *= 0.5
-            elif rate > 0.5:
-                step = min(step * 1.5, 1.0)
-        acc = acc_total / max(self.config.n_moves, 1)
-        return replace(self, theta=theta, log_beta=log_beta, log_lik=log_lik,
-                       step_size=step), acc
+                factor *= 0.6
+            elif rate > 0.4:
+                factor = min(factor * 1.5, 10.0)
+        new = replace(self, theta=theta, log_beta=log_beta, level=level, log_lik=log_lik,
+                      step_size=factor)
+        acc = float(np.mean(rates)) if rates else float('nan')
+        return new, ll_extra, acc, len(rates), float(moved.mean())
 
     # ------------------------------------------------------------ summaries
     def mean_direction(self) -> np.ndarray:
@@ -391,7 +667,7 @@ class ParticlePosterior:
         m = w @ th
         r_len = float(np.linalg.norm(m))
         mean = m / r_len if r_len > 0 else m
-        lp = self.log_prior(th, self.log_beta) + self.log_lik
+        lp = self.log_prior(th, self.log_beta, self.level) + self.log_lik
         map_ = th[int(np.argmax(lp))].copy()
         xc = th - m
         cov = (xc * w[:, None]).T @ xc
@@ -401,36 +677,52 @@ class ParticlePosterior:
         for j in range(self.d):
             lo[j], hi[j] = weighted_quantile(th[:, j], w, [0.05, 0.95])
         b = self.beta
+        low_mass = 0.0
         if self.log_beta is not None:
             bl, bh = weighted_quantile(b, w, [0.05, 0.95])
             bci = (float(bl), float(bh))
             bmean = float(w @ b)
+            a, z = np.log(self.config.beta_range)
+            low_mass = float(w @ (self.log_beta < a + 0.1 * (z - a)))
         else:
             bci = (self.config.beta, self.config.beta)
             bmean = self.config.beta
+        levels = tuple(float(v) for v in np.bincount(self.levels, weights=w,
+                                                      minlength=self.config.n_levels))
         return Summary(mean, map_, cov, std, lo, hi, self.ess, r_len, len(self.records),
-                       bmean, bci)
+                       bmean, bci, levels, low_mass, float(self.acceptance),
+                       self.log_beta is not None)
 
     # ------------------------------------------------------------ persistence
     def to_arrays(self) -> Tuple[dict, dict]:
         """Arrays (for npz) and a JSON-able manifest describing them."""
-        k = [r.features.shape[0] for r in self.records]
+        recs = self.records
+        k = [r.features.shape[0] for r in recs]
         arrays = {
             'theta': self.theta, 'log_weights': self.log_weights, 'log_lik': self.log_lik,
             'record_sizes': np.asarray(k, dtype=np.int64),
-            'record_chosen': np.asarray([r.chosen for r in self.records], dtype=np.int64),
-            'record_features': (np.concatenate([r.features for r in self.records])
-                                if self.records else np.zeros((0, self.d))),
+            'record_chosen': np.asarray([r.chosen for r in recs], dtype=np.int64),
+            'record_features': (np.concatenate([r.features for r in recs])
+                                if recs else np.zeros((0, self.d))),
+            'record_groups': (np.concatenate([r.groups for r in recs])
+                              if recs else np.zeros(0, dtype=np.int64)),
+            'record_log_density': np.asarray([r.log_density for r in recs]).reshape(
+                len(recs), self.config.n_levels),
         }
         if self.log_beta is not None:
             arrays['log_beta'] = self.log_beta
-        if self.records and all(r.log_sim is not None for r in self.records):
-            arrays['record_log_sim'] = np.concatenate([r.log_sim for r in self.records])
+        if self.level is not None:
+            arrays['level'] = self.level
+        if recs and all(r.log_sim is not None for r in recs):
+            arrays['record_log_sim'] = np.concatenate([r.log_sim for r in recs])
+            arrays['record_log_sim_chosen'] = np.asarray([r.log_sim_chosen for r in recs])
         cfg = asdict(self.config)
         manifest = {'schema_version': SCHEMA_VERSION, 'kind': 'pref_learner.posterior',
                     'config': cfg, 'step_size': self.step_size,
+                    'acceptance': None if math.isnan(self.acceptance) else self.acceptance,
+                    'moves_pending': self.moves_pending,
                     'n_particles': self.n_particles, 'd': self.d,
-                    'n_demonstrations': len(self.records)}
+                    'n_demonstrations': len(recs)}
         return arrays, manifest
 
     def save(self, path) -> None:
@@ -452,19 +744,29 @@ class ParticlePosterior:
             if cfg.get(key) is not None:
                 cfg[key] = tuple(cfg[key])
         config = PosteriorConfig(**cfg)
+        L = config.n_levels
         sizes = arrays['record_sizes']
         offs = np.concatenate([[0], np.cumsum(sizes)])
         feats = arrays['record_features']
+        groups = arrays['record_groups']
+        dens = arrays['record_log_density']
         ls = arrays.get('record_log_sim')
+        lsc = arrays.get('record_log_sim_chosen')
         recs = []
         for i, c in enumerate(arrays['record_chosen']):
             a, b = offs[i], offs[i + 1]
-            recs.append(ChoiceRecord(np.array(feats[a:b]), int(c),
-                                     None if ls is None else np.array(ls[a:b])))
+            recs.append(ChoiceRecord(np.array(feats[a:b]), int(c), np.array(groups[a:b]), L,
+                                     None if ls is None else np.array(ls[a:b]),
+                                     None if lsc is None else np.array(lsc[i]),
+                                     np.array(dens[i])))
+        acc = manifest.get('acceptance')
         post = cls(config, np.array(arrays['theta']), np.array(arrays['log_weights']),
                    np.array(arrays['log_lik']),
                    np.array(arrays['log_beta']) if 'log_beta' in arrays else None,
-                   tuple(recs), float(manifest.get('step_size', 0.5)))
+                   tuple(recs), float(manifest.get('step_size', 1.0)),
+                   bool(manifest.get('moves_pending', False)),
+                   np.array(arrays['level']) if 'level' in arrays else None,
+                   float('nan') if acc is None else float(acc))
         if post.theta.shape != (manifest['n_particles'], manifest['d']):
             raise ValueError('posterior arrays do not match their manifest')
         return post

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import html
 import json
+import math
 from pathlib import Path
 from typing import Dict
 
@@ -127,6 +128,37 @@ def plot_set(features, chosen: int, names, path) -> None:
             'alternatives (grey) and the demonstration (black)', path)
 
 
+def estimate_note_lines(summaries, option_labels, diagnostics) -> list:
+    """Plain-text lines on rationality, option model, posterior checks and moves.
+
+    ``summaries``: model -> :class:`~pref_learner.posterior.Summary`;
+    ``option_labels``: the option levels' names; ``diagnostics``: one dict
+    per demonstration (``predictive_pvalue``, ``atypical``, ...).
+    """
+    lines = []
+    for m, s in summaries.items():
+        kind = 'inferred' if s.beta_inferred else 'fixed'
+        lines.append(f'rationality (beta), {m}: mean {s.beta_mean:.2f}, 90% interval '
+                     f'[{s.beta_ci[0]:.2f}, {s.beta_ci[1]:.2f}] ({kind})')
+        if s.beta_at_low_end:
+            lines.append(f'WARNING ({m}): {s.beta_low_mass:.0%} of the rationality\'s mass is '
+                         'at the low end of its range: no weights explain these '
+                         'demonstrations well; the features or the alternatives may be wrong')
+        if len(s.level_probs) > 1 and len(option_labels) == len(s.level_probs):
+            best = int(np.argmax(s.level_probs))
+            lines.append(f'option model, {m}: ' + ', '.join(
+                f'{lab} {p:.2f}' for lab, p in zip(option_labels, s.level_probs))
+                + f' (most probable: {option_labels[best]})')
+        if not math.isnan(s.acceptance):
+            lines.append(f'moves, {m}: acceptance {s.acceptance:.2f}')
+    flagged = [i + 1 for i, dg in enumerate(diagnostics) if dg.get('atypical')]
+    if diagnostics:
+        lines.append(f'posterior predictive check: {len(flagged)} of {len(diagnostics)} '
+                     'demonstrations do not look like choices from the assumed options'
+                     + (f' (#{", #".join(map(str, flagged))})' if flagged else ''))
+    return lines
+
+
 def _table(names, summaries: Dict[str, dict]) -> str:
     head = '<tr><th>feature</th>' + ''.join(
         f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'
@@ -170,9 +202,18 @@ def write_report(state_dir, out_dir) -> Path:
 
     def region(dg):
         return 'sparse' if dg['sparse'] else ('dense' if dg['dense'] else 'typical')
+    def check(dg):
+        p = dg.get('predictive_pvalue') or {}
+        vals = ', '.join(f'{m} {v:.3f}' for m, v in p.items())
+        return f'{vals}{" (atypical)" if dg.get("atypical") else ""}'
     diag_rows = ''.join(
         f'<tr><td>{h["index"] + 1}</td><td>{h["diagnostics"]["relative_density"]:.3g}</td>'
-        f'<td>{region(h["diagnostics"])}</td></tr>' for h in st['history'])
+        f'<td>{region(h["diagnostics"])}</td><td>{html.escape(check(h["diagnostics"]))}</td>'
+        '</tr>' for h in st['history'])
+    notes = estimate_note_lines({m: p.summary() for m, p in posts.items()},
+                                st['manifest'].get('option_models') or [],
+                                [h['diagnostics'] for h in st['history']])
+    notes_html = ''.join(f'<li>{html.escape(x)}</li>' for x in notes)
     meta = {m: {'ess': f'{s["ess"]:.0f}', 'concentration': f'{s["concentration"]:.4f}',
                 'demonstrations': s['n_demonstrations']} for m, s in sums.items()}
     imgs = ''.join(f'<h2>{html.escape(t)}</h2><img src="{f}" alt="{html.escape(t)}">'
@@ -188,9 +229,12 @@ Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
 <p>Per model: {html.escape(json.dumps(meta))}</p>
 <h2>Final estimate (unit-norm weights; 90% interval = 5% to 95%)</h2>
 {_table(names, sums)}
+<h2>Rationality, option model and checks</h2>
+<ul id="notes">{notes_html}</ul>
 {imgs}
 <h2>Demonstrations in their sets</h2>
-<table id="density"><tr><th>demonstration</th><th>density / median</th><th>region</th></tr>
+<table id="density"><tr><th>demonstration</th><th>density / median</th><th>region</th>
+<th>predictive p-value</th></tr>
 {diag_rows}</table>
 <h2>Rejected demonstrations</h2>
 <table id="rejected"><tr><th>#</th><th>reason</th><th>detail</th></tr>{rej_rows}</table>

@@ -3,7 +3,8 @@
 """Simulated teacher: a person model that demonstrates by a choice model.
 
 For each task (start/goal pair of the scenario) the person considers a set
-of candidate trajectories drawn like the learner's alternatives, picks one
+of candidate trajectories from their own option generator (another spread,
+waypoint count or kind than the learner's alternatives), picks one
 with probability given by the Boltzmann or the LESS model under true weights
 and rationality, and moves the arm along it with minimum-jerk timing (Flash &
 Hogan 1985) plus Gaussian sensor noise, with short rests before and after.
@@ -21,8 +22,21 @@ from .alternatives import AlternativeSampler, SamplerConfig
 from .choice import choice_probabilities
 
 
+OPTION_KINDS = ('smooth', 'optimised')
+
+
 @dataclass(frozen=True)
 class TeacherConfig:
+    """A simulated person: how they choose and what options they consider.
+
+    The person's options come from their own generator, not the learner's:
+    ``options`` ``smooth`` (random smooth paths of spread ``spread``, a
+    fraction of each joint's range) or ``optimised`` (smooth paths pushed
+    ``ascent_steps`` steps up the reward of random weights), on
+    ``n_waypoints`` waypoints (0: the learner's count). Their rationality
+    ``beta`` is theirs; the learner does not know it.
+    """
+
     model: str = 'less'
     beta: float = 5.0
     n_candidates: int = 200
@@ -31,6 +45,17 @@ class TeacherConfig:
     noise: float = 5e-4
     rest: float = 0.3
     seed: int = 1
+    options: str = 'smooth'
+    spread: float = 0.05
+    n_waypoints: int = 48
+    ascent_steps: int = 20
+
+    def __post_init__(self):
+        if self.options not in OPTION_KINDS:
+            raise ValueError(f'options {self.options!r} is unknown; allowed: '
+                             f'{list(OPTION_KINDS)}')
+        if self.n_waypoints and self.n_waypoints < 4:
+            raise ValueError(f'n_waypoints must be 0 or >= 4, got {self.n_waypoints}')
 
 
 def min_jerk(s: np.ndarray) -> np.ndarray:
@@ -50,16 +75,19 @@ class SimulatedTeacher:
         self.learner = learner
         self.config = config
         self.tasks = tasks if tasks is not None else learner.tasks()
-        self.sampler = AlternativeSampler(learner.robot, learner.config.n_waypoints,
-                                          SamplerConfig(config.n_candidates,
-                                                        noise_scale=learner.config.noise_scale))
+        mix = {'smooth': 1.0} if config.options == 'smooth' else {'near_optimal': 1.0}
+        T = config.n_waypoints or learner.config.n_waypoints
+        self.sampler = AlternativeSampler(
+            learner.robot, T, SamplerConfig(config.n_candidates, mix, (config.spread,),
+                                            ascent_steps=config.ascent_steps),
+            n_features=learner.features.d, ascent=learner.reward_gradient)
 
     def choose(self, index: int) -> Tuple[str, np.ndarray]:
         """Pick the path (T, n) the person demonstrates as number ``index``."""
         c = self.config
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
         name, start, goal = self.tasks[index % len(self.tasks)]
-        cand = self.sampler.sample(start, goal, rng)
+        cand, _ = self.sampler.sample(start, goal, rng)
         cand = self.learner.retime(np.concatenate([self.sampler.straight(start, goal)[None],
                                                    cand]))
         # the person moves along a raw candidate; they choose by its features as the

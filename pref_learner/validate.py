@@ -28,6 +28,7 @@ from typing import Dict, Optional
 import numpy as np
 
 from . import choice
+from .posterior import weighted_quantile
 from .progress import progress
 
 MODELS = ('boltzmann', 'less')
@@ -188,6 +189,138 @@ def study_set_robustness(n_sets=10, n_demos=8, n_particles=2000, n_alternatives=
     return out
 
 
+# ---------------------------------------------------------------- study 5: calibration
+#: how the simulated people of the calibration study differ from the learner
+PERSON_VARIANTS = {
+    'matched': dict(options='smooth', spread=0.08, n_waypoints=0),
+    'tighter_options': dict(options='smooth', spread=0.04, n_waypoints=48),
+    'wider_options': dict(options='smooth', spread=0.16, n_waypoints=80),
+    'optimised_options': dict(options='optimised', spread=0.06, n_waypoints=48),
+}
+MISMATCHED = ('tighter_options', 'wider_options', 'optimised_options')
+PERSON_BETAS = (2.0, 5.0, 20.0)
+
+
+def credible_region_contains(theta: np.ndarray, weights: np.ndarray, mean: np.ndarray,
+                             truth: np.ndarray, level: float = 0.9) -> bool:
+    """Whether ``truth`` lies in the ``level`` credible cap around the posterior mean direction.
+
+    The cap is the smallest angle around ``mean`` holding ``level`` of the
+    posterior mass (particles ``theta (N, d)``, normalised ``weights (N,)``).
+    """
+    ang = np.arccos(np.clip(theta @ mean, -1.0, 1.0))
+    radius = float(weighted_quantile(ang, weights, [level])[0])
+    return bool(np.arccos(np.clip(truth @ mean, -1.0, 1.0)) <= radius)
+
+
+def _calib_session(job) -> dict:
+    from .learner import Learner, LearnerConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    truth, variant, beta, seed, n_demos, n_particles, n_alternatives = job
+    L = Learner(LearnerConfig(model='less', seed=seed, n_particles=n_particles,
+                              n_alternatives=n_alternatives))
+    person = TeacherConfig(model='less', beta=beta, seed=seed + 1000,
+                           **PERSON_VARIANTS[variant])
+    SimulatedTeacher(L, truth, person).feed_session(L, n_demos)
+    post = L.posteriors['less']
+    s = post.summary()
+    cos = float(s.mean @ truth)
+    return {'variant': variant, 'person_beta': beta, 'cosine': cos,
+            'concentration': s.concentration, 'beta_mean': s.beta_mean,
+            'inside90': credible_region_contains(post.theta, post.weights, s.mean, truth),
+            'confidently_wrong': bool(cos < 0.5 and s.concentration > 0.95),
+            'demonstrations': L.n_demonstrations, 'level_probs': list(s.level_probs)}
+
+
+def _run_jobs(fn, jobs, n_jobs: int, label: str):
+    """Run ``fn`` over ``jobs`` in ``n_jobs`` local processes (results in job order)."""
+    if n_jobs <= 1:
+        return [fn(j) for j in progress(jobs, label)]
+    import concurrent.futures as cf
+    import multiprocessing as mp
+    with cf.ProcessPoolExecutor(n_jobs, mp_context=mp.get_context('fork')) as ex:
+        return list(progress(ex.map(fn, jobs), label, total=len(jobs)))
+
+
+def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300,
+                      conditions=('matched', 'mismatched'), seed=0, n_jobs=1) -> dict:
+    """Cosine, 90 % coverage and confidently wrong runs for people who are not the learner.
+
+    Truths are drawn uniformly on the sphere from ``seed``. ``matched``: the
+    person's options are smooth draws of the learner's middle spread, beta 5.
+    ``mismatched``: truth i meets the variant ``MISMATCHED[i % 3]`` and the beta
+    ``PERSON_BETAS[(i // 3) % 3]`` (unknown to the learner, which infers beta).
+    """
+    from .learner import Learner, LearnerConfig
+    d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
+    truths = _random_truths(n_truths, d, 7919 + seed)
+    out = {}
+    for cond in conditions:
+        jobs = []
+        for i, t in enumerate(truths):
+            if cond == 'matched':
+                variant, beta = 'matched', 5.0
+            else:
+                variant, beta = MISMATCHED[i % 3], PERSON_BETAS[(i // 3) % 3]
+            jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
+                         n_alternatives))
+        runs = _run_jobs(_calib_session, jobs, n_jobs, f'calibration ({cond})')
+        cos = np.array([r['cosine'] for r in runs])
+        out[cond] = {'cosine_mean': float(cos.mean()),
+                     'cosine_p10': float(np.percentile(cos, 10)),
+                     'coverage90': float(np.mean([r['inside90'] for r in runs])),
+                     'confidently_wrong': int(sum(r['confidently_wrong'] for r in runs)),
+                     'runs': runs}
+    return out
+
+
+def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> dict:
+    """Simulation-based calibration of the particle posterior (Talts et al. 2018).
+
+    Matched case: theta uniform on the sphere and beta log-uniform on the
+    prior range, one option level, choices drawn by the LESS model itself from
+    the shipped arm's smooth alternative sets. The rank of each true
+    coordinate (and of log beta) among ``n_draws`` posterior draws is uniform
+    on 0..n_draws when the posterior is right; a chi-square test (scipy) on
+    the pooled ranks in 10 bins gives the p-value.
+    """
+    from scipy import stats
+
+    from .learner import Learner, LearnerConfig
+    from .posterior import ParticlePosterior, PosteriorConfig, sample_uniform_sphere
+    L = Learner(LearnerConfig(n_particles=1, n_alternatives=60, spreads=(0.08,),
+                              mix_near_optimal=0.0, mix_smooth=1.0))
+    rng = np.random.default_rng([seed, 31])
+    sets = []
+    for k, (_, start, goal) in enumerate(L.tasks()):
+        allq, _ = L.sampler.sample(start, goal, rng, m=61)
+        sets.append(L.features(L.condition(L.retime(allq))))
+    cfg = PosteriorConfig(n_particles=n_particles, model='less', beta_range=(0.5, 50.0))
+    d = L.features.d
+    ranks = []
+    for r in progress(range(n_runs), 'simulation-based calibration'):
+        g = np.random.default_rng([seed, r])
+        theta = sample_uniform_sphere(1, d, g)[0]
+        log_beta = g.uniform(*np.log(cfg.beta_range))
+        post = ParticlePosterior.create(cfg, d, g)
+        for k in range(n_demos):
+            x = sets[(r + k) % len(sets)]
+            p = choice.choice_probabilities(x, theta, float(np.exp(log_beta)), 'less')
+            post, _ = post.update((x, int(g.choice(len(x), p=p))), g)
+        idx = g.choice(post.n_particles, n_draws, p=post.weights)
+        draws = np.column_stack([post.theta[idx], post.log_beta[idx]])
+        truth = np.concatenate([theta, [log_beta]])
+        ranks.append(np.sum(draws < truth[None, :], axis=0))
+    ranks = np.asarray(ranks)                     # (runs, d + 1), each in 0..n_draws
+    counts = np.histogram(ranks.ravel(), bins=10, range=(0, n_draws + 1))[0]
+    pvalue = float(stats.chisquare(counts).pvalue)
+    per = [float(stats.chisquare(np.histogram(ranks[:, j], bins=10,
+                                              range=(0, n_draws + 1))[0]).pvalue)
+           for j in range(ranks.shape[1])]
+    return {'pvalue': pvalue, 'pvalue_per_coordinate': per, 'counts': counts.tolist(),
+            'n_runs': n_runs, 'n_draws': n_draws}
+
+
 # ---------------------------------------------------------------- plots and runner
 def _plot_duplicates(r, path):
     plt = _plt()
@@ -218,7 +351,24 @@ def _plot_bars(data, keys, title, path):
     plt.close(fig)
 
 
-def run_studies(quick: bool = False, out_dir: Optional[str] = None) -> Dict[str, object]:
+def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
+    """The calibration study's headline figures (benchmark keys)."""
+    runs = [r for c in calib.values() for r in c['runs']]
+    out = {'calib_cosine_mean': calib['matched']['cosine_mean'],
+           'calib_cosine_p10': calib['matched']['cosine_p10'],
+           'calib_coverage90': calib['matched']['coverage90'],
+           'calib_coverage90_all': float(np.mean([r['inside90'] for r in runs])),
+           'calib_confidently_wrong': int(sum(r['confidently_wrong'] for r in runs)),
+           'sbc_uniformity_pvalue': sbc['pvalue']}
+    if 'mismatched' in calib:
+        out['calib_cosine_mean_mismatched'] = calib['mismatched']['cosine_mean']
+        out['calib_cosine_p10_mismatched'] = calib['mismatched']['cosine_p10']
+        out['calib_coverage90_mismatched'] = calib['mismatched']['coverage90']
+    return out
+
+
+def run_studies(quick: bool = False, out_dir: Optional[str] = None,
+                n_jobs: int = 1) -> Dict[str, object]:
     t0 = time.time()
     sizes = dict(n_truths=2, n_seeds=1, n_demos=6, n_particles=1000, n_alternatives=200) \
         if quick else dict(n_truths=8, n_seeds=3, n_demos=10, n_particles=2000,
@@ -229,6 +379,10 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None) -> Dict[str,
     rob = study_set_robustness(n_sets=5 if quick else 10, n_demos=6 if quick else 8,
                                n_particles=sizes['n_particles'],
                                n_alternatives=sizes['n_alternatives'])
+    calib = study_calibration(n_truths=6 if quick else 24, n_demos=6 if quick else 10,
+                              n_particles=sizes['n_particles'],
+                              n_alternatives=sizes['n_alternatives'], n_jobs=n_jobs)
+    sbc = study_sbc(n_runs=60 if quick else 200)
     figures = {
         'dup_share_less_k8': dup['share_lone']['less'][-1],
         'dup_share_boltzmann_k8': dup['share_lone']['boltzmann'][-1],
@@ -252,15 +406,16 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None) -> Dict[str,
         for m in MODELS:
             if 'regret' in arm[person][m]:
                 figures[f'arm_regret_{m}_on_{person}_people'] = arm[person][m]['regret']['mean']
+    figures.update(calibration_figures(calib, sbc))
     figures['validate_wall_s'] = time.time() - t0
     result = {'quick': quick, 'figures': figures, 'duplicates': dup, 'dense_sparse': ds,
-              'arm_people': arm, 'set_robustness': rob}
+              'arm_people': arm, 'set_robustness': rob, 'calibration': calib, 'sbc': sbc}
     if out_dir:
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         (out / 'validation.json').write_text(json.dumps(result, indent=1))
         for name, part in (('duplicates', dup), ('dense_sparse', ds), ('arm_people', arm),
-                           ('set_robustness', rob)):
+                           ('set_robustness', rob), ('calibration', calib), ('sbc', sbc)):
             (out / f'{name}.json').write_text(json.dumps(part, indent=1))
         _plot_duplicates(dup, out / 'duplicates.png')
         _plot_bars({'dense entropy': {m: ds['dense'][m]['entropy'] for m in MODELS},

