@@ -110,9 +110,6 @@ class SamplerConfig:
             raise ValueError(f'spreads must be one or more fractions in (0, 1], got {sp!r}')
         if len(set(sp)) != len(sp):
             raise ValueError(f'spreads must be distinct, got {sp!r}')
-        if self.n_alternatives < len(self.option_models()):
-            raise ValueError(f'n_alternatives ({self.n_alternatives}) must be >= the number '
-                             f'of option levels ({len(self.option_models())})')
         if self.ascent_steps < 0 or not self.ascent_step > 0:
             raise ValueError('ascent_steps must be >= 0 and ascent_step > 0')
 
@@ -273,6 +270,9 @@ class AlternativeSampler:
         goal = self.robot.check_configurations(goal, 'goal')
         cfg = self.config
         m = cfg.n_alternatives if m is None else int(m)
+        if m < len(cfg.option_models()):
+            raise ValueError(f'{m} alternatives cannot fill {len(cfg.option_models())} option '
+                             'levels; use more alternatives or fewer spreads')
         line = self.straight(start, goal)
         parts, groups = [], []
         for g, ((_, spread, mix), m_level) in enumerate(zip(cfg.option_models(),

@@ -4,16 +4,20 @@
 
 Two pieces of evidence, from a state directory's stored demonstrations:
 
-* leave-one-out predictive log-likelihood: for each demonstration, the
-  posterior from all the others (same pipeline, same seeds), then
-  ``log sum_p w_p P(held-out choice | theta_p)`` under each model;
+* leave-one-out predictive log-probability: for each demonstration, the
+  posterior from all the others, then ``log sum_p w_p P(held-out choice |
+  theta_p)`` under each model, on a set that depends only on the task (not on
+  the held-out path); the verdict needs a paired z of at least 2, else it says
+  the data cannot tell;
 * robustness: the spread (mean angle to their common direction) of each
   model's estimate when the alternative sets are redrawn with other seeds.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import fields
+from typing import Dict, List, Sequence, Tuple
 
 import numpy as np
 from scipy.special import logsumexp
@@ -37,6 +41,54 @@ def _config_from_manifest(manifest: dict, **over) -> LearnerConfig:
     return LearnerConfig(**cfg)
 
 
+def loo_scores(records: Sequence[Tuple[np.ndarray, np.ndarray]], configs: dict,
+               d: int, seed: int = 0) -> Dict[str, List[float]]:
+    """Leave-one-out predictive log-probability of each held-out choice, per model.
+
+    ``records``: ``(features (K, d), groups (K,))`` per demonstration (row 0
+    chosen); ``configs``: model -> :class:`PosteriorConfig`. For held-out
+    demonstration i the posterior is built from all the others, then scored
+    on ``log sum_p w_p P(row 0 | theta_p, beta_p, level_p)`` with the choice
+    probability alone: the set only depends on the task's start and goal (and
+    on the other demonstrations), never on the held-out path.
+    """
+    k = len(records)
+    out = {m: [] for m in configs}
+    for m, pcfg in configs.items():
+        for i in progress(range(k), f'leave-one-out ({m})'):
+            rng = np.random.default_rng([seed, i, 99])
+            post = ParticlePosterior.create(pcfg, d, rng)
+            for j in range(k):
+                if j != i:
+                    post, _ = post.update(post.prepare(records[j][0], 0, records[j][1]), rng)
+            rec = post.prepare(records[i][0], 0, records[i][1])
+            ll = post.record_loglik(rec, post.theta, post.beta, post.level, with_density=False)
+            out[m].append(float(logsumexp(post.log_weights + ll)))
+    return out
+
+
+def verdict(loo: Dict[str, List[float]], level: float = 0.95) -> dict:
+    """Which model predicts the held-out choices better, or that the data cannot tell.
+
+    A paired t-test (Student 1908) on the per-demonstration differences of the
+    two models' scores: ``t = sum / (sqrt(k) sd)``; a model is named only when
+    ``|t|`` exceeds the two-sided ``level`` quantile of Student's t with k - 1
+    degrees of freedom (2.05 at 30 demonstrations, 12.7 at 2), else the
+    verdict is that the data cannot tell.
+    """
+    from scipy import stats
+    a, b = MODELS
+    diff = np.asarray(loo[b]) - np.asarray(loo[a])
+    k = len(diff)
+    total = float(diff.sum())
+    sd = float(diff.std(ddof=1)) if k > 1 else float('nan')
+    t = total / (math.sqrt(k) * sd) if k > 1 and sd > 0 else float('nan')
+    crit = float(stats.t.ppf(0.5 + level / 2, k - 1)) if k > 1 else float('inf')
+    better = (b if total > 0 else a) if abs(t) >= crit else None
+    return {'better': better, 'z': float(t), 'critical': crit, 'difference': total,
+            'wins': {b: int(np.sum(diff > 0)), a: int(np.sum(diff < 0))}}
+
+
 def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
                    n_alternatives: int = 0) -> dict:
     store = StateStore(state_dir)
@@ -51,29 +103,23 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
         over['n_alternatives'] = n_alternatives
     cfg = _config_from_manifest(manifest, **over)
     L = Learner(cfg)
+    if manifest.get('scales'):
+        L.features = L.features.with_scales(manifest['scales'])
     demos = [Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
                            int(d['stamp_ns'])) for d in raw]
-    sets = []
+    records = []
     for i, d in enumerate(demos):
         q = prepare(d, L.prepare_config, L.robot)
-        sets.append(L.choice_set(q, i)[1])
-    k = len(sets)
-    loo = {m: [] for m in MODELS}
-    for m in MODELS:
-        pcfg = cfg.posterior_config(m)
-        for i in progress(range(k), f'leave-one-out ({m})'):
-            rng = np.random.default_rng([cfg.seed, i, 99])
-            post = ParticlePosterior.create(pcfg, L.features.d, rng)
-            for j in range(k):
-                if j != i:
-                    post, _ = post.update((sets[j], 0), rng)
-            rec = post.prepare(sets[i], 0)
-            ll = post.record_loglik(rec, post.theta, post.beta)
-            loo[m].append(float(logsumexp(post.log_weights + ll)))
+        _, feats, groups = L.choice_set(q, i)
+        records.append((feats, groups))
+    k = len(records)
+    loo = loo_scores(records, {m: cfg.posterior_config(m) for m in MODELS}, L.features.d,
+                     cfg.seed)
     spreads = {}
     means = {m: [] for m in MODELS}
     for s in progress(range(n_sets), 'redrawn alternative sets'):
         Ls = Learner(_config_from_manifest(manifest, **dict(over, seed=cfg.seed + 1000 + s)))
+        Ls.features = L.features
         for d in demos:
             Ls.process(d)
         for m, sm in Ls.summaries().items():
@@ -84,21 +130,24 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
         c /= np.linalg.norm(c)
         spreads[m] = float(np.mean(np.arccos(np.clip(arr @ c, -1, 1))))
     tot = {m: float(np.sum(v)) for m, v in loo.items()}
-    better = max(tot, key=tot.get)
-    other = min(tot, key=tot.get)
-    diff = tot[better] - tot[other]
-    per = np.asarray(loo[better]) - np.asarray(loo[other])
+    v = verdict(loo)
     lines = [f'demonstrations: {k}; alternatives per set: {cfg.n_alternatives}',
-             'leave-one-out predictive log-likelihood (higher explains better):']
+             'leave-one-out predictive log-probability of the held-out choices '
+             '(higher predicts better):']
     for m in MODELS:
         lines.append(f'  {m:9s} total {tot[m]:10.3f}   per demonstration '
                      f'{np.mean(loo[m]):8.3f}')
     lines.append('spread of the estimate over redrawn alternative sets (lower is steadier):')
     for m in MODELS:
         lines.append(f'  {m:9s} {spreads[m]:.4f} rad over {n_sets} sets')
-    strength = ('clearly' if diff > 2.0 and np.mean(per > 0) >= 0.7 else 'slightly')
-    lines.append(f'verdict: {better} {strength} better explains these demonstrations '
-                 f'(log-likelihood +{diff:.2f}, better on {int(np.sum(per > 0))} of {k})'
-                 f'; steadier estimate: {min(spreads, key=spreads.get)}')
-    return {'loo': loo, 'loo_total': tot, 'spread_rad': spreads, 'better': better,
-            'text': '\n'.join(lines)}
+    steady = min(spreads, key=spreads.get)
+    if v['better'] is None:
+        lines.append(f'verdict: cannot tell which model explains these demonstrations better '
+                     f'(difference {v["difference"]:+.2f}, paired t = {v["z"]:.2f}; needs '
+                     f'|t| >= {v["critical"]:.2f}); steadier estimate: {steady}')
+    else:
+        lines.append(f'verdict: {v["better"]} explains these demonstrations better '
+                     f'(paired t = {abs(v["z"]):.2f}, better on {v["wins"][v["better"]]} of {k})'
+                     f'; steadier estimate: {steady}')
+    return {'loo': loo, 'loo_total': tot, 'spread_rad': spreads, 'better': v['better'],
+            'z': v['z'], 'text': '\n'.join(lines)}

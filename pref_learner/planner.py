@@ -198,8 +198,10 @@ class TrajectoryPlanner:
         kc = B.shape[1]
         # box bounds on each control that keep line + B c inside the limits at every
         # waypoint of its support (B-spline convex-hull property)
-        lo_t = self.robot.lower - line                   # (T, n), -inf for continuous
-        hi_t = self.robot.upper - line
+        # continuous joints stay within half a turn of the straight line: a reward that
+        # grows with motion (effort, path length) would otherwise be unbounded
+        lo_t = np.where(np.isfinite(self.robot.lower), self.robot.lower - line, -math.pi)
+        hi_t = np.where(np.isfinite(self.robot.upper), self.robot.upper - line, math.pi)
         support = B > 0
         c_lo = np.array([lo_t[support[:, k]].max(axis=0) for k in range(kc)])   # (K-2, n)
         c_hi = np.array([hi_t[support[:, k]].min(axis=0) for k in range(kc)])

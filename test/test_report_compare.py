@@ -77,3 +77,43 @@ def test_report_and_compare_bad_input(tmp_path):
                         str(tmp_path / 'r2')], capture_output=True, text=True, timeout=120)
     assert r.returncode == 2 and 'unreadable' in r.stderr
     assert not (tmp_path / 'r2').exists()
+
+
+def _crowd_sets(person, n, seed):
+    # Debreu's duplicates (review of Luce 1960, from memory): a lone option and a crowd of
+    # near-copies of an equally good other option, plus a few spread-out options. Boltzmann
+    # people pick the crowd in proportion to its size, LESS people count it as one option.
+    from pref_learner import choice
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        # the crowd sits on either good option, so no tilt of the weights can mimic it
+        a, b = (np.array([1.0, 0.0]), np.array([0.0, 1.0]))[::rng.choice([-1, 1])]
+        lone = a[None]
+        crowd = b + rng.normal(0, 0.01, (12, 2))
+        others = rng.normal(0, 0.6, (6, 2)) - 0.5
+        x = np.vstack([lone, crowd, others])
+        p = choice.choice_probabilities(x, np.array([1.0, 1.0]) / np.sqrt(2), 3.0, person)
+        c = int(rng.choice(len(x), p=p))
+        x[[0, c]] = x[[c, 0]]                      # the chosen row first
+        out.append((x, np.zeros(len(x), dtype=np.int64)))
+    return out
+
+
+@pytest.mark.parametrize('person', ['boltzmann', 'less'])
+def test_compare_verdict_picks_the_generating_model(person):
+    from pref_learner.compare import loo_scores, verdict
+    from pref_learner.posterior import PosteriorConfig
+    cfgs = {m: PosteriorConfig(n_particles=400, model=m, beta=3.0, bandwidth=0.3)
+            for m in ('boltzmann', 'less')}
+    v = verdict(loo_scores(_crowd_sets(person, 30, 3), cfgs, 2))
+    assert v['better'] == person, v
+
+
+def test_compare_says_cannot_tell_on_too_little_data():
+    from pref_learner.compare import loo_scores, verdict
+    from pref_learner.posterior import PosteriorConfig
+    cfgs = {m: PosteriorConfig(n_particles=400, model=m, beta=3.0, bandwidth=0.3)
+            for m in ('boltzmann', 'less')}
+    v = verdict(loo_scores(_crowd_sets('less', 2, 4), cfgs, 2))
+    assert v['better'] is None and abs(v['z']) < v['critical'], v
