@@ -55,12 +55,12 @@ class LearnerConfig:
     beta_max: float = 50.0              # both 0: beta fixed at ``beta``
     n_particles: int = 4000
     n_alternatives: int = 500
-    mix_smooth: float = 0.8             # smooth random draws between start and goal
-    mix_near_optimal: float = 0.2       # draws moved up the reward of sampled weights
+    mix_smooth: float = 1.0             # smooth random draws between start and goal
+    mix_near_optimal: float = 0.0       # draws moved up the reward of sampled weights (opt-in)
     mix_perturb: float = 0.0            # noisy copies of the demonstration (biased; opt-in)
     mix_planner: float = 0.0            # share of alternatives optimised under random weights
     planner_jobs: int = 1               # worker processes for planner alternatives
-    spreads: Tuple[float, ...] = (0.02, 0.04, 0.08, 0.16)   # option-spread levels (inferred)
+    spreads: Tuple[float, ...] = (0.08,)   # option-spread levels; several: inferred (opt-in)
     ascent_steps: int = 8
     ascent_step: float = 0.25
     n_waypoints: int = 64

@@ -159,6 +159,25 @@ def estimate_note_lines(summaries, option_labels, diagnostics) -> list:
     return lines
 
 
+def estimate_status_values(summary, option_labels, diagnostics) -> Dict[str, str]:
+    """Key/values for a status message: rationality, option model, checks, moves."""
+    s = summary
+    out = {'beta_mean': f'{s.beta_mean:.3f}',
+           'beta_ci90': json.dumps([round(s.beta_ci[0], 3), round(s.beta_ci[1], 3)]),
+           'beta_inferred': str(s.beta_inferred).lower(),
+           'beta_low_end_mass': f'{s.beta_low_mass:.3f}',
+           'beta_warning': ('rationality piles at the low end of its range: the features or '
+                            'the alternatives may be wrong') if s.beta_at_low_end else '',
+           'move_acceptance': 'nan' if math.isnan(s.acceptance) else f'{s.acceptance:.3f}',
+           'option_levels': json.dumps(list(option_labels)),
+           'option_level_probs': json.dumps([round(p, 4) for p in s.level_probs])}
+    flagged = [i + 1 for i, dg in enumerate(diagnostics) if dg.get('atypical')]
+    last = diagnostics[-1].get('predictive_pvalue', {}) if diagnostics else {}
+    out['last_predictive_pvalue'] = json.dumps({m: round(v, 4) for m, v in last.items()})
+    out['atypical_demonstrations'] = json.dumps(flagged)
+    return out
+
+
 def _table(names, summaries: Dict[str, dict]) -> str:
     head = '<tr><th>feature</th>' + ''.join(
         f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'

@@ -257,3 +257,60 @@ def test_duplicating_dense_alternatives_moves_boltzmann():
     assert db > 0.1
     assert dl < 0.05
     assert db > 3 * dl
+
+
+def test_log_kde_matches_scipy_gaussian_kde():
+    # scipy.stats.gaussian_kde with Scott's factor (Scott 1992) is the reference (to 1e-6,
+    # the tiny ridge that keeps degenerate sets invertible).
+    from scipy.stats import gaussian_kde
+    from pref_learner.posterior import log_kde
+    rng = np.random.default_rng(80)
+    pts = rng.normal(size=(150, 4)) @ rng.normal(size=(4, 4))
+    for x in rng.normal(size=(5, 4)):
+        assert log_kde(pts, x) == pytest.approx(float(gaussian_kde(pts.T).logpdf(x)[0]),
+                                                rel=1e-6)
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_tempered_update_of_a_sharp_demonstration_matches_quadrature(model):
+    # One very informative demonstration (beta 40): tempering takes several steps with
+    # moves between them; the result still matches the exact posterior on the circle
+    # (scipy.integrate quadrature, as above).
+    rng = np.random.default_rng(90)
+    x = rng.standard_normal((40, 2))
+    true = np.array([np.cos(2.0), np.sin(2.0)])
+    c = int(np.argmax(x @ true))
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=8000, model=model, beta=40.0),
+                                    2, rng)
+    post, info = post.update((x, c), rng)
+    assert info.tempering_steps > 1 and 0.0 < info.acceptance < 1.0
+    grid = np.linspace(-np.pi, np.pi, 20001)
+    th = np.stack([np.cos(grid), np.sin(grid)], axis=1)
+    ll = choice.get_model(model)(x, c, th, 40.0)
+    dens = np.exp(ll - ll.max())
+    dens /= integrate.trapezoid(dens, grid)
+    ang = np.arctan2(post.theta[:, 1], post.theta[:, 0])
+    exact_mean = integrate.trapezoid(dens[:, None] * th, grid, axis=0)
+    np.testing.assert_allclose(post.weights @ post.theta, exact_mean, atol=0.02)
+    assert np.all(np.isfinite(ang))
+
+
+def test_option_levels_and_near_optimal_alternatives():
+    # Near-optimal draws climb the reward of their weights (each ascent step is along a
+    # smoothed gradient), and every alternative carries its option level.
+    from pref_learner.alternatives import AlternativeSampler, SamplerConfig
+    from pref_learner.learner import Learner, LearnerConfig
+    L = Learner(LearnerConfig(n_particles=10, n_alternatives=50))
+    _, start, goal = L.tasks()[0]
+    w = np.tile(np.array([1.0, 0, 0, 0, 0, 0]), (20, 1))
+    cfg = SamplerConfig(20, {'near_optimal': 1.0}, (0.08,), ascent_steps=0)
+    flat = AlternativeSampler(L.robot, 64, cfg, n_features=6, ascent=L.reward_gradient)
+    steep = AlternativeSampler(L.robot, 64, SamplerConfig(20, {'near_optimal': 1.0}, (0.08,)),
+                               n_features=6, ascent=L.reward_gradient)
+    q0, _ = flat.sample(start, goal, np.random.default_rng(1), weights=lambda k, r: w)
+    q1, g = steep.sample(start, goal, np.random.default_rng(1), weights=lambda k, r: w)
+    assert np.all(L.reward_gradient(q1, w)[0] > L.reward_gradient(q0, w)[0])
+    assert np.all(q1 >= L.robot.lower) and np.all(q1 <= L.robot.upper)
+    np.testing.assert_array_equal(q1[:, 0], np.broadcast_to(start, (20, 7)))
+    _, feats, groups = L.choice_set(q1[0], 0)
+    assert groups[0] == -1 and set(groups[1:]) == set(range(len(L.option_labels())))

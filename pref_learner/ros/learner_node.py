@@ -30,6 +30,7 @@ from visualization_msgs.msg import Marker, MarkerArray
 
 from ..bags import estimate_arrays
 from ..learner import Learner, LearnerConfig, StepResult
+from ..report import estimate_status_values
 from .common import QueueWorker
 
 ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
@@ -451,6 +452,7 @@ class LearnerNode(Node):
                 'weights': json.dumps(np.round(s.mean, 6).tolist()),
                 'feature_names': json.dumps(list(L.names)),
             }
+            values.update(estimate_status_values(s, L.option_labels(), L.history_diagnostics()))
             for k in ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
                       'mismatched_lengths'):
                 values[f'samples_{k}'] = str(rc.get(k, 0))
