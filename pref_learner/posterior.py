@@ -687,8 +687,8 @@ class ParticlePosterior:
         else:
             bci = (self.config.beta, self.config.beta)
             bmean = self.config.beta
-        levels = tuple(float(v) for v in np.bincount(self.levels, weights=w,
-                                                      minlength=self.config.n_levels))
+        counts = np.bincount(self.levels, weights=w, minlength=self.config.n_levels)
+        levels = tuple(float(v) for v in counts)
         return Summary(mean, map_, cov, std, lo, hi, self.ess, r_len, len(self.records),
                        bmean, bci, levels, low_mass, float(self.acceptance),
                        self.log_beta is not None)

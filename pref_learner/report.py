@@ -221,6 +221,7 @@ def write_report(state_dir, out_dir) -> Path:
 
     def region(dg):
         return 'sparse' if dg['sparse'] else ('dense' if dg['dense'] else 'typical')
+
     def check(dg):
         p = dg.get('predictive_pvalue') or {}
         vals = ', '.join(f'{m} {v:.3f}' for m, v in p.items())
