@@ -59,7 +59,7 @@ def _tool(L, q):
     return L.robot.frame_poses(q, ['tool_tip']).positions[:, 0]
 
 
-def test_height_and_operator_clearance_are_honoured(setup):
+def test_height_and_fixed_operator_zone_are_honoured(setup):
     L, tasks = setup
     p = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
     _, s, g = tasks[0]
@@ -69,7 +69,7 @@ def test_height_and_operator_clearance_are_honoured(setup):
     up = p.plan(w, s, g)
     assert np.all(_tool(L, up.q)[1:-1, 2] > _tool(L, line)[1:-1, 2])
     w = np.zeros(L.features.d)
-    w[L.features.names.index('operator_clearance')] = 1.0
+    w[L.features.names.index('fixed_operator_zone_distance')] = 1.0
     far = p.plan(w, s, g)
     op = np.array([0.85, 0.25])
     dist = lambda q: np.linalg.norm(_tool(L, q)[:, :2] - op, axis=1)  # noqa: E731
@@ -91,7 +91,7 @@ def test_plans_beat_random_alternatives_for_their_weights(setup):
         assert plan.reward >= best, (k, plan.reward, best)
 
 
-def test_risk_aware_planning_and_parallel_alternatives(setup):
+def test_uncertainty_aware_planning_and_parallel_alternatives(setup):
     L, tasks = setup
     _, s, g = tasks[2]
     rng = np.random.default_rng(6)
@@ -103,7 +103,8 @@ def test_risk_aware_planning_and_parallel_alternatives(setup):
     direct = TrajectoryPlanner(L.features, PlannerConfig(restarts=0)).plan(
         (pw / pw.sum()) @ parts, s, g, rng)
     np.testing.assert_allclose(mean_plan.q, direct.q, atol=1e-6)   # expectation is linear
-    cvar = TrajectoryPlanner(L.features, PlannerConfig(restarts=0, risk='cvar', alpha=0.2))
+    cvar = TrajectoryPlanner(L.features, PlannerConfig(restarts=0, uncertainty_objective='cvar',
+                                                       alpha=0.2))
     worst = lambda q: np.sort(parts @ L.features(q))[:10].mean()  # noqa: E731
     assert worst(cvar.plan(parts, s, g, rng, particle_weights=np.ones(50)).q) >= \
         worst(mean_plan.q) - 1e-9
