@@ -146,6 +146,7 @@ def test_planner_node_over_dds():
     import rclpy
     from std_msgs.msg import Float64MultiArray
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+    from visualization_msgs.msg import MarkerArray
 
     from pref_learner.ros.planner_node import LATCHED, PlannerNode
     from ros_util import ros_context, spin_until, spinning
@@ -158,9 +159,11 @@ def test_planner_node_over_dds():
         with spinning(node, ctx):
             wpub = client.create_publisher(Float64MultiArray, '/pref_learner/weights', LATCHED)
             req = client.create_publisher(JointTrajectory, '/pref_planner/request', 10)
-            got = []
+            got, markers = [], []
             client.create_subscription(JointTrajectory, '/pref_planner/trajectory',
                                        got.append, 10)
+            client.create_subscription(MarkerArray, '/pref_planner/markers', markers.append,
+                                       LATCHED)
             spin_until(ex, lambda: req.get_subscription_count() > 0, 10)
 
             def request(points, names=list(L.robot.joint_names)):
@@ -180,7 +183,9 @@ def test_planner_node_over_dds():
             assert spin_until(ex, lambda: node.counters['bad_request'] == 3, 10)
             assert 'joint_2 = 3' in node.last_warning
             request([s, g])
-            assert spin_until(ex, lambda: len(got) == 1, 30)
+            assert spin_until(ex, lambda: len(got) == 1 and markers, 30)
+        # markers are expressed in the URDF's root link, not a fixed name
+        assert markers[-1].markers[0].header.frame_id == node.robot.root_link
         traj = got[0]
         q = np.array([p.positions for p in traj.points])
         t = np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9

@@ -177,7 +177,8 @@ def hostile_state(tmp_path_factory):
 @pytest.mark.parametrize('command', [['compare'], ['report', '--out', 'REPORT']])
 def test_opening_a_state_directory_runs_no_code_it_names(hostile_state, command, tmp_path):
     tmp, state, name, marker = hostile_state
-    env = dict(os.environ, PYTHONPATH=os.pathsep.join([str(tmp), str(ROOT)]))
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(
+        [str(tmp), str(ROOT)] + [p for p in [os.environ.get('PYTHONPATH')] if p]))
     args = [a.replace('REPORT', str(tmp_path / 'rep')) for a in command]
     r = subprocess.run([sys.executable, '-m', 'pref_learner.cli', args[0], str(state)]
                        + args[1:], env=env, capture_output=True, text=True, timeout=300)
