@@ -251,6 +251,20 @@ def time_parametrize(q: np.ndarray, v_max: np.ndarray, a_max: np.ndarray) -> np.
     return np.arange(len(q)) * dt
 
 
+def cap_tool_speed(t: np.ndarray, tool: np.ndarray, max_speed: float) -> np.ndarray:
+    """Stretch uniform times ``t (T,)`` so the tool path ``tool (T, 3)`` stays under a speed.
+
+    Returns new times (the same uniform step, made longer where needed) so that no
+    segment's average Cartesian speed exceeds ``max_speed`` (m/s, > 0). This only
+    shapes a proposal; it is not a safety function.
+    """
+    if len(t) < 2:
+        return t
+    seg = np.linalg.norm(np.diff(tool, axis=0), axis=1)
+    dt = max(float(t[1] - t[0]), float(seg.max()) / max_speed)
+    return np.arange(len(t)) * dt
+
+
 _WORKER_PLANNER: Optional[TrajectoryPlanner] = None
 
 

@@ -17,9 +17,9 @@ CAUTION = ('CAUTION: a learned preference is not a safety function; the robot\'s
 
 #: The planner node's start-up warning about what it publishes.
 PLANNER_WARNING = ('~/trajectory carries unchecked proposals, timed to the URDF velocity '
-                   'limits (not to any collaborative speed limit): never wire it to a '
-                   'controller without the controller stack\'s own limit, collision and '
-                   'speed checks.')
+                   'limits and max_tool_speed (not to the limits your risk assessment sets): '
+                   'never wire it to a controller without the controller stack\'s own '
+                   'limit, collision and speed checks.')
 
 #: The simulated teacher's private joint-state topic (its node's ``~/joint_states``);
 #: the demo and the launch file remap the learner's ``joint_states`` to it.

@@ -194,6 +194,11 @@ def test_planner_node_over_dds():
         np.testing.assert_allclose(q[-1], g)
         v = np.abs(np.diff(q, axis=0)) / np.diff(t)[:, None]
         assert np.all(v <= 0.5 * L.robot.velocity_limit + 1e-3)
+        # the tool stays under max_tool_speed (default 0.25 m/s, the common reduced speed of
+        # manual mode; from memory), measured on the published points by forward kinematics
+        tool = L.robot.frame_poses(q, ['tool_tip']).positions[:, 0]
+        speed = np.linalg.norm(np.diff(tool, axis=0), axis=1) / np.diff(t)
+        assert speed.max() <= 0.25 * (1 + 1e-6) and speed.max() >= 0.2
         node.destroy_node()
         client.destroy_node()
 

@@ -20,7 +20,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
 from ..learner import Learner, LearnerConfig
-from ..planner import PlannerConfig, TrajectoryPlanner, time_parametrize
+from ..planner import PlannerConfig, TrajectoryPlanner, cap_tool_speed, time_parametrize
 from ..safety import CAUTION, PLANNER_WARNING
 from .common import QueueWorker, declare_feature_modules, declare_read_only
 
@@ -45,6 +45,8 @@ class PlannerNode(Node):
             'n_waypoints': (64, 'waypoints per plan'),
             'max_acceleration': (2.0, 'joint acceleration limit for timing, rad/s^2'),
             'velocity_scale': (0.5, 'fraction of the URDF velocity limits used for timing'),
+            'max_tool_speed': (0.25, 'cap on the tool frame\'s Cartesian speed for timing, m/s '
+                               '(0: no cap); shapes proposals only, not a safety function'),
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
             'seed': (0, 'seed of the restarts'),
@@ -126,6 +128,9 @@ class PlannerNode(Node):
         vmax = self.robot.velocity_limit * self.get_parameter('velocity_scale').value
         amax = np.full(self.robot.n, self.get_parameter('max_acceleration').value)
         t = time_parametrize(res.q, vmax, amax)
+        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
+        if self.get_parameter('max_tool_speed').value > 0:
+            t = cap_tool_speed(t, tool, self.get_parameter('max_tool_speed').value)
         out = JointTrajectory()
         out.header.stamp = self.get_clock().now().to_msg()
         out.joint_names = list(self.robot.joint_names)
@@ -135,7 +140,6 @@ class PlannerNode(Node):
             p.time_from_start = Duration(sec=int(ti), nanosec=int((ti % 1.0) * 1e9))
             out.points.append(p)
         self.traj_pub.publish(out)
-        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
         mk = Marker()
         mk.header.frame_id = self.robot.root_link
         mk.ns = 'plan'
