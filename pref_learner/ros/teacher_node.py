@@ -24,7 +24,7 @@ from std_msgs.msg import Bool
 from ..learner import Learner, LearnerConfig
 from ..safety import allow_network_requested, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
-from .common import declare_feature_modules, declare_read_only
+from .common import declare_feature_modules, declare_read_only, joint_state
 
 
 class TeacherNode(Node):
@@ -42,6 +42,8 @@ class TeacherNode(Node):
             'duration': (3.0, 'duration of one motion, s'),
             'pause': (1.0, 'pause between demonstrations, s'),
             'start_delay': (2.0, 'wait before the first demonstration, s'),
+            'release_delay': (0.3, 'wait after the last sample before the teaching signal '
+                              'goes off, s (lets the learner take in the last samples first)'),
             'teaching_topic': ('/pref_learner/teaching', 'the learner\'s teaching topic'),
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
@@ -78,20 +80,20 @@ class TeacherNode(Node):
         for k in range(g('n_demonstrations')):
             if not self.context.ok():
                 return
-            _, q = self.teacher.stream(k)
+            # stamped at the simulated person's sample times, so a stall of this process
+            # under load delays samples but never opens a gap between their stamps
+            stamps, q = self.teacher.stream(k, self.get_clock().now().nanoseconds)
             self.teach_pub.publish(Bool(data=True))
             self.progress_pub.publish(Bool(data=True))
             t_next = time.perf_counter()
-            for row in q:
-                msg = JointState()
-                msg.header.stamp = self.get_clock().now().to_msg()
-                msg.name = names
-                msg.position = np.concatenate([row, [0.01, 0.01]]).tolist()
+            for stamp, row in zip(stamps, q):
+                msg = joint_state(int(stamp), names, np.concatenate([row, [0.01, 0.01]]))
                 self.js_pub.publish(msg)
                 t_next += period
                 delay = t_next - time.perf_counter()
                 if delay > 0:
                     time.sleep(delay)
+            time.sleep(g('release_delay'))
             self.teach_pub.publish(Bool(data=False))
             self.progress_pub.publish(Bool(data=False))
             self.get_logger().info(f'demonstration {k + 1} given')
