@@ -35,19 +35,23 @@ class CliError(Exception):
 def _ros_env(allow_network: bool) -> dict:
     """Set this process's DDS environment for the demo and return it for the children.
 
-    Loopback only (forced, static peers dropped) unless ``allow_network``.
+    Loopback only (forced, static peers dropped) and a fresh random domain, so the
+    simulated session meets no other node on this machine either, unless
+    ``allow_network`` (then the user's settings stay, loopback if none).
     """
+    domain = str(random.SystemRandom().randint(1, 101))
     if allow_network:
         os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    else:
-        was = os.environ.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '')
-        peers = os.environ.pop('ROS_STATIC_PEERS', '')
-        os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
-        if was.upper() not in ('', 'LOCALHOST') or peers:
-            print(f'pref-learner demo: discovery forced to LOCALHOST (was {was or "unset"}'
-                  f'{", static peers dropped" if peers else ""}); --allow-network keeps yours',
-                  file=sys.stderr)
-    os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
+        os.environ.setdefault('ROS_DOMAIN_ID', domain)
+        return dict(os.environ)
+    was = os.environ.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '')
+    peers = os.environ.pop('ROS_STATIC_PEERS', '')
+    os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
+    os.environ['ROS_DOMAIN_ID'] = domain
+    if was.upper() not in ('', 'LOCALHOST') or peers:
+        print(f'pref-learner demo: discovery forced to LOCALHOST (was {was or "unset"}'
+              f'{", static peers dropped" if peers else ""}); --allow-network keeps yours',
+              file=sys.stderr)
     return dict(os.environ)
 
 

@@ -112,15 +112,20 @@ def test_teacher_publishes_only_on_its_private_topic():
 def test_demo_forces_loopback_and_remaps_the_learner(monkeypatch, tmp_path):
     monkeypatch.setenv('ROS_AUTOMATIC_DISCOVERY_RANGE', 'SUBNET')
     monkeypatch.setenv('ROS_STATIC_PEERS', '10.0.0.9')
+    monkeypatch.setenv('ROS_DOMAIN_ID', '0')
     env = _ros_env(allow_network=False)
     assert env['ROS_AUTOMATIC_DISCOVERY_RANGE'] == 'LOCALHOST'
     assert 'ROS_STATIC_PEERS' not in env and network_exposure(env) == ''
+    assert 1 <= int(env['ROS_DOMAIN_ID']) <= 101          # a fresh domain, not the robot's 0
+    assert os.environ['ROS_DOMAIN_ID'] == env['ROS_DOMAIN_ID']   # the demo's own rclpy too
     args = build_parser().parse_args(['demo'])
     learner, teacher = demo_commands(args, tmp_path / 's', tmp_path / 'b', np.ones(6))
     assert learner[learner.index('-r') + 1] == f'joint_states:={SIMULATED_JOINT_STATES}'
     assert 'allow_network:=false' in teacher
     monkeypatch.setenv('ROS_AUTOMATIC_DISCOVERY_RANGE', 'SUBNET')
-    assert _ros_env(allow_network=True)['ROS_AUTOMATIC_DISCOVERY_RANGE'] == 'SUBNET'
+    monkeypatch.setenv('ROS_DOMAIN_ID', '0')
+    env = _ros_env(allow_network=True)
+    assert env['ROS_AUTOMATIC_DISCOVERY_RANGE'] == 'SUBNET' and env['ROS_DOMAIN_ID'] == '0'
     args = build_parser().parse_args(['demo', '--allow-network'])
     assert 'allow_network:=true' in demo_commands(args, tmp_path, tmp_path, np.ones(6))[1]
 
