@@ -142,18 +142,21 @@ def test_time_parametrization_respects_limits():
     assert np.all(np.abs(np.diff(q, n=2, axis=0)) / dt[0] ** 2 <= a + 1e-12)
 
 
-def test_planner_node_over_dds():
+def test_planner_node_over_dds(capfd):
     import rclpy
     from std_msgs.msg import Float64MultiArray
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
     from visualization_msgs.msg import MarkerArray
 
     from pref_learner.ros.planner_node import LATCHED, PlannerNode
+    from pref_learner.safety import CAUTION, PLANNER_WARNING
     from ros_util import ros_context, spin_until, spinning
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
     _, s, g = L.tasks()[0]
     with ros_context() as (ctx, ex):
         node = PlannerNode(context=ctx)
+        logged = capfd.readouterr().err
+        assert CAUTION in logged and PLANNER_WARNING in logged   # at start-up, as warnings
         client = rclpy.create_node('plan_client', context=ctx)
         ex.add_node(client)
         with spinning(node, ctx):
