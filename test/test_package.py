@@ -128,7 +128,8 @@ def test_flake8_clean():
 
 
 def test_copyright_headers():
-    # REP 2004 quality level 3: a licence and copyright notice in every source file
+    # REP 2004, every quality level from 4 up: a licence and a copyright notice in every
+    # source file
     for p in list((ROOT / 'pref_learner').rglob('*.py')) + list((ROOT / 'test').glob('*.py')) \
             + list((ROOT / 'launch').glob('*.py')) + [ROOT / 'setup.py']:
         head = p.read_text().splitlines()[:2]
