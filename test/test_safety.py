@@ -14,7 +14,8 @@ import numpy as np
 import pytest
 
 from pref_learner.cli import _ros_env, build_parser, demo_commands
-from pref_learner.features import FeatureConfigError, FeatureSet, allow_feature_modules
+from pref_learner.features import (FeatureConfigError, FeatureSet, allow_feature_modules,
+                                   allowed_feature_modules)
 from pref_learner.robot import RobotModel
 from pref_learner.safety import (CAUTION, PLANNER_WARNING, SIMULATED_JOINT_STATES,
                                  allow_network_requested, network_exposure,
@@ -194,3 +195,20 @@ def test_opening_a_state_directory_runs_no_code_it_names(hostile_state, command,
         assert f'--feature-module {name}' in r.stderr
     else:                         # the report reads stored numbers only
         assert r.returncode == 0, r.stderr
+
+
+def test_installed_entry_point_allows_its_module(tmp_path, monkeypatch):
+    # An installed package declares its feature module in its metadata (entry_points.txt,
+    # the packaging specification's format); nothing is imported to find it.
+    name, marker = _hostile_module(tmp_path)
+    dist = tmp_path / 'pl_feature_pack-1.0.dist-info'
+    dist.mkdir()
+    (dist / 'METADATA').write_text('Metadata-Version: 2.1\nName: pl-feature-pack\nVersion: 1.0\n')
+    (dist / 'entry_points.txt').write_text(
+        f'[pref_learner.feature_types]\nheight_mean = {name}:feature\n')
+    assert name not in allowed_feature_modules()
+    monkeypatch.syspath_prepend(str(tmp_path))
+    assert name in allowed_feature_modules() and not marker.exists()
+    fs = FeatureSet.from_yaml({'features': [{'name': 'z', 'type': f'{name}:feature'}]},
+                              RobotModel.default())
+    assert fs.names == ('z',) and marker.exists()
