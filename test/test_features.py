@@ -173,10 +173,14 @@ def test_feature_gradients_against_finite_differences():
     ({'name': 'a', 'type': 'height', 'params': {'normal': 'up'}}, 'normal'),
     ({'name': 'A b', 'type': 'height'}, 'name must match'),
     ({'name': 'a', 'type': 'tilt', 'params': {'axis': 'w'}}, 'axis'),
-    ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, 'cannot be imported'),
+    ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, "module 'nosuchmodule_xyz', which is not "
+     'allowed'),
+    ({'name': 'a', 'type': 'allowed_but_missing_xyz:f'}, 'cannot be imported'),
+    ({'name': 'a', 'type': 'json:no_such_function'}, 'cannot be imported'),
 ])
 def test_bad_feature_yaml(spec, word):
     robot = RobotModel.default()
+    allow_feature_modules(['allowed_but_missing_xyz', 'json'])
     with pytest.raises(FeatureConfigError, match=word):
         FeatureSet.from_yaml({'features': [spec]}, robot)
 
