@@ -212,3 +212,19 @@ def test_installed_entry_point_allows_its_module(tmp_path, monkeypatch):
     fs = FeatureSet.from_yaml({'features': [{'name': 'z', 'type': f'{name}:feature'}]},
                               RobotModel.default())
     assert fs.names == ('z',) and marker.exists()
+
+
+def test_no_reader_can_run_code_from_a_file():
+    # Static guard (common practice: pickle, yaml.load with a full loader, numpy.load with
+    # allow_pickle=True, eval and exec can all run code a file supplies). The one dynamic
+    # import is features._load_user_type, behind the allow list tested above.
+    import re
+    risky = re.compile(r'\bpickle\.loads?\(|allow_pickle\s*=\s*True|yaml\.(unsafe_)?load\(|'
+                       r'yaml\.full_load|\beval\(|\bexec\(|__import__\(|import_module\(')
+    hits = []
+    for p in sorted((ROOT / 'pref_learner').rglob('*.py')):
+        for line in p.read_text().splitlines():
+            if risky.search(line):
+                hits.append((str(p.relative_to(ROOT)), line.strip()))
+    assert hits == [('pref_learner/features.py',
+                     'func = getattr(importlib.import_module(mod), attr)')], hits
