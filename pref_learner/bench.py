@@ -2,7 +2,7 @@
 # SPDX-License-Identifier: Apache-2.0
 """Benchmarks behind ``pref-learner bench --json PATH`` (flat JSON of figures).
 
-Defaults of DESIGN.md §4: shipped 7-DoF arm, T = 64, d = 6, M = 500, N = 4,000.
+Defaults of the learner (LearnerConfig): shipped 7-DoF arm, T = 64, d = 6, M = 500, N = 4,000.
 Node figures start a real learner node in a subprocess and talk to it over
 DDS on this machine. Nothing here is a pass/fail test; the figures are for
 people to read.

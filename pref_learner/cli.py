@@ -3,8 +3,10 @@
 """``pref-learner``: the command line (demo, learn, bench).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
-DDS discovery stays on this machine unless ROS_AUTOMATIC_DISCOVERY_RANGE is
-set explicitly (a user on a robot network sets it to SUBNET).
+The demo keeps DDS discovery on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST,
+no static peers) whatever the environment says, unless ``--allow-network``; its
+simulated person publishes only on its own namespaced topic. Every screen that
+shows learned weights carries the one-line caution of :mod:`pref_learner.safety`.
 """
 
 from __future__ import annotations
@@ -21,6 +23,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .safety import CAUTION, SIMULATED_JOINT_STATES
+
 DEFAULT_TRUE_WEIGHTS = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
 
 
@@ -28,15 +32,54 @@ class CliError(Exception):
     """A user-facing error: printed as one line, exit code 2."""
 
 
-def _ros_env() -> dict:
-    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
+def _ros_env(allow_network: bool) -> dict:
+    """Set this process's DDS environment for the demo and return it for the children.
+
+    Loopback only (forced, static peers dropped) and a fresh random domain, so the
+    simulated session meets no other node on this machine either, unless
+    ``allow_network`` (then the user's settings stay, loopback if none).
+    """
+    domain = str(random.SystemRandom().randint(1, 101))
+    if allow_network:
+        os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+        os.environ.setdefault('ROS_DOMAIN_ID', domain)
+        return dict(os.environ)
+    was = os.environ.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '')
+    peers = os.environ.pop('ROS_STATIC_PEERS', '')
+    os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
+    os.environ['ROS_DOMAIN_ID'] = domain
+    if was.upper() not in ('', 'LOCALHOST') or peers:
+        print(f'pref-learner demo: discovery forced to LOCALHOST (was {was or "unset"}'
+              f'{", static peers dropped" if peers else ""}); --allow-network keeps yours',
+              file=sys.stderr)
     return dict(os.environ)
 
 
 # ---------------------------------------------------------------- demo
+def demo_commands(args, state: Path, bag: Path, truth: np.ndarray):
+    """Return the learner's and the simulated teacher's command lines for the demo.
+
+    The learner reads the teacher's private joint states, never ``/joint_states``.
+    """
+    py = sys.executable
+    learner_cmd = [py, '-m', 'pref_learner.ros.learner_node', '--ros-args',
+                   '-p', f'model:={args.model}', '-p', f'state_dir:={state}',
+                   '-p', f'record_bag:={bag}', '-p', f'n_particles:={args.particles}',
+                   '-p', f'n_alternatives:={args.alternatives}', '-p', f'seed:={args.seed}',
+                   *_beta_params(args),
+                   '-r', f'joint_states:={SIMULATED_JOINT_STATES}', '--log-level', 'warn']
+    teacher_cmd = [py, '-m', 'pref_learner.ros.teacher_node', '--ros-args',
+                   '-p', f'true_weights:={list(map(float, truth))}',
+                   '-p', f'model:={args.person}', '-p', f'beta:={float(args.person_beta)}',
+                   '-p', f'n_demonstrations:={args.demonstrations}',
+                   '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
+                   '-p', f'allow_network:={str(args.allow_network).lower()}',
+                   '--log-level', 'warn']
+    return learner_cmd, teacher_cmd
+
+
 def cmd_demo(args) -> int:
-    env = _ros_env()
+    env = _ros_env(args.allow_network)
     out = Path(args.out).resolve()
     stamp = time.strftime('%Y%m%d-%H%M%S')
     state = out / f'state-{stamp}'
@@ -44,18 +87,7 @@ def cmd_demo(args) -> int:
     out.mkdir(parents=True, exist_ok=True)
     truth = np.asarray(args.true_weights, dtype=np.float64)
     truth = truth / np.linalg.norm(truth)
-    py = sys.executable
-    learner_cmd = [py, '-m', 'pref_learner.ros.learner_node', '--ros-args',
-                   '-p', f'model:={args.model}', '-p', f'state_dir:={state}',
-                   '-p', f'record_bag:={bag}', '-p', f'n_particles:={args.particles}',
-                   '-p', f'n_alternatives:={args.alternatives}', '-p', f'seed:={args.seed}',
-                   *_beta_params(args), '--log-level', 'warn']
-    teacher_cmd = [py, '-m', 'pref_learner.ros.teacher_node', '--ros-args',
-                   '-p', f'true_weights:={list(map(float, truth))}',
-                   '-p', f'model:={args.person}', '-p', f'beta:={float(args.person_beta)}',
-                   '-p', f'n_demonstrations:={args.demonstrations}',
-                   '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
-                   '--log-level', 'warn']
+    learner_cmd, teacher_cmd = demo_commands(args, state, bag, truth)
     print(f'pref-learner demo: a simulated person ({args.person} chooser, beta '
           f'{args.person_beta}) '
           f'teaches {args.demonstrations} tube transfers on the bench arm; '
@@ -82,11 +114,12 @@ def cmd_demo(args) -> int:
                                   seed=args.seed, **_beta_config(args)))
     names = final.names
     print()
-    print('feature'.ljust(22) + 'true'.rjust(7) + ''.join(
+    print(CAUTION)
+    print('feature'.ljust(30) + 'true'.rjust(7) + ''.join(
         f'{m + " mean":>16}{"90% interval":>18}' for m in final.config.models))
     sums = final.summaries()
     for j, n in enumerate(names):
-        row = n.ljust(22) + f'{truth[j]:7.2f}'
+        row = n.ljust(30) + f'{truth[j]:7.2f}'
         for m in final.config.models:
             s = sums[m]
             row += f'{s.mean[j]:16.2f}{"[" + f"{s.ci_low[j]:.2f}, {s.ci_high[j]:.2f}" + "]":>18}'
@@ -154,6 +187,7 @@ def cmd_learn(args) -> int:
     finally:
         w.close()
     sums = L.summaries()
+    print(CAUTION, file=sys.stderr)
     print(json.dumps({'demonstrations': n_ok, 'rejected': len(L.rejections),
                       'feature_names': list(L.names),
                       'weights': {m: s.mean.tolist() for m, s in sums.items()}}, indent=1))
@@ -223,6 +257,7 @@ def cmd_compare(args) -> int:
     if args.json:
         Path(args.json).write_text(json.dumps(res, indent=1))
     print(res['text'])
+    print(CAUTION)
     return 0
 
 
@@ -267,6 +302,13 @@ def estimate_notes(learner) -> list:
                                learner.history_diagnostics())
 
 
+def _feature_module_option(p) -> None:
+    p.add_argument('--feature-module', action='append', default=[], metavar='MODULE',
+                   help='let user feature types (module:function) load from MODULE; repeat '
+                   'for several. Without it a feature file, state directory or bag never '
+                   'imports code')
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog='pref-learner', description=(
         'Learn what a person teaching a robot arm cares about (weights over task features).'))
@@ -282,6 +324,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="the simulated person's rationality (the learner does not know it)")
     d.add_argument('--demonstrations', type=int, default=8)
     d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
+    d.add_argument('--allow-network', action='store_true',
+                   help='keep your ROS_AUTOMATIC_DISCOVERY_RANGE / ROS_STATIC_PEERS instead of '
+                   'forcing loopback (the simulated person then publishes onto that network)')
     d.set_defaults(func=cmd_demo)
 
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
@@ -300,6 +345,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument('source', help='state directory, or a bag to learn from first')
     r.add_argument('--out', required=True, help='directory for report.html and PNGs')
     _learning_options(r)
+    _feature_module_option(r)
     r.set_defaults(func=cmd_report)
 
     c = sub.add_parser('compare', help='which choice model explains these demonstrations')
@@ -309,6 +355,7 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument('--alternatives', type=int, default=0,
                    help='alternatives per demonstration (0: as stored)')
     c.add_argument('--json', help='write the numbers to this file')
+    _feature_module_option(c)
     c.set_defaults(func=cmd_compare)
 
     b = sub.add_parser('bench', help='benchmark figures as JSON')
@@ -325,6 +372,8 @@ def main(argv=None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
+        from .features import allow_feature_modules
+        allow_feature_modules(getattr(args, 'feature_module', []))
         return args.func(args)
     except (CliError, ValueError, OSError, RuntimeError) as exc:
         if args.debug:

@@ -40,6 +40,11 @@ Trajectory types (no aggregate), time normalised to [0, 1]:
 A user type is ``type: "my_pkg.my_module:my_feature"`` naming a callable
 ``f(q, positions, rotations, params) -> (M,)`` with ``q (M, T, n)``,
 ``positions (M, T, 3)`` and ``rotations (M, T, 3, 3)`` of the feature's frame.
+Reading a file never runs code on its own: the module must be one the user
+allowed in this process (:func:`allow_feature_modules`, from the command
+line's ``--feature-module`` or a node's ``feature_modules`` parameter) or one
+an installed package declares under the entry-point group
+``pref_learner.feature_types``; otherwise the type is refused before any import.
 
 Scaling: the reward uses features divided by one fixed positive scale per
 feature for the whole session (given, or calibrated once from smooth
@@ -50,6 +55,7 @@ re-standardised per choice set.
 from __future__ import annotations
 
 import importlib
+import importlib.metadata
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -74,6 +80,10 @@ _PARAMS = {
 }
 _SPEC_KEYS = ('name', 'type', 'frame', 'aggregate', 'params')
 _NAME_RE = re.compile(r'^[a-z][a-z0-9_]*$')
+_MODULE_RE = re.compile(r'^[A-Za-z_][A-Za-z0-9_]*(\.[A-Za-z_][A-Za-z0-9_]*)*$')
+#: Installed packages declare their feature modules here (setup.py entry_points).
+ENTRY_POINT_GROUP = 'pref_learner.feature_types'
+_ALLOWED_MODULES: set = set()
 
 
 class FeatureConfigError(ValueError):
@@ -88,6 +98,45 @@ class FeatureSpec:
     aggregate: Optional[str]
     params: Dict[str, object] = field(default_factory=dict)
     func: Optional[Callable] = None
+
+
+def allow_feature_modules(modules) -> None:
+    """Let user feature types load from these modules in this process.
+
+    Only the user's explicit choice calls this (command-line option, node
+    parameter); nothing read from a file does. Submodules are not implied.
+    """
+    for m in modules:
+        if not isinstance(m, str) or not _MODULE_RE.match(m):
+            raise FeatureConfigError(f'feature module {m!r} is not a dotted Python module name')
+        _ALLOWED_MODULES.add(m)
+
+
+def allowed_feature_modules() -> frozenset:
+    """Modules user feature types may load from: allowed explicitly or installed entry points.
+
+    Entry points are read from package metadata; nothing is imported here.
+    """
+    installed = {ep.value.partition(':')[0].strip()
+                 for ep in importlib.metadata.entry_points(group=ENTRY_POINT_GROUP)}
+    return frozenset(_ALLOWED_MODULES | installed)
+
+
+def _load_user_type(ftype: str, where: str):
+    mod, _, attr = ftype.partition(':')
+    if mod not in allowed_feature_modules():
+        raise FeatureConfigError(
+            f'{where}: type {ftype!r} names module {mod!r}, which is not allowed to load '
+            f'(a feature file never runs code on its own); allow it with --feature-module '
+            f'{mod} (pref-learner), the feature_modules parameter (nodes) or an installed '
+            f'{ENTRY_POINT_GROUP} entry point')
+    try:
+        func = getattr(importlib.import_module(mod), attr)
+    except (ImportError, AttributeError) as exc:
+        raise FeatureConfigError(f'{where}: type {ftype!r} cannot be imported: {exc}') from None
+    if not callable(func):
+        raise FeatureConfigError(f'{where}: type {ftype!r} is not callable')
+    return func
 
 
 def _vec3(v, where, key):
@@ -120,14 +169,7 @@ def _parse_spec(raw, i: int, source: str, robot: RobotModel) -> FeatureSpec:
         raise FeatureConfigError(f'{where}: params must be a mapping, got {params!r}')
     func = None
     if ':' in ftype:
-        mod, _, attr = ftype.partition(':')
-        try:
-            func = getattr(importlib.import_module(mod), attr)
-        except (ImportError, AttributeError) as exc:
-            raise FeatureConfigError(
-                f'{where}: type {ftype!r} cannot be imported: {exc}') from None
-        if not callable(func):
-            raise FeatureConfigError(f'{where}: type {ftype!r} is not callable')
+        func = _load_user_type(ftype, where)
     elif ftype not in _PARAMS:
         raise FeatureConfigError(f'{where}: type {ftype!r} is unknown; allowed: '
                                  f'{list(WAYPOINT_TYPES + TRAJECTORY_TYPES)} or "module:function"')

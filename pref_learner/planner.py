@@ -17,11 +17,16 @@ frame Jacobians, chained through each aggregate
 scipy ``minimize(method='L-BFGS-B')`` runs from the straight line and from a
 few seeded smooth perturbations of it; the best result is returned.
 
-Risk under uncertainty (``risk``): ``mean`` optimises the expected reward
-over weighted particles (linear in theta, so it equals the reward of the
-weighted mean vector); ``cvar`` optimises the mean reward over the worst
-``alpha`` fraction of the posterior mass (conditional value at risk, a
-smooth lower-quantile criterion).
+Objective under uncertainty about the preference (``uncertainty_objective``;
+this is uncertainty about what the person wants, not a hazard measure):
+``mean`` optimises the expected reward over weighted particles (linear in
+theta, so it equals the reward of the weighted mean vector); ``cvar``
+optimises the mean reward over the worst ``alpha`` fraction of the posterior
+mass (conditional value at risk, a smooth lower-quantile criterion).
+
+Plans are proposals: the bounds keep waypoints within the URDF joint limits
+and :func:`time_parametrize` times them to given speed and acceleration
+limits; nothing here checks collisions or collaborative speed limits.
 """
 
 from __future__ import annotations
@@ -45,7 +50,7 @@ class PlannerConfig:
     barrier_margin: float = 0.05      # rad (or m) from each limit
     restarts: int = 2
     restart_scale: float = 0.05       # fraction of joint range, smooth noise
-    risk: str = 'mean'                # mean | cvar
+    uncertainty_objective: str = 'mean'   # mean | cvar (over the preference posterior)
     alpha: float = 0.1                # tail fraction for cvar
     max_iter: int = 200
     n_control: int = 16               # B-spline controls incl. the two fixed ends (<= T used)
@@ -55,8 +60,9 @@ class PlannerConfig:
             raise ValueError(f'n_waypoints must be >= 4, got {self.n_waypoints}')
         if self.smoothness < 0 or self.barrier < 0:
             raise ValueError('smoothness and barrier must be >= 0')
-        if self.risk not in ('mean', 'cvar'):
-            raise ValueError(f'risk {self.risk!r} is unknown; allowed: mean, cvar')
+        if self.uncertainty_objective not in ('mean', 'cvar'):
+            raise ValueError(f'uncertainty_objective {self.uncertainty_objective!r} is unknown; '
+                             'allowed: mean, cvar')
         if not 0 < self.alpha <= 1:
             raise ValueError(f'alpha must be in (0, 1], got {self.alpha}')
         if self.restarts < 0 or self.max_iter < 1:
@@ -139,7 +145,7 @@ class TrajectoryPlanner:
         """Return the weight vector whose gradient the reward has at these features."""
         if theta.ndim == 1:
             return theta
-        if self.config.risk == 'mean':
+        if self.config.uncertainty_objective == 'mean':
             return pw @ theta
         r = theta @ phi
         order = np.argsort(r)
@@ -245,6 +251,20 @@ def time_parametrize(q: np.ndarray, v_max: np.ndarray, a_max: np.ndarray) -> np.
     dt_a = float(np.sqrt(np.max(ddq / a_max))) if ddq.size else 0.0
     dt = max(dt_v, dt_a, 1e-3)
     return np.arange(len(q)) * dt
+
+
+def cap_tool_speed(t: np.ndarray, tool: np.ndarray, max_speed: float) -> np.ndarray:
+    """Stretch uniform times ``t (T,)`` so the tool path ``tool (T, 3)`` stays under a speed.
+
+    Returns new times (the same uniform step, made longer where needed) so that no
+    segment's average Cartesian speed exceeds ``max_speed`` (m/s, > 0). This only
+    shapes a proposal; it is not a safety function.
+    """
+    if len(t) < 2:
+        return t
+    seg = np.linalg.norm(np.diff(tool, axis=0), axis=1)
+    dt = max(float(t[1] - t[0]), float(seg.max()) / max_speed)
+    return np.arange(len(t)) * dt
 
 
 _WORKER_PLANNER: Optional[TrajectoryPlanner] = None

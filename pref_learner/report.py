@@ -21,6 +21,7 @@ import numpy as np
 
 from .choice import log_similarity_sums
 from .posterior import ParticlePosterior
+from .safety import CAUTION
 from .store import StateStore
 
 COLOURS = {'boltzmann': '#1f77b4', 'less': '#d62728'}
@@ -243,6 +244,9 @@ def write_report(state_dir, out_dir) -> Path:
 <style>body{{font-family:sans-serif;margin:2em;max-width:1100px}}
 table{{border-collapse:collapse;margin:1em 0}}td,th{{border:1px solid #bbb;padding:3px 8px;
 text-align:right}}img{{max-width:100%}}</style></head><body>
+<p id="caution" style="border:2px solid #c00;padding:0.5em 1em;text-align:left">
+<strong>{html.escape(CAUTION)}</strong> Plans made from these weights are proposals for
+the controller stack to check (README, Safety).</p>
 <h1>pref_learner report</h1>
 <p>State directory: <code>{html.escape(str(state_dir))}</code>. Models: {', '.join(models)}.
 Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
@@ -258,7 +262,6 @@ Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
 {diag_rows}</table>
 <h2>Rejected demonstrations</h2>
 <table id="rejected"><tr><th>#</th><th>reason</th><th>detail</th></tr>{rej_rows}</table>
-<p>A learned preference is not a safety function. See the README's safety section.</p>
 </body></html>
 """
     path = out / 'report.html'

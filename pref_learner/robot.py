@@ -20,6 +20,8 @@ and against an independent URDF implementation (yourdfpy).
 
 from __future__ import annotations
 
+import functools
+
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
@@ -195,6 +197,15 @@ class RobotModel:
     def default(cls, **kwargs) -> 'RobotModel':
         """Load the shipped 7-DoF bench arm."""
         return cls(default_urdf_path(), **kwargs)
+
+    @functools.cached_property
+    def root_link(self) -> str:
+        """Name of the URDF's root link: the frame of every position the package reports."""
+        import xml.etree.ElementTree as ET
+        root = ET.fromstring(self.urdf_text)
+        children = {c.get('link') for c in root.iter('child')}
+        links = [lk.get('name') for lk in root.findall('link')]
+        return next(n for n in links if n not in children)
 
     # ------------------------------------------------------------ configurations
     @property

@@ -13,6 +13,7 @@ import pytest
 
 from pref_learner.bags import BagWriter, read_messages, read_stream
 from pref_learner.posterior import ParticlePosterior
+from pref_learner.safety import CAUTION
 
 CLI = [sys.executable, '-m', 'pref_learner.cli']
 
@@ -72,6 +73,10 @@ def test_demo_learns_and_records(demo_run):
     assert res['n_demonstrations'] == 8
     assert res['cosine']['less'] >= 0.9
     assert 'tube_height' in r.stdout and 'session bag' in r.stdout
+    # the caution on the screen with the weights table, and at the learner node's start
+    table = r.stdout.index('tube_height')
+    assert 0 <= r.stdout.rfind(CAUTION, 0, table)
+    assert f'[pref_learner]: {CAUTION}' in r.stderr
 
 
 def test_learn_reproduces_the_live_estimate(demo_run, tmp_path):
@@ -80,6 +85,7 @@ def test_learn_reproduces_the_live_estimate(demo_run, tmp_path):
     r2 = run(['learn', res['bag'], '--out', str(tmp_path / 'offline'), '--particles', '1500',
               '--alternatives', '300'])
     assert r2.returncode == 0, r2.stderr
+    assert CAUTION in r2.stderr and json.loads(r2.stdout)['weights']   # stdout stays JSON
     for m in ('less', 'boltzmann'):
         live = ParticlePosterior.load(Path(res['state_dir']) / f'posterior_{m}').summary()
         off = ParticlePosterior.load(tmp_path / 'offline' / 'state' / f'posterior_{m}').summary()

@@ -6,7 +6,8 @@ import numpy as np
 import pytest
 from scipy.optimize import check_grad
 
-from pref_learner.features import FeatureConfigError, FeatureSet, default_features_path
+from pref_learner.features import (FeatureConfigError, FeatureSet, allow_feature_modules,
+                                   allowed_feature_modules, default_features_path)
 from pref_learner.robot import RobotModel
 
 GANTRY = """<?xml version="1.0"?>
@@ -99,10 +100,13 @@ def test_minimum_jerk_profile(gantry):
     # Flash & Hogan (1985), minimum-jerk model (from memory): x = D (10 s^3 - 15 s^4 + 6 s^5),
     # peak speed = 1.875 x mean speed, zero velocity and acceleration at both ends,
     # and integral of squared jerk over normalised time = 720 D^2.
+    # Checked on the simulated teacher's profile (pref_learner.sim.min_jerk).
+    from pref_learner.sim import min_jerk
     T = 2001
     s = np.linspace(0, 1, T)
     D = np.array([0.4, -0.3, 0.2])
-    prof = 10 * s ** 3 - 15 * s ** 4 + 6 * s ** 5
+    prof = min_jerk(s)
+    np.testing.assert_allclose(prof, 10 * s ** 3 - 15 * s ** 4 + 6 * s ** 5, atol=1e-15)
     q = prof[:, None] * D
     v = np.gradient(prof, s)
     assert v.max() / 1.0 == pytest.approx(1.875, rel=1e-5)
@@ -169,10 +173,14 @@ def test_feature_gradients_against_finite_differences():
     ({'name': 'a', 'type': 'height', 'params': {'normal': 'up'}}, 'normal'),
     ({'name': 'A b', 'type': 'height'}, 'name must match'),
     ({'name': 'a', 'type': 'tilt', 'params': {'axis': 'w'}}, 'axis'),
-    ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, 'cannot be imported'),
+    ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, "module 'nosuchmodule_xyz', which is not "
+     'allowed'),
+    ({'name': 'a', 'type': 'allowed_but_missing_xyz:f'}, 'cannot be imported'),
+    ({'name': 'a', 'type': 'json:no_such_function'}, 'cannot be imported'),
 ])
 def test_bad_feature_yaml(spec, word):
     robot = RobotModel.default()
+    allow_feature_modules(['allowed_but_missing_xyz', 'json'])
     with pytest.raises(FeatureConfigError, match=word):
         FeatureSet.from_yaml({'features': [spec]}, robot)
 
@@ -195,18 +203,37 @@ def user_height(q, positions, rotations, params):
 
 
 def test_user_feature_type(gantry):
-    fs = FeatureSet.from_yaml({'features': [
-        {'name': 'u', 'type': 'test_features:user_height', 'params': {'offset': 1.0}}]}, gantry)
+    doc = {'features': [{'name': 'u', 'type': 'test_features:user_height',
+                         'params': {'offset': 1.0}}]}
+    if 'test_features' not in allowed_feature_modules():
+        with pytest.raises(FeatureConfigError, match='not allowed'):
+            FeatureSet.from_yaml(doc, gantry)
+    allow_feature_modules(['test_features'])      # the user's explicit choice
+    fs = FeatureSet.from_yaml(doc, gantry)
     q = np.zeros((4, 3))
     q[:, 2] = [0, 1, 2, 3]
     assert fs.raw(q)[0] == pytest.approx(2.5)
 
 
-def test_value_and_gradient_values_equal_batched_features():
+def test_value_and_gradient_of_the_shipped_set_against_finite_differences():
+    # Values against the batched path; gradients of every shipped feature, including the
+    # min aggregate the check_grad test above replaces (differentiable wherever the
+    # extreme waypoint is unique), against central finite differences (common practice).
     robot = RobotModel.default()
     fs = FeatureSet.from_yaml(default_features_path(), robot)
     rng = np.random.default_rng(11)
-    q = robot.random_configurations(20, rng, margin=0.3)
+    a, b = robot.random_configurations(2, rng, margin=0.5)
+    q = np.linspace(a, b, 12) + 0.05 * rng.standard_normal((12, 7))
     vals, grads = fs.value_and_gradient(q)
     np.testing.assert_allclose(vals, fs.raw(q), rtol=1e-12, atol=1e-14)
-    np.testing.assert_array_equal(grads, fs.gradient(q))
+    assert 'min' in [s.aggregate for s in fs.specs]
+    h = 1e-6
+    fd = np.empty_like(grads)
+    for t in range(q.shape[0]):
+        for i in range(q.shape[1]):
+            e = np.zeros_like(q)
+            e[t, i] = h
+            fd[:, t, i] = (fs.raw(q + e) - fs.raw(q - e)) / (2 * h)
+    for j in range(fs.d):
+        scale = max(np.abs(fd[j]).max(), 1e-8)
+        np.testing.assert_allclose(grads[j], fd[j], atol=1e-6 * scale, err_msg=fs.names[j])

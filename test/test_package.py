@@ -36,17 +36,63 @@ def test_launch_file_names_existing_executables_and_files():
     assert "glob('launch/*.yaml')" in (ROOT / 'setup.py').read_text()
 
 
-def test_every_param_yaml_key_is_declared():
-    # ROS 2 silently ignores unknown parameter keys, so check them here
-    from pref_learner.ros.learner_node import _PARAMS
+def test_launch_feeds_the_learner_from_the_teacher_private_topic():
+    # statically, as above: with the teacher, the learner's joint_states is remapped to
+    # the teacher's private topic; without it, the learner reads the robot's joint_states
+    from pref_learner.safety import SIMULATED_JOINT_STATES
+    source = (ROOT / 'launch' / 'pref_learner_launch.py').read_text()
+    tree = ast.parse(source)
+    consts = {t.id: n.value.value for n in tree.body if isinstance(n, ast.Assign)
+              for t in n.targets if isinstance(n.value, ast.Constant)}
+    assert consts['SIMULATED_JOINT_STATES'] == SIMULATED_JOINT_STATES
+    nodes = [{kw.arg: kw.value for kw in n.keywords} for n in ast.walk(tree)
+             if isinstance(n, ast.Call) and getattr(n.func, 'id', '') == 'Node']
+    learners = [n for n in nodes if n['executable'].value == 'learner_node']
+    conds = sorted(n['condition'].func.id for n in learners)
+    assert conds == ['IfCondition', 'UnlessCondition']
+    for n in learners:
+        remap = ast.unparse(n['remappings']) if 'remappings' in n else ''
+        if n['condition'].func.id == 'IfCondition':
+            assert remap == "[('joint_states', SIMULATED_JOINT_STATES)]"
+        else:
+            assert remap == ''
+    teacher = next(n for n in nodes if n['executable'].value == 'teacher_node')
+    assert "'allow_network'" in ast.unparse(teacher['parameters'])
+
+
+# Declared by a node but not settings for the params YAML: rclpy's own parameters, the QoS
+# overrides of joint_states (rclpy, named after the resolved topic) and feature_names (an
+# output, read-only: the order of the published weights).
+_NOT_IN_YAML = {'use_sim_time', 'start_type_description_service', 'feature_names'}
+
+
+def test_params_yaml_lists_exactly_the_declared_parameters_with_their_defaults():
+    # ROS 2 silently ignores unknown parameter keys, and a missing key hides a setting:
+    # check both directions against a real learner node started with its defaults, and
+    # that every value has the declared type (a double written as an int stops the node).
+    import rclpy
+    from rclpy.context import Context
+
+    from pref_learner.ros.learner_node import _PARAMS, LearnerNode
     doc = yaml.safe_load((ROOT / 'launch' / 'pref_learner_params.yaml').read_text())
-    keys = set(doc['/**']['ros__parameters'])
-    assert keys <= set(_PARAMS), keys - set(_PARAMS)
-    for k, v in doc['/**']['ros__parameters'].items():
-        from pref_learner.learner import LearnerConfig
-        default = getattr(LearnerConfig(), k, None)
-        if isinstance(default, float):
-            assert isinstance(v, float), f'{k}: write {v} as a double (e.g. {float(v)})'
+    values = doc['/**']['ros__parameters']
+    ctx = Context()
+    rclpy.init(context=ctx)
+    try:
+        node = LearnerNode(context=ctx)
+        declared = {k: p.value for k, p in node._parameters.items()
+                    if k not in _NOT_IN_YAML and not k.startswith('qos_overrides.')}
+        node.destroy_node()
+    finally:
+        rclpy.shutdown(context=ctx)
+    assert set(_PARAMS) <= set(declared)
+    assert set(values) - set(declared) == set(), 'in the YAML, not declared'
+    assert set(declared) - set(values) == set(), 'declared, missing from the YAML'
+    for k, v in values.items():
+        d = declared[k]
+        assert type(v) is type(d) or (isinstance(d, list) and isinstance(v, list)), \
+            f'{k}: YAML {v!r} has not the declared type of {d!r}'
+        assert v == d, f'{k}: YAML says {v!r}, the node declares {d!r}'
 
 
 def test_package_xml_dependencies_and_version():
@@ -82,7 +128,8 @@ def test_flake8_clean():
 
 
 def test_copyright_headers():
-    # REP 2004 quality level 3: a licence and copyright notice in every source file
+    # REP 2004, every quality level from 4 up: a licence and a copyright notice in every
+    # source file
     for p in list((ROOT / 'pref_learner').rglob('*.py')) + list((ROOT / 'test').glob('*.py')) \
             + list((ROOT / 'launch').glob('*.py')) + [ROOT / 'setup.py']:
         head = p.read_text().splitlines()[:2]
@@ -96,3 +143,38 @@ def test_pep257_clean():
                         '--add-ignore=D100,D101,D102,D103,D104,D105,D106,D107,D404',
                         'pref_learner'], cwd=ROOT, capture_output=True, text=True)
     assert r.returncode == 0, r.stdout
+
+
+def test_make_help_lists_every_target():
+    text = (ROOT / 'Makefile').read_text()
+    phony = set(re.search(r'^\.PHONY:(.*)$', text, re.M).group(1).split())
+    rules = set(re.findall(r'^([a-z]+):', text, re.M))
+    assert rules == phony
+    r = subprocess.run(['make', '-s', 'help'], cwd=ROOT, capture_output=True, text=True)
+    listed = {line.split()[1] for line in r.stdout.splitlines() if line.startswith('make ')}
+    assert listed == phony, (listed, phony)
+
+
+def _repository_text_files():
+    skip = {'.venv', '.git', 'out', 'build', 'install', 'log', '.pytest_cache', '.hypothesis'}
+    for p in ROOT.rglob('*'):
+        rel = p.relative_to(ROOT)
+        if p.is_file() and not (set(rel.parts) & skip) and '__pycache__' not in rel.parts \
+                and p.suffix in ('.py', '.md', '.yaml', '.txt', '.cfg', '.xml', '') \
+                and not p.name.startswith('.coverage.'):
+            yield rel, p.read_text(errors='replace')
+
+
+def test_repository_refers_only_to_files_it_contains():
+    # every Markdown document named anywhere, and every repository path quoted in the
+    # documents, exists in the repository
+    names = {p.name for p in ROOT.rglob('*') if '.venv' not in p.parts}
+    for rel, text in _repository_text_files():
+        for md in re.findall(r'\b([\w-]+\.md)\b', text):
+            assert md in names, f'{rel} refers to {md}, which is not in the repository'
+    for doc in ('README.md', 'DEVELOPERS.md', 'QUALITY_DECLARATION.md'):
+        text = (ROOT / doc).read_text()
+        for token in re.findall(r'`([\w.-]+/[\w./-]+)`', text):
+            if token.split('/')[0] in ('pref_learner', 'test', 'launch', 'resource', '.ci') \
+                    or token in ('requirements.txt', 'setup.py'):
+                assert (ROOT / token).exists(), f'{doc} quotes {token}, which does not exist'

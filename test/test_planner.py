@@ -59,7 +59,7 @@ def _tool(L, q):
     return L.robot.frame_poses(q, ['tool_tip']).positions[:, 0]
 
 
-def test_height_and_operator_clearance_are_honoured(setup):
+def test_height_and_fixed_operator_zone_are_honoured(setup):
     L, tasks = setup
     p = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
     _, s, g = tasks[0]
@@ -69,7 +69,7 @@ def test_height_and_operator_clearance_are_honoured(setup):
     up = p.plan(w, s, g)
     assert np.all(_tool(L, up.q)[1:-1, 2] > _tool(L, line)[1:-1, 2])
     w = np.zeros(L.features.d)
-    w[L.features.names.index('operator_clearance')] = 1.0
+    w[L.features.names.index('fixed_operator_zone_distance')] = 1.0
     far = p.plan(w, s, g)
     op = np.array([0.85, 0.25])
     dist = lambda q: np.linalg.norm(_tool(L, q)[:, :2] - op, axis=1)  # noqa: E731
@@ -91,7 +91,7 @@ def test_plans_beat_random_alternatives_for_their_weights(setup):
         assert plan.reward >= best, (k, plan.reward, best)
 
 
-def test_risk_aware_planning_and_parallel_alternatives(setup):
+def test_uncertainty_aware_planning_and_parallel_alternatives(setup):
     L, tasks = setup
     _, s, g = tasks[2]
     rng = np.random.default_rng(6)
@@ -103,7 +103,8 @@ def test_risk_aware_planning_and_parallel_alternatives(setup):
     direct = TrajectoryPlanner(L.features, PlannerConfig(restarts=0)).plan(
         (pw / pw.sum()) @ parts, s, g, rng)
     np.testing.assert_allclose(mean_plan.q, direct.q, atol=1e-6)   # expectation is linear
-    cvar = TrajectoryPlanner(L.features, PlannerConfig(restarts=0, risk='cvar', alpha=0.2))
+    cvar = TrajectoryPlanner(L.features, PlannerConfig(restarts=0, uncertainty_objective='cvar',
+                                                       alpha=0.2))
     worst = lambda q: np.sort(parts @ L.features(q))[:10].mean()  # noqa: E731
     assert worst(cvar.plan(parts, s, g, rng, particle_weights=np.ones(50)).q) >= \
         worst(mean_plan.q) - 1e-9
@@ -141,25 +142,31 @@ def test_time_parametrization_respects_limits():
     assert np.all(np.abs(np.diff(q, n=2, axis=0)) / dt[0] ** 2 <= a + 1e-12)
 
 
-def test_planner_node_over_dds():
+def test_planner_node_over_dds(capfd):
     import rclpy
     from std_msgs.msg import Float64MultiArray
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+    from visualization_msgs.msg import MarkerArray
 
     from pref_learner.ros.planner_node import LATCHED, PlannerNode
+    from pref_learner.safety import CAUTION, PLANNER_WARNING
     from ros_util import ros_context, spin_until, spinning
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
     _, s, g = L.tasks()[0]
     with ros_context() as (ctx, ex):
         node = PlannerNode(context=ctx)
+        logged = capfd.readouterr().err
+        assert CAUTION in logged and PLANNER_WARNING in logged   # at start-up, as warnings
         client = rclpy.create_node('plan_client', context=ctx)
         ex.add_node(client)
         with spinning(node, ctx):
             wpub = client.create_publisher(Float64MultiArray, '/pref_learner/weights', LATCHED)
             req = client.create_publisher(JointTrajectory, '/pref_planner/request', 10)
-            got = []
+            got, markers = [], []
             client.create_subscription(JointTrajectory, '/pref_planner/trajectory',
                                        got.append, 10)
+            client.create_subscription(MarkerArray, '/pref_planner/markers', markers.append,
+                                       LATCHED)
             spin_until(ex, lambda: req.get_subscription_count() > 0, 10)
 
             def request(points, names=list(L.robot.joint_names)):
@@ -179,7 +186,9 @@ def test_planner_node_over_dds():
             assert spin_until(ex, lambda: node.counters['bad_request'] == 3, 10)
             assert 'joint_2 = 3' in node.last_warning
             request([s, g])
-            assert spin_until(ex, lambda: len(got) == 1, 30)
+            assert spin_until(ex, lambda: len(got) == 1 and markers, 30)
+        # markers are expressed in the URDF's root link, not a fixed name
+        assert markers[-1].markers[0].header.frame_id == node.robot.root_link
         traj = got[0]
         q = np.array([p.positions for p in traj.points])
         t = np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9
@@ -188,6 +197,11 @@ def test_planner_node_over_dds():
         np.testing.assert_allclose(q[-1], g)
         v = np.abs(np.diff(q, axis=0)) / np.diff(t)[:, None]
         assert np.all(v <= 0.5 * L.robot.velocity_limit + 1e-3)
+        # the tool stays under max_tool_speed (default 0.25 m/s, the common reduced speed of
+        # manual mode; from memory), measured on the published points by forward kinematics
+        tool = L.robot.frame_poses(q, ['tool_tip']).positions[:, 0]
+        speed = np.linalg.norm(np.diff(tool, axis=0), axis=1) / np.diff(t)
+        assert speed.max() <= 0.25 * (1 + 1e-6) and speed.max() >= 0.2
         node.destroy_node()
         client.destroy_node()
 

@@ -2,6 +2,7 @@
 # SPDX-License-Identifier: Apache-2.0
 """Report and model comparison from a state directory."""
 
+import html
 import re
 import subprocess
 import sys
@@ -12,6 +13,7 @@ import pytest
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.posterior import ParticlePosterior
 from pref_learner.report import write_report
+from pref_learner.safety import CAUTION
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
 
 TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
@@ -22,7 +24,9 @@ def state(tmp_path_factory):
     d = tmp_path_factory.mktemp('state')
     L = Learner(LearnerConfig(model='both', state_dir=str(d), n_particles=800,
                               n_alternatives=150))
-    SimulatedTeacher(L, TRUE, TeacherConfig(seed=8)).feed_session(L, 4)
+    # a Boltzmann chooser (beta 20): the compare test checks held-out predictions on it
+    SimulatedTeacher(L, TRUE, TeacherConfig(model='boltzmann', beta=20.0, seed=8)).feed_session(
+        L, 4)
     L.set_teaching(True)
     L.feed(1, L.robot.joint_names, np.zeros(7))
     L.set_teaching(False)                                   # a rejected one
@@ -32,6 +36,9 @@ def state(tmp_path_factory):
 def test_report_renders_and_tables_match_stored_summaries(state, tmp_path):
     path = write_report(state, tmp_path / 'rep')
     text = path.read_text()
+    # the caution is a banner above everything else
+    assert text.index('id="caution"') < text.index('<h1>')
+    assert html.escape(CAUTION) in text
     pngs = sorted(p.name for p in (tmp_path / 'rep').glob('*.png'))
     assert len(pngs) == 4
     for p in pngs:
@@ -57,11 +64,19 @@ def test_compare_prints_a_verdict(state, tmp_path):
                         '--sets', '2', '--particles', '500', '--json',
                         str(tmp_path / 'c.json')], capture_output=True, text=True, timeout=600)
     assert r.returncode == 0, r.stderr
-    assert 'verdict:' in r.stdout
+    assert 'verdict:' in r.stdout and r.stdout.rstrip().endswith(CAUTION)
     import json
     res = json.loads((tmp_path / 'c.json').read_text())
     assert set(res['loo_total']) == {'boltzmann', 'less'}
-    assert all(len(v) == 4 and all(x < 0 for x in v) for v in res['loo'].values())
+    for m, v in res['loo'].items():
+        assert len(v) == 4 and res['loo_total'][m] == pytest.approx(sum(v), rel=1e-12)
+    assert res['better'] == max(res['loo_total'], key=res['loo_total'].get)
+    assert f'verdict: {res["better"]}' in r.stdout
+    # The Boltzmann model, which is how this simulated person chooses, predicts held-out
+    # choices better than a uniform guess among the K options of a set, log(1/K) each
+    # (common-practice baseline; measured: -3.9 against -5.0 per demonstration).
+    k = 1 + int(re.search(r'alternatives per set: (\d+)', res['text']).group(1))
+    assert np.mean(res['loo']['boltzmann']) > -np.log(k) + 0.5, (res['loo'], -np.log(k))
 
 
 def test_report_and_compare_bad_input(tmp_path):

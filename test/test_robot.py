@@ -129,3 +129,17 @@ def test_rep103_right_handed_frames_z_up_metres(arm):
                                atol=1e-12)
     p = arm.frame_poses(np.zeros(7), ['tool_tip']).positions[0]
     np.testing.assert_allclose(p, [0.0, 0.0, 1.33], atol=1e-12)
+
+
+def test_root_link_against_yourdfpy(arm, tmp_path):
+    # Reference: yourdfpy's URDF.base_link (the link that is no joint's child).
+    import yourdfpy
+    u = yourdfpy.URDF.load(str(default_urdf_path()), load_meshes=False)
+    assert arm.root_link == u.base_link
+    # a root not called base_link, links listed child-first
+    text = TWO_LINK.format(l1=0.3, l2=0.2).replace('base_link', 'bench_plate')
+    text = text.replace('<link name="bench_plate"/>', '').replace(
+        '<link name="tip"/>', '<link name="tip"/>\n  <link name="bench_plate"/>')
+    (tmp_path / 'r.urdf').write_text(text)
+    u = yourdfpy.URDF.load(str(tmp_path / 'r.urdf'), load_meshes=False)
+    assert RobotModel(text, tool_frame='tip').root_link == u.base_link == 'bench_plate'

@@ -34,9 +34,13 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     from .common import publish_paced
     from ..sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
+    # simulated joint states: loopback only, on this benchmark's own topic
+    os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
+    os.environ.pop('ROS_STATIC_PEERS', None)
     env = dict(os.environ)
     proc = subprocess.Popen([sys.executable, '-m', 'pref_learner.ros.learner_node',
-                             '--ros-args', '-p', 'model:=less', '--log-level', 'error'],
+                             '--ros-args', '-p', 'model:=less', '--log-level', 'error',
+                             '-r', 'joint_states:=/pref_learner_bench/joint_states'],
                             env=env)
     latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.TRANSIENT_LOCAL)
@@ -57,7 +61,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                     state['status'] = {kv.key: kv.value for kv in st.values}
             node.create_subscription(Float64MultiArray, '/pref_learner/weights', on_w, latched)
             node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, latched)
-            pub = node.create_publisher(JointState, 'joint_states',
+            pub = node.create_publisher(JointState, '~/joint_states',
                                         QoSProfile(depth=100,
                                                    reliability=ReliabilityPolicy.RELIABLE))
             teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)

@@ -43,6 +43,19 @@ def declare_read_only(node, params) -> None:
                                                                   read_only=True))
 
 
+def declare_feature_modules(node) -> None:
+    """Declare ``feature_modules`` and trust the modules it names for user feature types.
+
+    The only way a node lets a feature YAML's ``module:function`` type load
+    (besides installed entry points): the operator lists the module here.
+    """
+    from ..features import allow_feature_modules
+    node.declare_parameter('feature_modules', [''], ParameterDescriptor(
+        description='modules user feature types may load from (module:function types)',
+        read_only=True))
+    allow_feature_modules([m for m in node.get_parameter('feature_modules').value if m])
+
+
 def joint_state(stamp_ns: int, names, positions) -> JointState:
     m = JointState()
     m.header.stamp.sec = int(stamp_ns // 10**9)

@@ -3,7 +3,7 @@
 """ROS 2 learner node: a thin adapter around :class:`pref_learner.learner.Learner`.
 
 Callbacks only copy messages into one ordered queue; a plain worker thread
-owns the pipeline, segments, learns, stores and publishes (see DESIGN.md §3).
+owns the pipeline, segments, learns, stores and publishes.
 """
 
 from __future__ import annotations
@@ -142,6 +142,8 @@ class LearnerNode(Node):
         self.get_logger().info(
             f'learning {list(self.learner.names)} with model {self.config.model}; '
             f'{self.learner.n_demonstrations} demonstrations loaded')
+        from ..safety import CAUTION
+        self.get_logger().warning(CAUTION)
 
     # ------------------------------------------------------------ parameters
     def _declare_parameters(self):
@@ -471,7 +473,7 @@ class LearnerNode(Node):
         arr = MarkerArray()
         for i, path in enumerate(r.tool_paths):
             mk = Marker()
-            mk.header.frame_id = 'base_link'
+            mk.header.frame_id = self.learner.robot.root_link
             mk.ns = 'demonstration' if i == 0 else 'alternatives'
             mk.id = i
             mk.type = Marker.LINE_STRIP

@@ -1,6 +1,10 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""ROS 2 planner node: turns the learner's current estimate into trajectories."""
+"""ROS 2 planner node: turns the learner's current estimate into proposed trajectories.
+
+``~/trajectory`` is an unchecked proposal timed to the URDF velocity limits: never
+wire it to a controller without the controller stack's own checks.
+"""
 
 from __future__ import annotations
 
@@ -16,8 +20,9 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
 from ..learner import Learner, LearnerConfig
-from ..planner import PlannerConfig, TrajectoryPlanner, time_parametrize
-from .common import QueueWorker, declare_read_only
+from ..planner import PlannerConfig, TrajectoryPlanner, cap_tool_speed, time_parametrize
+from ..safety import CAUTION, PLANNER_WARNING
+from .common import QueueWorker, declare_feature_modules, declare_read_only
 
 LATCHED = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                      durability=DurabilityPolicy.TRANSIENT_LOCAL)
@@ -31,25 +36,32 @@ class PlannerNode(Node):
         params = {
             'weights_topic': ('/pref_learner/weights', 'the learner\'s mean weights'),
             'particles_topic': ('/pref_learner/particles', 'the learner\'s particles'),
-            'risk': ('mean', 'mean: expected reward; cvar: mean of the worst alpha tail'),
-            'alpha': (0.1, 'tail fraction for risk cvar'),
+            'uncertainty_objective': ('mean', 'objective over the preference posterior: mean '
+                                      '(expected reward) or cvar (mean of the worst alpha '
+                                      'tail); not a hazard measure'),
+            'alpha': (0.1, 'tail fraction for uncertainty_objective cvar'),
             'smoothness': (0.01, 'weight of the acceleration term'),
             'restarts': (1, 'seeded restarts besides the straight line'),
             'n_waypoints': (64, 'waypoints per plan'),
             'max_acceleration': (2.0, 'joint acceleration limit for timing, rad/s^2'),
             'velocity_scale': (0.5, 'fraction of the URDF velocity limits used for timing'),
+            'max_tool_speed': (0.25, 'cap on the tool frame\'s Cartesian speed for timing, m/s '
+                               '(0: no cap); shapes proposals only, not a safety function'),
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
             'seed': (0, 'seed of the restarts'),
         }
         declare_read_only(self, params)
+        declare_feature_modules(self)
+        self.get_logger().warning(CAUTION)
+        self.get_logger().warning(PLANNER_WARNING)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
         L = Learner(LearnerConfig(features=g('features'), n_particles=1, n_alternatives=1,
                                   calibration_seed=g('calibration_seed')))
         self.robot = L.robot
         self.planner = TrajectoryPlanner(L.features, PlannerConfig(
             n_waypoints=g('n_waypoints'), smoothness=g('smoothness'), restarts=g('restarts'),
-            risk=g('risk'), alpha=g('alpha')))
+            uncertainty_objective=g('uncertainty_objective'), alpha=g('alpha')))
         self.rng = np.random.default_rng(g('seed'))
         self.weights = None
         self.particles = None
@@ -105,7 +117,7 @@ class PlannerNode(Node):
         if self.weights is None:
             raise ValueError('no weights received yet')
         d = self.planner.features.d
-        if self.planner.config.risk == 'cvar' and self.particles is not None:
+        if self.planner.config.uncertainty_objective == 'cvar' and self.particles is not None:
             parts = self.particles
             theta = parts[:, :d]
             lw = parts[:, -1]
@@ -116,6 +128,9 @@ class PlannerNode(Node):
         vmax = self.robot.velocity_limit * self.get_parameter('velocity_scale').value
         amax = np.full(self.robot.n, self.get_parameter('max_acceleration').value)
         t = time_parametrize(res.q, vmax, amax)
+        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
+        if self.get_parameter('max_tool_speed').value > 0:
+            t = cap_tool_speed(t, tool, self.get_parameter('max_tool_speed').value)
         out = JointTrajectory()
         out.header.stamp = self.get_clock().now().to_msg()
         out.joint_names = list(self.robot.joint_names)
@@ -125,9 +140,8 @@ class PlannerNode(Node):
             p.time_from_start = Duration(sec=int(ti), nanosec=int((ti % 1.0) * 1e9))
             out.points.append(p)
         self.traj_pub.publish(out)
-        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
         mk = Marker()
-        mk.header.frame_id = 'base_link'
+        mk.header.frame_id = self.robot.root_link
         mk.ns = 'plan'
         mk.type = Marker.LINE_STRIP
         mk.scale.x = 0.01

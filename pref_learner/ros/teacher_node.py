@@ -1,6 +1,12 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""ROS 2 simulated teacher: plays demonstrations of a person model as joint states."""
+"""ROS 2 simulated teacher: plays demonstrations of a person model as joint states.
+
+Simulated joint states must never reach a real robot's topics: the node publishes
+only on its private ``~/joint_states`` (``/simulated_teacher/joint_states``; remap the
+learner's ``joint_states`` to it) and refuses to start when DDS discovery could reach
+other machines, unless ``allow_network`` is true.
+"""
 
 from __future__ import annotations
 
@@ -16,12 +22,13 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
 
 from ..learner import Learner, LearnerConfig
+from ..safety import allow_network_requested, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
-from .common import declare_read_only
+from .common import declare_feature_modules, declare_read_only, joint_state
 
 
 class TeacherNode(Node):
-    """Publishes ``joint_states`` at ``rate`` Hz and toggles the learner's teaching signal."""
+    """Publishes ``~/joint_states`` at ``rate`` Hz and toggles the learner's teaching signal."""
 
     def __init__(self, **kwargs):
         super().__init__('simulated_teacher', **kwargs)
@@ -35,12 +42,19 @@ class TeacherNode(Node):
             'duration': (3.0, 'duration of one motion, s'),
             'pause': (1.0, 'pause between demonstrations, s'),
             'start_delay': (2.0, 'wait before the first demonstration, s'),
+            'release_delay': (0.3, 'wait after the last sample before the teaching signal '
+                              'goes off, s (lets the learner take in the last samples first)'),
             'teaching_topic': ('/pref_learner/teaching', 'the learner\'s teaching topic'),
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
+            'allow_network': (False, 'publish even when DDS discovery reaches other machines'),
         }
         declare_read_only(self, p)
+        declare_feature_modules(self)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
+        refusal = refuse_network_reason(g('allow_network'))
+        if refusal:
+            raise ValueError(refusal)
         self.learner = Learner(LearnerConfig(features=g('features'), n_particles=1,
                                              n_alternatives=1,
                                              calibration_seed=g('calibration_seed')))
@@ -49,11 +63,12 @@ class TeacherNode(Node):
             TeacherConfig(model=g('model'), beta=g('beta'), seed=g('seed'), rate=g('rate'),
                           duration=g('duration')))
         self.js_pub = self.create_publisher(
-            JointState, 'joint_states', QoSProfile(depth=100,
-                                                   reliability=ReliabilityPolicy.RELIABLE))
+            JointState, '~/joint_states',
+            QoSProfile(depth=100, reliability=ReliabilityPolicy.RELIABLE))
         self.teach_pub = self.create_publisher(Bool, g('teaching_topic'), 10)
         self.progress_pub = self.create_publisher(Bool, '~/demonstrating', 10)
         self.finished = threading.Event()
+        self.get_logger().info(f'simulated joint states on {self.js_pub.topic_name} only')
         self._thread = threading.Thread(target=self._play, daemon=True)
         self._thread.start()
 
@@ -63,22 +78,22 @@ class TeacherNode(Node):
         names = list(self.learner.robot.joint_names) + ['finger_left_joint', 'finger_right_joint']
         period = 1.0 / g('rate')
         for k in range(g('n_demonstrations')):
-            if not rclpy.ok():
+            if not self.context.ok():
                 return
-            _, q = self.teacher.stream(k)
+            # stamped at the simulated person's sample times, so a stall of this process
+            # under load delays samples but never opens a gap between their stamps
+            stamps, q = self.teacher.stream(k, self.get_clock().now().nanoseconds)
             self.teach_pub.publish(Bool(data=True))
             self.progress_pub.publish(Bool(data=True))
             t_next = time.perf_counter()
-            for row in q:
-                msg = JointState()
-                msg.header.stamp = self.get_clock().now().to_msg()
-                msg.name = names
-                msg.position = np.concatenate([row, [0.01, 0.01]]).tolist()
+            for stamp, row in zip(stamps, q):
+                msg = joint_state(int(stamp), names, np.concatenate([row, [0.01, 0.01]]))
                 self.js_pub.publish(msg)
                 t_next += period
                 delay = t_next - time.perf_counter()
                 if delay > 0:
                     time.sleep(delay)
+            time.sleep(g('release_delay'))
             self.teach_pub.publish(Bool(data=False))
             self.progress_pub.publish(Bool(data=False))
             self.get_logger().info(f'demonstration {k + 1} given')
@@ -87,11 +102,21 @@ class TeacherNode(Node):
 
 
 def main(args=None):
+    import sys
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    # refuse before rclpy.init: not even discovery traffic leaves the machine
+    refusal = refuse_network_reason(allow_network_requested(sys.argv if args is None else args))
+    if refusal:
+        print(f'simulated_teacher: {refusal}', flush=True)
+        raise SystemExit(2)
     from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
     try:
         with rclpy.init(args=args):
-            node = TeacherNode()
+            try:
+                node = TeacherNode()
+            except ValueError as exc:
+                print(f'simulated_teacher: {exc}', flush=True)
+                raise SystemExit(2)
             ex = SingleThreadedExecutor()
             ex.add_node(node)
             while rclpy.ok() and not node.finished.is_set():
