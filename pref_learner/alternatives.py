@@ -124,7 +124,7 @@ class SamplerConfig:
         return _split(self.n_alternatives if m is None else m, mix or self.mix)
 
     def option_models(self) -> Tuple[Tuple[str, float, Dict[str, float]], ...]:
-        """The option models (levels) of a set: ``(label, spread, mix)`` each.
+        """Return the option models (levels) of a set: ``(label, spread, mix)`` each.
 
         One spread: one level holding every kind of the mix. Several spreads:
         one level per spread of smooth draws (with any perturb or planner

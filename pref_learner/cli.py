@@ -281,14 +281,14 @@ def _learning_options(p, choices=None) -> None:
 
 
 def _beta_config(args) -> dict:
-    """LearnerConfig settings for ``--beta`` (fixed) or its absence (inferred)."""
+    """Return the learner settings for ``--beta`` (fixed) or its absence (inferred)."""
     if args.beta is None:
         return {}
     return {'beta': float(args.beta), 'beta_min': 0.0, 'beta_max': 0.0}
 
 
 def _beta_params(args) -> list:
-    """The learner node's ``--ros-args`` for the same choice."""
+    """Return the learner node's ``--ros-args`` for the same choice."""
     out = []
     for k, v in _beta_config(args).items():
         out += ['-p', f'{k}:={float(v)}']

@@ -352,7 +352,7 @@ def _plot_bars(data, keys, title, path):
 
 
 def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
-    """The calibration study's headline figures (benchmark keys)."""
+    """Return the calibration study's headline figures (benchmark keys)."""
     runs = [r for c in calib.values() for r in c['runs']]
     out = {'calib_cosine_mean': calib['matched']['cosine_mean'],
            'calib_cosine_p10': calib['matched']['cosine_p10'],
