@@ -54,6 +54,10 @@ from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 import numpy as np
 
 
+class DemonstrationError(ValueError):
+    """A demonstration's data cannot be learned from (not a fault of the program)."""
+
+
 @dataclass(frozen=True)
 class Demonstration:
     """A demonstration in the model's joint order.
