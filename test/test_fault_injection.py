@@ -109,11 +109,9 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
         valid.demo(paths[N_DURING + 1])           # the next demonstration after the flood
         valid.rest(0.5)
         n = N_DURING + 2
-        done = spin_until(ex, lambda: node.learner.n_demonstrations == n
-                          and len(node._worker) == 0, 60)
-        print(json.dumps({'counters': node.learner.recorder.counters, 'node': node.counters,
-                          'dropped': node._worker.dropped, 'rej': node.learner.rejections}))
-        assert done
+        assert spin_until(ex, lambda: node.learner.n_demonstrations == n
+                          and len(node._worker) == 0, 60), (
+            node.learner.rejections, dict(node.learner.recorder.counters))
         counters = dict(node.learner.recorder.counters)
         node_counters = dict(node.counters)
         rejections = list(node.learner.rejections)

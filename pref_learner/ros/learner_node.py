@@ -57,7 +57,8 @@ SENSOR_QOS = QoSProfile(depth=1000, reliability=ReliabilityPolicy.BEST_EFFORT,
 # requests wait in the service's reader while the worker answers earlier ones
 SERVICE_QOS = QoSProfile(depth=100, reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_LAST)
-TEACH_HOLD_S = 0.25     # a teaching signal waits at most this long for a later sample
+# a held teaching signal is applied once no joint state came in for this long (no backlog)
+TEACH_QUIET_S = 0.02
 _SERVICES = (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
              ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard'))
 _SAMPLE_COUNTERS = ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
@@ -155,6 +156,7 @@ class LearnerNode(Node):
         self._closing = threading.Event()
         self._held_teaching = collections.deque()      # (receive time, on)
         self._last_log = 0
+        self._last_js = 0.0                            # monotonic time of the last sample
         self._declare_parameters()
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
@@ -319,6 +321,7 @@ class LearnerNode(Node):
 
     def _on_joint_states(self, raw: bytes, info):
         self._enqueue(('js', self._received(info), raw))
+        self._last_js = time.monotonic()
 
     def _on_teaching(self, msg: Bool, info):
         self._enqueue(('teach', self._received(info), bool(msg.data)))
@@ -355,8 +358,8 @@ class LearnerNode(Node):
             self._update_status()
 
     def _on_idle(self):
-        if self._held_teaching:
-            self._release_teaching(self._received(None) - int(TEACH_HOLD_S * 1e9))
+        if self._held_teaching and time.monotonic() - self._last_js >= TEACH_QUIET_S:
+            self._release_teaching(float('inf'))
         if self._status_dirty:
             self._update_status()
 
@@ -375,7 +378,8 @@ class LearnerNode(Node):
 
         The executor may call the teaching callback before joint states that
         arrived earlier; holding the signal until a sample received after it is
-        handled puts it at its place in the stream (or after ``TEACH_HOLD_S``).
+        handled puts it at its place in the stream (or, once the stream is quiet
+        for ``TEACH_QUIET_S``, at its end).
         """
         held = self._held_teaching
         while held and held[0][0] <= upto:
