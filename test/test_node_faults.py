@@ -9,6 +9,7 @@ import numpy as np
 import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus
 from rclpy.parameter import Parameter
+from std_msgs.msg import Bool
 from std_srvs.srv import Trigger
 
 from pref_learner.learner import Learner, LearnerConfig
@@ -140,3 +141,43 @@ def test_state_directory_faults_report_error_keep_learning_and_recover(tmp_path,
     assert (tmp_path / 'demos' / 'demo_000002.npz').exists()
     L2 = Learner(LearnerConfig(state_dir=str(tmp_path), **SMALL))
     assert L2.n_demonstrations == 2 and any('loaded state' in m for m in L2.messages)
+
+
+def test_simulated_time_and_a_simulation_reset():
+    # use_sim_time: samples are judged against the node's simulated clock; a simulation
+    # reset (clock and stamps jump back) is a new timeline, adopted without losing samples
+    from rosgraph_msgs.msg import Clock
+
+    from pref_learner.ros.common import joint_state
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, use_sim_time=True, **SMALL)
+        client = rclpy.create_node('simulator', context=ctx)
+        ex.add_node(client)
+        clock = client.create_publisher(Clock, '/clock', 10)
+        names = list(node.learner.robot.joint_names)
+        teacher = _teacher()
+        with spinning(node, ctx):
+            pub, teach = teaching_publishers(client, ex,
+                                             ready=lambda: clock.get_subscription_count() > 0)
+
+            def play(k, t0_ns):
+                stamps, q = teacher.stream(k, t0_ns)     # 500 Hz of simulated time
+                teach.publish(Bool(data=True))
+                for i, (st, row) in enumerate(zip(stamps, q)):
+                    c = Clock()
+                    c.clock.sec, c.clock.nanosec = int(st // 10**9), int(st % 10**9)
+                    clock.publish(c)
+                    pub.publish(joint_state(int(st), names, row))
+                    if i % 4 == 0:
+                        time.sleep(0.004)                # twice faster than real time
+                teach.publish(Bool(data=False))
+            play(0, 100 * 10**9)
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 1, 30), \
+                (node.learner.rejections, dict(node.learner.recorder.counters))
+            play(1, 5 * 10**9)                           # the simulation was reset
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 2, 30), \
+                (node.learner.rejections, dict(node.learner.recorder.counters))
+            c = node.learner.recorder.counters
+            assert c['timeline_changes'] == 1 and node.learner.rejections == []
+        node.destroy_node()
+        client.destroy_node()

@@ -54,9 +54,9 @@ ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
 # holds the interpreter; with 100 the 1 kHz ingest benchmark lost ~1e-4 of samples.
 SENSOR_QOS = QoSProfile(depth=1000, reliability=ReliabilityPolicy.BEST_EFFORT,
                         durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_LAST)
-# requests wait in the service's reader while the worker answers earlier ones
+# requests wait in the service's reader while the worker answers earlier ones: keep all
 SERVICE_QOS = QoSProfile(depth=100, reliability=ReliabilityPolicy.RELIABLE,
-                         durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_LAST)
+                         durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_ALL)
 # a held teaching signal is applied once no joint state came in for this long (no backlog)
 TEACH_QUIET_S = 0.02
 _SERVICES = (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
@@ -154,7 +154,7 @@ class LearnerNode(Node):
         self._storage_error = ''
         self._flush_queued = False
         self._closing = threading.Event()
-        self._held_teaching = collections.deque()      # (receive time, on)
+        self._held_teaching = collections.deque()      # (arrival, receive time, on)
         self._last_log = 0
         self._last_js = 0.0                            # monotonic time of the last sample
         self._declare_parameters()
@@ -303,28 +303,28 @@ class LearnerNode(Node):
     def _now(self) -> int:
         return self.get_clock().now().nanoseconds
 
-    def _received(self, info) -> int:
-        """When a message reached this process: the middleware's reception time.
+    def _received(self, info) -> Tuple[int, int]:
+        """When a message reached this process: ``(arrival, receive time)`` (ns).
 
-        Immune to executor backlog; with simulated time active it is this node's
-        (simulated) clock at the callback instead.
+        ``arrival`` is the middleware's reception time (system clock; immune to
+        executor backlog) and orders teaching signals among samples; the
+        receive time that samples are judged against is the same, or this
+        node's clock at the callback when simulated time is active.
         """
+        t = int(info.get('received_timestamp', 0)) if info else 0
+        arrival = t if t > 0 else time.time_ns()
         clock = self.get_clock()
-        if not clock.ros_time_is_active:
-            t = info.get('received_timestamp', 0) if info else 0
-            if t > 0:
-                return int(t)
-        return clock.now().nanoseconds
+        return arrival, (clock.now().nanoseconds if clock.ros_time_is_active else arrival)
 
     def _enqueue(self, item):
         self._worker.put(item)
 
     def _on_joint_states(self, raw: bytes, info):
-        self._enqueue(('js', self._received(info), raw))
+        self._enqueue(('js', *self._received(info), raw))
         self._last_js = time.monotonic()
 
     def _on_teaching(self, msg: Bool, info):
-        self._enqueue(('teach', self._received(info), bool(msg.data)))
+        self._enqueue(('teach', *self._received(info), bool(msg.data)))
 
     def _on_trajectory(self, msg: JointTrajectory):
         self._enqueue(('traj', self._now(), msg))
@@ -369,12 +369,17 @@ class LearnerNode(Node):
             self._status_dirty = True
 
     def _log_time(self, recv: int) -> int:
-        """Strictly increasing receive times: the bag replays in the order handled here."""
+        """Strictly increasing receive times: the bag replays in the order handled here.
+
+        Under simulated time a reset moves the clock back; those times are kept.
+        """
+        if self.get_clock().ros_time_is_active:
+            return int(recv)
         self._last_log = max(int(recv), self._last_log + 1)
         return self._last_log
 
     def _release_teaching(self, upto) -> None:
-        """Apply held teaching signals received at or before ``upto``.
+        """Apply held teaching signals that arrived at or before ``upto``.
 
         The executor may call the teaching callback before joint states that
         arrived earlier; holding the signal until a sample received after it is
@@ -383,7 +388,7 @@ class LearnerNode(Node):
         """
         held = self._held_teaching
         while held and held[0][0] <= upto:
-            recv, on = held.popleft()
+            _, recv, on = held.popleft()
             t = self._log_time(recv)
             if self._bag is not None:
                 self._bag.write(self._teach_topic, self._bag.boolean(on), t)
@@ -396,7 +401,7 @@ class LearnerNode(Node):
             return
         self._release_teaching(item[1] if kind == 'js' else float('inf'))
         if kind == 'js':
-            _, recv, raw = item
+            _, _, recv, raw = item
             t = self._log_time(recv)
             msg = deserialize_message(raw, JointState)
             if self._bag is not None:
