@@ -217,7 +217,7 @@ class StateStore:
     def demo_paths(self) -> List[Path]:
         if not self.demo_dir.exists():
             return []
-        return sorted(p for p in self.demo_dir.glob('demo_*.npz'))
+        return sorted(p for p in self.demo_dir.glob('demo_*.npz') if p.stem[5:].isdigit())
 
     def demo_index(self, path: Path) -> int:
         """The seed index a stored demonstration's file name carries."""

@@ -5,8 +5,9 @@
 Threads and who owns what:
 
 - the executor that spins this node: subscription callbacks only copy each
-  message with its receive time (this node's clock, so simulated time works)
-  into the worker's bounded sample queue; the timer republishes the cached
+  message with its receive time (the middleware's reception time, immune to
+  executor backlog; this node's clock when simulated time is active) into
+  the worker's bounded sample queue; the timer republishes the cached
   estimates and the latest status snapshot;
 - a private service node with its own executor thread serves ``~/...``
   Trigger services: a request goes into the worker's unbounded control queue
@@ -25,8 +26,7 @@ import json
 import threading
 import time
 from dataclasses import dataclass, fields
-from types import MappingProxyType
-from typing import Mapping, Tuple
+from typing import Tuple
 
 import numpy as np
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
@@ -124,7 +124,6 @@ class StatusSnapshot:
     message: str
     models: Tuple[Tuple[str, Tuple[Tuple[str, str], ...]], ...]
     storage_error: str
-    counters: Mapping[str, int]
 
 
 def _array_msg(data, dims) -> Float64MultiArray:
@@ -593,8 +592,7 @@ class LearnerNode(Node):
                       ('weights', json.dumps(np.round(s.mean, 6).tolist()))]
             models.append((m, tuple(values + common)))
         msg = f'{L.n_demonstrations} demonstrations' + (f'; {text}' if text else '')
-        self._status = StatusSnapshot(level, msg, tuple(models), err,
-                                      MappingProxyType(dict(self.counters)))
+        self._status = StatusSnapshot(level, msg, tuple(models), err)
         self._status_t = time.monotonic()
         self._status_dirty = False
 
