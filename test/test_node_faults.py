@@ -181,3 +181,32 @@ def test_simulated_time_and_a_simulation_reset():
             assert c['timeline_changes'] == 1 and node.learner.rejections == []
         node.destroy_node()
         client.destroy_node()
+
+
+def test_queue_worker_never_drops_requests_and_keeps_arrival_order():
+    from pref_learner.ros.common import QueueWorker
+    seen, errors = [], []
+    gate = threading.Event()
+
+    def handle(item):
+        gate.wait(5)
+        if item == 'bad':
+            raise KeyError(item)
+        seen.append(item)
+    w = QueueWorker(handle, errors.append, 10, 'test_worker')
+    w.put('s0')
+    w.start()
+    time.sleep(0.1)                                      # the worker is busy with s0
+    for i in range(1, 101):
+        w.put(f's{i}')                                   # the bounded sample queue overflows
+        if i in (50, 100):
+            w.put_control(f'c{i}')                       # a request is never dropped
+    w.put_control('bad')
+    w.put_control('after')
+    gate.set()
+    deadline = time.time() + 5
+    while len(w) and time.time() < deadline:
+        time.sleep(0.01)
+    w.stop()
+    assert seen == ['s0', 'c50'] + [f's{i}' for i in range(91, 101)] + ['c100', 'after']
+    assert w.dropped == 90 and len(errors) == 1 and isinstance(errors[0], KeyError)

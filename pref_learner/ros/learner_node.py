@@ -389,8 +389,7 @@ class LearnerNode(Node):
         while held and held[0][0] <= upto:
             _, recv, on = held.popleft()
             t = self._log_time(recv)
-            if self._bag is not None:
-                self._bag.write(self._teach_topic, self._bag.boolean(on), t)
+            self._record(lambda bag: bag.write(self._teach_topic, bag.boolean(on), t))
             self._results(self.learner.set_teaching(on))
 
     def _handle(self, item):
@@ -403,8 +402,8 @@ class LearnerNode(Node):
             _, _, recv, raw = item
             t = self._log_time(recv)
             msg = deserialize_message(raw, JointState)
-            if self._bag is not None:
-                self._bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState', t, raw)
+            self._record(lambda bag: bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState',
+                                                   t, raw))
             stamp = msg.header.stamp.sec * 10**9 + msg.header.stamp.nanosec
             if len(msg.name) != len(msg.position):
                 self._warn('mismatched_lengths', f'joint_states has {len(msg.name)} names but '
@@ -430,6 +429,21 @@ class LearnerNode(Node):
             self._flush_queued = False
             self.learner.flush_storage()
         self._note_storage()
+
+    def _record(self, write) -> None:
+        """Write into the session bag; if that fails, stop recording and keep learning."""
+        if self._bag is None:
+            return
+        try:
+            write(self._bag)
+        except OSError as exc:
+            bag, self._bag = self._bag, None
+            self._warn('bag_error', f'recording stopped, the bag cannot be written: '
+                       f'{type(exc).__name__}: {exc}')
+            try:
+                bag.close()
+            except Exception:  # noqa: BLE001 -- the bag is given up either way
+                pass
 
     def _note_storage(self):
         """Log once when the state directory starts or stops failing."""
@@ -550,11 +564,9 @@ class LearnerNode(Node):
         stamp = self._now()
         for key, msg in msgs.items():
             self._pubs[key].publish(msg)
-            if self._bag is not None:
-                self._bag.write(self._pubs[key].topic_name,
-                                self._bag.float_array(msg.data, [(d.label, d.size, d.stride)
-                                                                 for d in msg.layout.dim]),
-                                stamp)
+            dims = [(d.label, d.size, d.stride) for d in msg.layout.dim]
+            self._record(lambda bag: bag.write(self._pubs[key].topic_name,
+                                               bag.float_array(msg.data, dims), stamp))
         self._update_status()
         self._publish_status()
 
