@@ -347,7 +347,7 @@ class Learner:
 
     @property
     def storage_error(self) -> str:
-        """The state directory's last write error ('' when every write is on disk)."""
+        """Return the state directory's last write error ('' when all is on disk)."""
         return self.store.error if self.store is not None else ''
 
     def _check_demonstration(self, demo: Demonstration) -> None:

@@ -73,7 +73,7 @@ def atomic_write_bytes(path, data: bytes) -> None:
 
 
 def describe_os_error(exc: OSError) -> str:
-    """One line naming the error: ``ENOSPC: No space left on device: <path>``."""
+    """Describe the error in one line: ``ENOSPC: No space left on device: <path>``."""
     name = errno.errorcode.get(exc.errno, type(exc).__name__) if exc.errno else \
         type(exc).__name__
     where = f': {exc.filename}' if exc.filename else ''
@@ -220,7 +220,7 @@ class StateStore:
         return sorted(p for p in self.demo_dir.glob('demo_*.npz') if p.stem[5:].isdigit())
 
     def demo_index(self, path: Path) -> int:
-        """The seed index a stored demonstration's file name carries."""
+        """Return the seed index a stored demonstration's file name carries."""
         try:
             return int(path.stem.split('_', 1)[1])
         except (IndexError, ValueError):
@@ -231,7 +231,7 @@ class StateStore:
         self._journal(('demo', index, dict(arrays)))
 
     def read_demo(self, path: Path) -> dict:
-        """One stored demonstration; a file that does not load is a ``ValueError``."""
+        """Read one stored demonstration; a file that does not load is a ``ValueError``."""
         try:
             return read_npz(path)
         except Exception as exc:  # noqa: BLE001 -- zipfile/numpy errors vary

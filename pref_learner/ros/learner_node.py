@@ -303,7 +303,7 @@ class LearnerNode(Node):
         return self.get_clock().now().nanoseconds
 
     def _received(self, info) -> Tuple[int, int]:
-        """When a message reached this process: ``(arrival, receive time)`` (ns).
+        """Return when a message reached this process: ``(arrival, receive time)`` (ns).
 
         ``arrival`` is the middleware's reception time (system clock; immune to
         executor backlog) and orders teaching signals among samples; the
@@ -329,7 +329,7 @@ class LearnerNode(Node):
         self._enqueue(('traj', self._now(), msg))
 
     def _on_service(self, kind, resp):
-        """Runs on the service thread: queue the request, wait for the worker's answer."""
+        """Queue the request and wait for the worker's answer (on the service thread)."""
         done = threading.Event()
         box = {}
         self._worker.put_control(('srv', self._now(), kind, done, box))
@@ -609,7 +609,7 @@ class LearnerNode(Node):
         self._status_dirty = False
 
     def _status_msg(self) -> DiagnosticArray:
-        """The latest snapshot as a DiagnosticArray (any thread)."""
+        """Return the latest snapshot as a DiagnosticArray (any thread)."""
         snap = self._status
         arr = DiagnosticArray()
         arr.header.stamp = self.get_clock().now().to_msg()
