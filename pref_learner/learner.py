@@ -495,7 +495,10 @@ class Learner:
                 publish(r)
         self.on_estimate = keep
         try:
-            return self._learn(demo, persist=True)
+            res = self._learn(demo, persist=True)
+            if not store.pending:              # everything, the posterior too, is on disk
+                store.posterior_dirty, store.error = False, ''
+            return res
         except OSError as exc:            # writing the posterior failed; the update stands
             if not early or self._demos[-1] is not demo:
                 raise
