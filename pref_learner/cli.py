@@ -174,7 +174,7 @@ def cmd_learn(args) -> int:
     n_ok = 0
     try:
         for e in events_iter:
-            res = (L.feed(e.stamp_ns, e.names, e.positions) if e.kind == 'joint_states'
+            res = (L.feed(e.stamp_ns, e.names, e.positions, e.log_ns) if e.kind == 'joint_states'
                    else L.set_teaching(e.value))
             for r in res:
                 if isinstance(r, StepResult):

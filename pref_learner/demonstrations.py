@@ -3,9 +3,9 @@
 """From a joint-state stream to clean, resampled demonstrations.
 
 A :class:`Recorder` takes samples one at a time as a ``joint_states`` topic
-delivers them (``feed(stamp_ns, names, positions)``: any joint order, extra
-joints, duplicates, out-of-order stamps, gaps, NaN) and segments them into
-demonstrations by one of three modes:
+delivers them (``feed(stamp_ns, names, positions, receive_ns)``: any joint
+order, extra joints, duplicates, out-of-order or wrong stamps, gaps, NaN) and
+segments them into demonstrations by one of three modes:
 
 ``manual``  :meth:`Recorder.start` / :meth:`Recorder.stop` calls (services);
 ``signal``  a boolean teaching signal, :meth:`Recorder.set_teaching`;
@@ -21,6 +21,23 @@ Each finished segment becomes a :class:`Demonstration` or a
 recorder keeps only a short pre-roll ring, so memory is bounded however long
 the stream runs.
 
+Sample ordering (:class:`StampConfig`). With a receive time (the node's clock
+when the message arrived, or a bag's log time) every sample is judged against
+the stream's consensus, not against one earlier stamp: its offset
+``stamp - receive`` may exceed the largest offset of the samples accepted in
+the last ``window`` seconds by at most ``tolerance`` (transport latency only
+ever lowers the offset), and its stamp must follow the last *accepted* one.
+Refused samples are counted (``stamp_ahead``, ``out_of_order``) and kept
+aside in a few candidate tracks of mutually consistent samples; a track of at
+least ``confirm`` samples becomes the new timeline (a bag played again, a
+simulation reset) once the current one has been silent for ``quiet`` seconds,
+and its samples are then used, so nothing of the new timeline is lost. The
+first timeline also needs ``confirm`` consistent samples, so no single sample
+sets a reference: at the start (or after the receive clock went back) the
+recorder watches for ``quiet`` seconds and then follows the confirmed track
+stamped closest to its receive clock. Without receive times (simulations
+feeding a learner directly) stamps are trusted and only their order is checked.
+
 :func:`prepare` cleans a segment and resamples it to T waypoints (by time,
 or by arc length of the tool path; linear interpolation between samples;
 the first and last samples are kept exactly). :func:`smooth_batch` is the
@@ -31,10 +48,14 @@ its alternatives, so sensor noise cannot tell them apart.
 from __future__ import annotations
 
 import collections
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
+
+
+class DemonstrationError(ValueError):
+    """A demonstration's data cannot be learned from (not a fault of the program)."""
 
 
 @dataclass(frozen=True)
@@ -79,6 +100,7 @@ class SegmentConfig:
     max_gap: float = 0.1                 # s between consecutive samples
     max_invalid_fraction: float = 0.2    # of samples in the segment
     refine: bool = True                  # refine motion-mode bounds
+    max_abs_position: float = 1e3        # rad or m; larger values count as invalid
 
     def __post_init__(self):
         if self.mode not in ('manual', 'signal', 'motion'):
@@ -94,16 +116,60 @@ class SegmentConfig:
             raise ValueError('max_invalid_fraction must be in [0, 1]')
 
 
+@dataclass(frozen=True)
+class StampConfig:
+    """How samples with receive times are judged against the stream (SI units)."""
+
+    tolerance: float = 0.05     # s an offset may exceed the stream's recent largest offset
+    window: float = 2.0         # s of accepted samples whose largest offset is the reference
+    confirm: int = 5            # consistent samples that establish a timeline
+    quiet: float = 1.0          # s without accepted samples before a new timeline is adopted
+    track_length: int = 4096    # samples kept per candidate track (a new timeline's start)
+    n_tracks: int = 8           # candidate tracks (least recently extended one goes first)
+    max_skew: float = 0.0       # s; refuse |stamp - receive| beyond this (0: off)
+
+    def __post_init__(self):
+        for k in ('tolerance', 'window', 'quiet'):
+            if not getattr(self, k) > 0:
+                raise ValueError(f'{k} must be > 0, got {getattr(self, k)!r}')
+        for k in ('confirm', 'track_length', 'n_tracks'):
+            if getattr(self, k) < 1:
+                raise ValueError(f'{k} must be >= 1, got {getattr(self, k)!r}')
+        if self.track_length < self.confirm:
+            raise ValueError('track_length must be >= confirm')
+        if not self.max_skew >= 0:
+            raise ValueError(f'max_skew must be >= 0, got {self.max_skew!r}')
+
+
+class _Track:
+    """Refused samples that agree with each other: a candidate timeline."""
+
+    __slots__ = ('offset', 'last_stamp', 'touched', 'samples')
+
+    def __init__(self, offset: int, maxlen: int):
+        self.offset = offset
+        self.last_stamp = -1
+        self.touched = 0
+        self.samples: Deque[Tuple[int, int, np.ndarray]] = collections.deque(maxlen=maxlen)
+
+
 class Recorder:
     """Segments a joint-state stream into demonstrations (see module docstring)."""
 
-    def __init__(self, joint_names: Sequence[str], config: SegmentConfig = SegmentConfig()):
+    def __init__(self, joint_names: Sequence[str], config: SegmentConfig = SegmentConfig(),
+                 stamps: StampConfig = StampConfig()):
         self.joint_names = tuple(joint_names)
         self.n = len(self.joint_names)
         self.config = config
+        self.stamp_config = stamps
         self.counters: Dict[str, int] = collections.Counter()
         self._index_cache: Dict[Tuple[str, ...], Optional[np.ndarray]] = {}
         self._last_stamp: Optional[int] = None
+        self._last_recv: Optional[int] = None
+        self._timeline = False                       # a confirmed timeline exists
+        self._ref: Deque[Tuple[int, int]] = collections.deque()   # (receive, offset), max first
+        self._tracks: List[_Track] = []
+        self._first_candidate: Optional[int] = None
         self._ring: Deque[Tuple[int, np.ndarray]] = collections.deque()
         self._seg: Optional[List[Tuple[int, np.ndarray]]] = None
         self._seg_invalid = 0
@@ -137,8 +203,17 @@ class Recorder:
         return idx
 
     # ------------------------------------------------------------ input
-    def feed(self, stamp_ns: int, names: Sequence[str], positions: Sequence[float]) -> list:
-        """Add one sample; returns finished demonstrations / rejections (usually [])."""
+    def set_max_skew(self, seconds: float) -> None:
+        """Refuse samples stamped further than ``seconds`` from their receive time (0: off)."""
+        self.stamp_config = replace(self.stamp_config, max_skew=float(seconds))
+
+    def feed(self, stamp_ns: int, names: Sequence[str], positions: Sequence[float],
+             receive_ns: Optional[int] = None) -> list:
+        """Add one sample; returns finished demonstrations / rejections (usually []).
+
+        ``receive_ns``: when the sample arrived, on the clock the stream is judged
+        against (the node's clock, or a bag's log time); None trusts the stamps.
+        """
         if len(names) != len(positions):
             self.counters['mismatched_lengths'] += 1
             return []
@@ -146,21 +221,113 @@ class Recorder:
         if idx is None:
             self.counters['missing_joint'] += 1
             return []
-        if self._last_stamp is not None and stamp_ns <= self._last_stamp:
-            self.counters['duplicate' if stamp_ns == self._last_stamp else 'out_of_order'] += 1
+        stamp = int(stamp_ns)
+        if stamp <= 0:
+            self.counters['zero_stamp'] += 1
+            return []
+        sc = self.stamp_config
+        if (receive_ns is not None and sc.max_skew > 0
+                and abs(stamp - receive_ns) > sc.max_skew * 1e9):
+            self.counters['stamp_out_of_range'] += 1
             return []
         q = np.asarray(positions, dtype=np.float64)[idx]
-        self._last_stamp = stamp_ns
-        if not np.all(np.isfinite(q)):
+        if not (np.all(np.isfinite(q)) and np.all(np.abs(q) <= self.config.max_abs_position)):
             self.counters['invalid'] += 1
-            if self._seg is not None:
+            if self._seg is not None and self._judge(stamp, receive_ns) is None:
                 self._seg_invalid += 1
             return []
+        if receive_ns is None:
+            if self._last_stamp is not None and stamp <= self._last_stamp:
+                self.counters['duplicate' if stamp == self._last_stamp else 'out_of_order'] += 1
+                return []
+            return self._accept(stamp, stamp, q)
+        recv = int(receive_ns)
+        if self._last_recv is not None and recv < self._last_recv - sc.tolerance * 1e9:
+            self._timeline = False        # the receive clock went back (simulation reset)
+        reason = self._judge(stamp, recv) if self._timeline else 'unconfirmed'
+        if reason is None:
+            return self._accept(stamp, recv, q)
+        if reason == 'duplicate':
+            self.counters[reason] += 1
+            return []
+        self.counters[reason] += 1
+        return self._candidate(stamp, recv, q)
+
+    def _judge(self, stamp: int, recv: Optional[int]) -> Optional[str]:
+        """Why a sample does not continue the current timeline, or None if it does."""
+        if self._last_stamp is not None and stamp <= self._last_stamp:
+            return 'duplicate' if stamp == self._last_stamp else 'out_of_order'
+        if recv is not None and self._ref and \
+                stamp - recv > self._ref[0][1] + self.stamp_config.tolerance * 1e9:
+            return 'stamp_ahead'
+        return None
+
+    def _candidate(self, stamp: int, recv: int, q: np.ndarray) -> list:
+        """Keep a refused sample in the track it agrees with; adopt a confirmed track."""
+        sc = self.stamp_config
+        off = stamp - recv
+        tol = sc.tolerance * 1e9
+        track = next((t for t in self._tracks
+                      if abs(off - t.offset) <= tol and stamp > t.last_stamp), None)
+        if track is None:
+            track = _Track(off, sc.track_length)
+            self._tracks.append(track)
+            if len(self._tracks) > sc.n_tracks:
+                self._tracks.remove(min(self._tracks, key=lambda t: t.touched))
+        track.samples.append((stamp, recv, q))
+        track.offset, track.last_stamp, track.touched = off, stamp, recv
+        if not self._timeline:
+            # no timeline yet (start, or the receive clock went back): watch for `quiet`
+            # seconds, then follow the confirmed track stamped closest to the receive clock
+            if self._first_candidate is None:
+                self._first_candidate = recv
+            if recv - self._first_candidate < sc.quiet * 1e9:
+                return []
+            ready = [t for t in self._tracks if len(t.samples) >= sc.confirm]
+            return self._adopt(min(ready, key=lambda t: abs(t.offset))) if ready else []
+        if len(track.samples) < sc.confirm or recv - self._last_recv < sc.quiet * 1e9:
+            return []
+        return self._adopt(track)
+
+    def _adopt(self, track: _Track) -> list:
+        out = []
+        if self._last_stamp is not None:             # a timeline existed: it changed
+            self.counters['timeline_changes'] += 1
+            if self._seg:
+                out.append(self._reject('timeline_change', 'the stream\'s clock changed during '
+                                        'the demonstration; the part before was dropped',
+                                        self._seg[0][0]))
+                self._seg = []
+                self._seg_invalid = 0
+        self._tracks = []
+        self._timeline = True
+        self._first_candidate = None
+        self._ref.clear()
+        self._last_stamp = self._last_recv = None
+        self._ring.clear()
+        self._win.clear()
+        self._ema = None
+        self._quiet_since = None
+        self.counters['recovered'] += len(track.samples)
+        for stamp, recv, q in track.samples:
+            out.extend(self._accept(stamp, recv, q))
+        return out
+
+    def _accept(self, stamp: int, recv: int, q: np.ndarray) -> list:
+        self._last_stamp, self._last_recv = stamp, recv
+        off = stamp - recv
+        ref = self._ref
+        while ref and ref[-1][1] <= off:
+            ref.pop()
+        ref.append((recv, off))
+        horizon = recv - self.stamp_config.window * 1e9
+        while ref[0][0] < horizon:
+            ref.popleft()
         self.counters['samples'] += 1
-        sample = (int(stamp_ns), q)
+        sample = (stamp, q)
         out = []
         if self._seg is not None:
-            if self._seg and (stamp_ns - self._seg[0][0]) * 1e-9 > self.config.max_duration:
+            if self._seg and (stamp - self._seg[0][0]) * 1e-9 > self.config.max_duration:
                 out.append(self._reject('too_long', f'longer than {self.config.max_duration} s',
                                         self._seg[0][0]))
                 self._seg = None
@@ -168,7 +335,7 @@ class Recorder:
                 self._seg.append(sample)
         else:
             self._ring.append(sample)
-            while self._ring and (stamp_ns - self._ring[0][0]) * 1e-9 > self.config.pre_roll:
+            while self._ring and (stamp - self._ring[0][0]) * 1e-9 > self.config.pre_roll:
                 self._ring.popleft()
         if self.config.mode == 'motion':
             out.extend(self._motion_step(sample))

@@ -27,8 +27,9 @@ import numpy as np
 
 from . import __version__
 from .alternatives import AlternativeSampler, SamplerConfig, set_diagnostics
-from .demonstrations import (Demonstration, PrepareConfig, Recorder, Rejection, SegmentConfig,
-                             condition, prepare, reparametrize_arc_length)
+from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
+                             Rejection, SegmentConfig, condition, prepare,
+                             reparametrize_arc_length)
 from .features import FeatureSet, default_features_path, load_scenario
 from .posterior import ParticlePosterior, PosteriorConfig, Summary
 from .robot import RobotModel, default_urdf_path
@@ -262,7 +263,8 @@ class Learner:
 
     @property
     def n_demonstrations(self) -> int:
-        return len(self._demos)
+        # quarantined slots are None: they keep the seed indices of the others
+        return sum(d is not None for d in self._demos)
 
     def _load_state(self):
         store = self.store
@@ -270,10 +272,14 @@ class Learner:
             manifest = store.read_manifest()
         except ValueError as exc:
             raise ValueError(f'state directory {store.root}: {exc}') from None
-        raw = store.read_demos()
-        demos = [Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
-                               int(d['stamp_ns'])) for d in raw]
-        if not demos and manifest is None:
+        self.quarantined: List[str] = []
+        stored = []                                   # (seed index, path, demo or error)
+        for path in store.demo_paths():
+            try:
+                stored.append((store.demo_index(path), path, self._stored_demonstration(path)))
+            except DemonstrationError as exc:
+                stored.append((store.demo_index(path), path, exc))
+        if not stored and manifest is None:
             return
         same = manifest is not None and manifest.get('learning_hash') == self.hash
         loaded = False
@@ -281,15 +287,18 @@ class Learner:
             # the session's reward scale is the stored one, whatever a recalibration
             # would give now (it changes only with a reset)
             self.features = self.features.with_scales(manifest['scales'])
-        if same:
+        intact = all(isinstance(d, Demonstration) for _, _, d in stored)
+        if same and intact:
             try:
                 posts = {m: ParticlePosterior.load(store.posterior_path(m))
                          for m in self.config.models}
-                if all(len(p.records) == len(demos) for p in posts.values()):
+                if all(len(p.records) == len(stored) for p in posts.values()):
                     self.posteriors = posts
-                    self._demos = demos
+                    for index, _, demo in stored:
+                        self._demos.extend([None] * (index - len(self._demos)))
+                        self._demos.append(demo)
                     loaded = True
-                    self.messages.append(f'loaded state: {len(demos)} demonstrations from '
+                    self.messages.append(f'loaded state: {len(stored)} demonstrations from '
                                          f'{store.root}')
             except (OSError, ValueError, KeyError) as exc:
                 self.messages.append(f'stored posterior unusable ({exc}); rebuilding')
@@ -297,23 +306,95 @@ class Learner:
             why = 'configuration changed' if manifest is not None and not same \
                 else 'posterior behind the stored demonstrations'
             self.messages.append(f'{why}: rebuilding the posterior by replaying '
-                                 f'{len(demos)} stored demonstrations')
+                                 f'{len(stored)} stored demonstrations')
             history = []
-            for d in demos:
+            for index, path, demo in stored:
+                self._demos.extend([None] * (index - len(self._demos)))
                 try:
-                    res = self._learn(d, persist=False)
-                except ValueError as exc:
-                    self.messages.append(f'a stored demonstration was skipped: {exc}')
-                    continue
-                history.append(self._history_entry(res))
-            if self.store is not None:
-                self._save_posteriors()
-                self.store.rewrite_history(history)
+                    if isinstance(demo, Exception):
+                        raise demo
+                    history.append(self._history_entry(self._learn(demo, persist=False)))
+                except DemonstrationError as exc:
+                    self._quarantine(index, path, exc)
+            self._persist_rebuilt(history)
         self.rejections = store.read_rejections()
 
+    def _stored_demonstration(self, path) -> Demonstration:
+        try:
+            d = self.store.read_demo(path)
+            demo = Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
+                                 int(d['stamp_ns']))
+        except (ValueError, KeyError) as exc:
+            raise DemonstrationError(f'{path.name}: {exc}') from None
+        self._check_demonstration(demo)
+        return demo
+
+    def _quarantine(self, index: int, path, exc: Exception) -> None:
+        """Set a stored demonstration that cannot be replayed aside; its slot stays empty."""
+        self._demos.append(None)
+        reason = f'{type(exc).__name__}: {exc}'
+        try:
+            where = f'moved to {self.store.quarantine_demo(path, reason)}'
+        except OSError as err:
+            where = f'could not be moved ({err})'
+        text = (f'stored demonstration {index} cannot be replayed ({reason}); {where}; the '
+                'others keep their seed indices')
+        self.quarantined.append(text)
+        self.messages.append(text)
+        log.warning(text)
+
+    def _persist_rebuilt(self, history: List[dict]) -> None:
+        """Write a rebuilt posterior and history (after any pending demonstration writes)."""
+        store = self.store
+        if store is None:
+            return
+        store.rewrite_history(history)
+        store.posterior_dirty = True
+        self.flush_storage()
+
+    def flush_storage(self) -> bool:
+        """Retry writes an OS error held back; True when the state directory is current."""
+        store = self.store
+        if store is None:
+            return True
+        if not store.flush():
+            return False
+        if store.posterior_dirty:
+            try:
+                self._save_posteriors()
+            except OSError as exc:
+                store.fail(exc)
+                return False
+            store.posterior_dirty = False
+            store.error = ''
+        return True
+
+    @property
+    def storage_error(self) -> str:
+        """Return the state directory's last write error ('' when all is on disk)."""
+        return self.store.error if self.store is not None else ''
+
+    def _check_demonstration(self, demo: Demonstration) -> None:
+        """Raise :class:`DemonstrationError` naming what is wrong with ``demo``'s data."""
+        if tuple(demo.joint_names) != self.robot.joint_names:
+            raise DemonstrationError(f'demonstration joints {tuple(demo.joint_names)} differ '
+                                     f'from the chain {self.robot.joint_names}')
+        t, q = np.asarray(demo.t), np.asarray(demo.q)
+        if t.ndim != 1 or q.shape != (len(t), self.robot.n):
+            raise DemonstrationError(f'demonstration has t {t.shape} and q {q.shape}; expected '
+                                     f'(S,) and (S, {self.robot.n})')
+        if len(t) < 2 or not np.all(np.isfinite(t)) or np.any(np.diff(t) <= 0):
+            raise DemonstrationError('demonstration times must be finite and increasing, '
+                                     'with at least 2 samples')
+        try:
+            self.robot.check_configurations(q, 'demonstration')
+        except ValueError as exc:
+            raise DemonstrationError(str(exc)) from None
+
     # ------------------------------------------------------------ stream input
-    def feed(self, stamp_ns: int, names, positions) -> List[object]:
-        return self._handle(self.recorder.feed(stamp_ns, names, positions))
+    def feed(self, stamp_ns: int, names, positions, receive_ns=None) -> List[object]:
+        """Add one joint-state sample (``receive_ns``: see :meth:`Recorder.feed`)."""
+        return self._handle(self.recorder.feed(stamp_ns, names, positions, receive_ns))
 
     def start(self) -> List[object]:
         return self._handle(self.recorder.start())
@@ -345,7 +426,7 @@ class Learner:
             if isinstance(ev, Demonstration):
                 try:
                     out.append(self.process(ev))
-                except ValueError as exc:
+                except DemonstrationError as exc:     # a data problem, not a program fault
                     out.append(self._record_rejection(Rejection('invalid', str(exc),
                                                                 ev.stamp_ns)))
             else:
@@ -411,24 +492,71 @@ class Learner:
         return allq, self.features(allq), np.concatenate([[-1], groups])
 
     def process(self, demo: Demonstration) -> StepResult:
-        """Learn from one accepted demonstration (stored first, then the posterior)."""
-        if tuple(demo.joint_names) != self.robot.joint_names:
-            raise ValueError(f'demonstration joints {demo.joint_names} differ from the chain '
-                             f'{self.robot.joint_names}')
-        self.robot.check_configurations(demo.q, 'demonstration')
+        """Learn from one accepted demonstration (stored first, then the posterior).
+
+        Raises :class:`DemonstrationError` for data that cannot be learned from; any
+        other exception is a fault of the program and leaves the learner as it was.
+        """
+        self._check_demonstration(demo)
         index = len(self._demos)
-        path = None
-        if self.store is not None:
-            path = self.store.write_demo(index, {'t': demo.t, 'q': demo.q,
-                                                 'joint_names': np.array(demo.joint_names),
-                                                 'stamp_ns': np.int64(demo.stamp_ns),
-                                                 'seed': np.int64(self.config.seed)})
+        store = self.store
+        if store is not None:
+            store.write_demo(index, {'t': demo.t, 'q': demo.q,
+                                     'joint_names': np.array(demo.joint_names),
+                                     'stamp_ns': np.int64(demo.stamp_ns),
+                                     'seed': np.int64(self.config.seed)})
+        posteriors = dict(self.posteriors)
         try:
-            return self._learn(demo, persist=True)
-        except ValueError:
-            if path is not None:        # the posterior refused it: do not keep it either
-                path.unlink(missing_ok=True)
+            return self._learn_stored(demo)
+        except BaseException:
+            del self._demos[index:]             # as it was: not learned, not kept
+            self.posteriors = posteriors
+            if store is not None:
+                try:
+                    store.forget_demo(index)
+                except OSError as exc:
+                    store.fail(exc)
             raise
+
+    def _learn_stored(self, demo: Demonstration) -> StepResult:
+        """``_learn`` with persistence that survives OS errors of the state directory."""
+        store = self.store
+        if store is None:
+            return self._learn(demo, persist=True)
+        if store.pending and not store.flush():
+            # the directory is failing: learn now, write everything once it recovers
+            self.store = None
+            try:
+                res = self._learn(demo, persist=True)
+            finally:
+                self.store = store
+            store.posterior_dirty = True
+            store.append_history(self._history_entry(res))
+            return res
+        early, publish = [], self.on_estimate
+
+        def keep(r):
+            early.append(r)
+            if publish is not None:
+                publish(r)
+        self.on_estimate = keep
+        try:
+            res = self._learn(demo, persist=True)
+            if not store.pending:              # everything, the posterior too, is on disk
+                store.posterior_dirty, store.error = False, ''
+            return res
+        except OSError as exc:            # writing the posterior failed; the update stands
+            if not early or self._demos[-1] is not demo:
+                raise
+            store.fail(exc)
+            store.posterior_dirty = True
+            r = early[0]
+            res = StepResult(r.index, self.summaries(), r.infos, r.latency_s, r.diagnostics,
+                             r.tool_paths)
+            store.append_history(self._history_entry(res))
+            return res
+        finally:
+            self.on_estimate = publish
 
     def _learn(self, demo: Demonstration, persist: bool) -> StepResult:
         t0 = time.perf_counter()
@@ -483,12 +611,17 @@ class Learner:
     # ------------------------------------------------------------ editing
     def discard_last(self) -> bool:
         """Remove the last demonstration and rebuild the posterior by replay."""
-        if not self._demos:
+        kept = [i for i, d in enumerate(self._demos) if d is not None]
+        if not kept:
             return False
-        demos = self._demos[:-1]
-        if self.store is not None:
-            self.store.remove_last_demo()
-        self._rebuild(demos)
+        last = kept[-1]
+        store = self.store
+        if store is not None:
+            if any(e[0] == 'demo' and e[1] == last for e in store.pending):
+                store.forget_demo(last)          # never reached the disk
+            else:
+                store.remove_last_demo()
+        self._rebuild(self._demos[:last])
         return True
 
     def _rebuild(self, demos):
@@ -496,10 +629,11 @@ class Learner:
         self._reset_posteriors()
         history = []
         for d in demos:
+            if d is None:                       # a quarantined slot keeps its index
+                self._demos.append(None)
+                continue
             history.append(self._history_entry(self._learn(d, persist=False)))
-        if self.store is not None:
-            self._save_posteriors()
-            self.store.rewrite_history(history)
+        self._persist_rebuilt(history)
 
     def reset(self) -> Optional[Path]:
         """Forget everything learned; the state directory is archived, not deleted."""

@@ -69,6 +69,18 @@ def publish_stream(ex, pub, teach_pub, stamps, q, names, rate_hz=1000.0):
     teach_pub.publish(Bool(data=False))
 
 
+def teaching_publishers(node, ex, depth=100, timeout=30.0, ready=lambda: True):
+    """Publishers of joint_states and the learner's teaching signal, once both are matched."""
+    from sensor_msgs.msg import JointState
+    from std_msgs.msg import Bool
+    pub = node.create_publisher(JointState, 'joint_states',
+                                QoSProfile(depth=depth, reliability=ReliabilityPolicy.RELIABLE))
+    teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
+    assert spin_until(ex, lambda: pub.get_subscription_count() > 0
+                      and teach.get_subscription_count() > 0 and ready(), timeout)
+    return pub, teach
+
+
 def follow_status(node, topic='/pref_learner/status'):
     """A dict kept up to date with the learner node's latest status values."""
     from diagnostic_msgs.msg import DiagnosticArray

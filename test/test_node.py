@@ -6,15 +6,15 @@ import numpy as np
 import pytest
 import rclpy
 from rclpy.parameter import Parameter
-from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
-from std_msgs.msg import Bool, Float64MultiArray
+from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
 
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.learner_node import LearnerNode
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
-from ros_util import LATCHED, publish_stream, ros_context, spin_until, spinning
+from ros_util import (LATCHED, publish_stream, ros_context, spin_until, spinning,
+                      teaching_publishers)
 
 TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
 TRUE = TRUE / np.linalg.norm(TRUE)
@@ -27,12 +27,7 @@ def _node(ctx, **params):
 
 
 def _teach(ex, client_node, learner_node, teacher, n, names):
-    pub = client_node.create_publisher(JointState, 'joint_states',
-                                       QoSProfile(depth=100,
-                                                  reliability=ReliabilityPolicy.RELIABLE))
-    teach = client_node.create_publisher(Bool, '/pref_learner/teaching', 10)
-    spin_until(ex, lambda: pub.get_subscription_count() > 0 and
-               teach.get_subscription_count() > 0, 10)
+    pub, teach = teaching_publishers(client_node, ex)
     t0 = 1_700_000_000 * 10**9
     for k in range(n):
         stamps, q = teacher.stream(k, t0)
@@ -126,7 +121,8 @@ def test_bad_input_keeps_node_running_and_posterior_untouched():
         m.position = [0.1] * 7
         m.header.stamp.sec = 200
         pub.publish(m)
-        spin_until(ex, lambda: node.learner.recorder.counters['samples'] >= 1, 5)
+        # a lone sample sets no timeline: it waits for confirmation, then stop
+        assert spin_until(ex, lambda: node.learner.recorder.counters['unconfirmed'] >= 1, 5)
         f = stop.call_async(Trigger.Request())
         spin_until(ex, f.done, 10)
         assert spin_until(ex, lambda: len(node.learner.rejections) == 1, 10)
@@ -145,7 +141,8 @@ def test_bad_input_keeps_node_running_and_posterior_untouched():
         m.position = [0.2] * 7
         m.header.stamp.sec = 300                      # 1970: far past
         pub.publish(m)
-        assert spin_until(ex, lambda: node.counters['stamp_out_of_range'] == 1, 10)
+        assert spin_until(
+            ex, lambda: node.learner.recorder.counters['stamp_out_of_range'] == 1, 10)
         bg.__exit__(None, None, None)
         node.destroy_node()
         client.destroy_node()

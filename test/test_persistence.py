@@ -10,8 +10,6 @@ import sys
 import numpy as np
 import pytest
 import rclpy
-from rclpy.qos import QoSProfile, ReliabilityPolicy
-from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
 
 from pref_learner import store as store_mod
@@ -19,7 +17,8 @@ from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.posterior import ParticlePosterior
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
 from pref_learner.ros.common import publish_paced
-from ros_util import LATCHED, follow_status, publish_stream, ros_context, spin_until
+from ros_util import (LATCHED, follow_status, publish_stream, ros_context, spin_until,
+                      teaching_publishers)
 
 TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
 SMALL = dict(n_particles=800, n_alternatives=150)
@@ -85,12 +84,7 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             node = rclpy.create_node('persistence_client', context=ctx)
             ex.add_node(node)
             status = follow_status(node)
-            pub = node.create_publisher(JointState, 'joint_states',
-                                        QoSProfile(depth=100,
-                                                   reliability=ReliabilityPolicy.RELIABLE))
-            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
-            assert spin_until(ex, lambda: pub.get_subscription_count() > 0
-                              and teach.get_subscription_count() > 0 and status, 60)
+            pub, teach = teaching_publishers(node, ex, timeout=60, ready=lambda: bool(status))
             teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
                                        TRUE, TeacherConfig(seed=5))
             names = [f'joint_{i}' for i in range(1, 8)]
@@ -127,12 +121,7 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             assert spin_until(ex, lambda: 'w' in got and status, 60)
             assert status['demonstrations'] == '3'
             np.testing.assert_allclose(got['w'], saved.summary().mean, atol=1e-12)
-            pub = node.create_publisher(JointState, 'joint_states',
-                                        QoSProfile(depth=100,
-                                                   reliability=ReliabilityPolicy.RELIABLE))
-            teach = node.create_publisher(Bool, '/pref_learner/teaching', 10)
-            assert spin_until(ex, lambda: pub.get_subscription_count() > 0
-                              and teach.get_subscription_count() > 0, 30)
+            pub, teach = teaching_publishers(node, ex)
             publish_stream(ex, pub, teach, *streams[3], names)
             assert spin_until(ex, lambda: status.get('demonstrations') == '4', 60)
             node.destroy_node()

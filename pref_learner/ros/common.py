@@ -3,6 +3,7 @@
 """Pieces shared by the nodes and their clients: spinning a node, message builders."""
 
 import collections
+import itertools
 import os
 import threading
 import time
@@ -83,15 +84,21 @@ def publish_paced(pub, stamps, q, names, rate_hz: float, every=None) -> int:
 class QueueWorker:
     """A plain thread that handles queued items in arrival order.
 
-    Callbacks only :meth:`put`; ``handle(item)`` runs on the thread and any
-    exception it raises goes to ``on_error(exc)``, so one bad input never stops
-    the node. The queue is bounded: when full the oldest item is dropped and
-    counted in :attr:`dropped`.
+    Callbacks only :meth:`put` (samples: a bounded queue; when full the oldest
+    item is dropped and counted in :attr:`dropped`) or :meth:`put_control`
+    (requests that must never be dropped: an unbounded queue). Items of both
+    queues are handled in the order they were put. ``handle(item)`` runs on the
+    thread and any exception it raises goes to ``on_error(exc)``, so one bad
+    input never stops the node; ``on_idle()`` runs whenever both queues are empty.
     """
 
-    def __init__(self, handle, on_error, maxlen: int, name: str, alive=lambda: True):
+    def __init__(self, handle, on_error, maxlen: int, name: str, alive=lambda: True,
+                 on_idle=None):
         self._handle, self._on_error, self._alive = handle, on_error, alive
-        self._queue = collections.deque(maxlen=maxlen)
+        self._on_idle = on_idle
+        self._queue = collections.deque(maxlen=maxlen)     # (sequence, item)
+        self._control = collections.deque()
+        self._seq = itertools.count()
         self._wake = threading.Event()
         self._stop = threading.Event()
         self.dropped = 0
@@ -103,23 +110,37 @@ class QueueWorker:
     def put(self, item) -> None:
         if len(self._queue) == self._queue.maxlen:
             self.dropped += 1
-        self._queue.append(item)
+        self._queue.append((next(self._seq), item))
+        self._wake.set()
+
+    def put_control(self, item) -> None:
+        self._control.append((next(self._seq), item))
         self._wake.set()
 
     def __len__(self) -> int:
-        return len(self._queue)
+        return len(self._queue) + len(self._control)
+
+    def _next(self):
+        q, c = self._queue, self._control
+        if c and (not q or c[0][0] < q[0][0]):
+            return c.popleft()[1]
+        return q.popleft()[1]
 
     def _run(self) -> None:
         while not self._stop.is_set() and self._alive():
             self._wake.clear()
-            if not self._queue:
+            if not self._queue and not self._control:
+                if self._on_idle is not None:
+                    self._call(self._on_idle)
                 self._wake.wait(0.05)
                 continue
-            item = self._queue.popleft()
-            try:
-                self._handle(item)
-            except Exception as exc:  # noqa: BLE001 -- reported, the worker goes on
-                self._on_error(exc)
+            self._call(self._handle, self._next())
+
+    def _call(self, fn, *args) -> None:
+        try:
+            fn(*args)
+        except Exception as exc:  # noqa: BLE001 -- reported, the worker goes on
+            self._on_error(exc)
 
     def stop(self, timeout: float = 10.0) -> None:
         self._stop.set()

@@ -2,8 +2,21 @@
 # SPDX-License-Identifier: Apache-2.0
 """ROS 2 learner node: a thin adapter around :class:`pref_learner.learner.Learner`.
 
-Callbacks only copy messages into one ordered queue; a plain worker thread
-owns the pipeline, segments, learns, stores and publishes.
+Threads and who owns what:
+
+- the executor that spins this node: subscription callbacks only copy each
+  message with its receive time (the middleware's reception time, immune to
+  executor backlog; this node's clock when simulated time is active) into
+  the worker's bounded sample queue; the timer republishes the cached
+  estimates and the latest status snapshot;
+- a private service node with its own executor thread serves ``~/...``
+  Trigger services: a request goes into the worker's unbounded control queue
+  (never dropped) and the service thread, not the sample intake, waits for
+  the answer; an exception in the handler comes back as ``success: false``
+  with ``TypeName: message``;
+- the worker thread owns the :class:`Learner`, handles both queues in arrival
+  order, publishes, and after changing anything builds an immutable
+  :class:`StatusSnapshot` that the timer only reads.
 """
 
 from __future__ import annotations
@@ -12,12 +25,14 @@ import collections
 import json
 import threading
 import time
-from dataclasses import fields
+from dataclasses import dataclass, fields
+from typing import Tuple
 
 import numpy as np
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ParameterDescriptor,
                                 SetParametersResult)
+from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy)
 from rclpy.qos_overriding_options import QoSOverridingOptions
@@ -40,6 +55,16 @@ ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
 # holds the interpreter; with 100 the 1 kHz ingest benchmark lost ~1e-4 of samples.
 SENSOR_QOS = QoSProfile(depth=1000, reliability=ReliabilityPolicy.BEST_EFFORT,
                         durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_LAST)
+# requests wait in the service's reader while the worker answers earlier ones: keep all
+SERVICE_QOS = QoSProfile(depth=100, reliability=ReliabilityPolicy.RELIABLE,
+                         durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_ALL)
+# a held teaching signal is applied once no joint state came in for this long (no backlog)
+TEACH_QUIET_S = 0.02
+_SERVICES = (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
+             ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard'))
+_SAMPLE_COUNTERS = ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
+                    'mismatched_lengths', 'zero_stamp', 'stamp_ahead', 'stamp_out_of_range',
+                    'unconfirmed', 'recovered', 'timeline_changes')
 
 # name -> (description, range or None, read_only)
 _PARAMS = {
@@ -96,6 +121,19 @@ _PARAMS = {
 _RUNTIME = {k for k, v in _PARAMS.items() if not v[2]}
 
 
+@dataclass(frozen=True)
+class StatusSnapshot:
+    """What ``~/status`` says, as plain immutable values (built by the worker thread).
+
+    ``models``: per model, the status name and its key/value pairs, in order.
+    """
+
+    level: bytes
+    message: str
+    models: Tuple[Tuple[str, Tuple[Tuple[str, str], ...]], ...]
+    storage_error: str
+
+
 def _array_msg(data, dims) -> Float64MultiArray:
     m = Float64MultiArray()
     m.layout.dim = [MultiArrayDimension(label=lab, size=int(s), stride=int(st))
@@ -110,19 +148,31 @@ class LearnerNode(Node):
     def __init__(self, **kwargs):
         super().__init__('pref_learner', **kwargs)
         self._worker = QueueWorker(self._handle_item, self._on_worker_error, 200_000,
-                                   'pref_learner_worker', alive=lambda: self.context.ok())
+                                   'pref_learner_worker', alive=lambda: self.context.ok(),
+                                   on_idle=self._on_idle)
         self._lock = threading.Lock()
-        self.counters = collections.Counter()
+        self.counters = collections.Counter()      # written by the worker thread only
         self.last_warning = ''
         self._pending_config = None
-        self._max_skew = 0.0
         self._summaries = {}
+        self._status = None
+        self._status_t = 0.0
+        self._status_dirty = False
+        self._storage_error = ''
+        self._flush_queued = False
+        self._closing = threading.Event()
+        self._held_teaching = collections.deque()      # (arrival, receive time, on)
+        self._last_log = 0
+        self._last_js = 0.0                            # monotonic time of the last sample
         self._declare_parameters()
-        self._max_skew = float(self.get_parameter('max_stamp_skew').value)
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
+        self.learner.recorder.set_max_skew(self.get_parameter('max_stamp_skew').value)
         for m in self.learner.messages:
-            self.get_logger().info(m)
+            if m in getattr(self.learner, 'quarantined', ()):
+                self._warn('quarantined', m)
+            else:
+                self.get_logger().info(m)
         self.declare_parameter('feature_names', list(self.learner.names), ParameterDescriptor(
             description='order of every published weight vector', read_only=True))
         self._bag = None
@@ -135,8 +185,10 @@ class LearnerNode(Node):
         self._teach_topic = self.resolve_topic_name('~/teaching')
         self._cache = {}
         self._latency = float('nan')
-        self._worker.start()
         self._publish_estimates()
+        self._note_storage()
+        self._worker.start()
+        self._start_services()
         period = self.get_parameter('publish_period').value
         self.create_timer(period, self._republish)
         self.get_logger().info(
@@ -210,10 +262,10 @@ class LearnerNode(Node):
         """Hand accepted run-time changes to the worker (checked in ``_on_set``)."""
         for p in params:
             if p.name == 'max_stamp_skew':
-                self._max_skew = float(p.value)
+                self._worker.put_control(('skew', float(p.value)))
         changes = {p.name: p.value for p in params if p.name in _RUNTIME}
         if changes and hasattr(self, 'config'):
-            self._enqueue(('config', self._runtime_config(changes)))
+            self._worker.put_control(('config', self._runtime_config(changes)))
 
     # ------------------------------------------------------------ interfaces
     def _make_interfaces(self):
@@ -222,10 +274,6 @@ class LearnerNode(Node):
             qos_overriding_options=QoSOverridingOptions.with_default_policies())
         self.create_subscription(Bool, '~/teaching', self._on_teaching, 10)
         self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10)
-        for name, kind in (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
-                           ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard')):
-            self.create_service(Trigger, f'~/{name}',
-                                lambda req, resp, k=kind: self._on_service(k, resp))
         self._pubs = {}
         prefixes = [''] if len(self.config.models) == 1 else [f'{m}/' for m in self.config.models]
         for m, pre in zip(self.config.models, prefixes):
@@ -236,109 +284,221 @@ class LearnerNode(Node):
         self._diag_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
         self._marker_pub = self.create_publisher(MarkerArray, '~/markers', ESTIMATE_QOS)
 
+    def _start_services(self):
+        """Serve the Trigger services from a private node spun on its own thread.
+
+        rclpy answers a request when its callback returns, so the wait for the
+        worker happens there and never in the executor that takes joint_states.
+        The private node ignores global remappings; the service names are this
+        node's resolved ``~/`` names.
+        """
+        names = {kind: self.resolve_service_name(f'~/{name}') for name, kind in _SERVICES}
+        self._srv_node = Node(f'{self.get_name()}_services', namespace=self.get_namespace(),
+                              context=self.context, use_global_arguments=False,
+                              start_parameter_services=False, enable_rosout=False)
+        for kind, name in names.items():
+            self._srv_node.create_service(Trigger, name,
+                                          lambda req, resp, k=kind: self._on_service(k, resp),
+                                          qos_profile=SERVICE_QOS)
+        self._srv_exec = SingleThreadedExecutor(context=self.context)
+        self._srv_exec.add_node(self._srv_node)
+
+        def spin():
+            try:
+                while not self._closing.is_set() and self.context.ok():
+                    self._srv_exec.spin_once(timeout_sec=0.1)
+            except ExternalShutdownException:
+                pass
+        self._srv_thread = threading.Thread(target=spin, name='pref_learner_services',
+                                            daemon=True)
+        self._srv_thread.start()
+
+    def _now(self) -> int:
+        return self.get_clock().now().nanoseconds
+
+    def _received(self, info) -> Tuple[int, int]:
+        """Return when a message reached this process: ``(arrival, receive time)`` (ns).
+
+        ``arrival`` is the middleware's reception time (system clock; immune to
+        executor backlog) and orders teaching signals among samples; the
+        receive time that samples are judged against is the same, or this
+        node's clock at the callback when simulated time is active.
+        """
+        t = int(info.get('received_timestamp', 0)) if info else 0
+        arrival = t if t > 0 else time.time_ns()
+        clock = self.get_clock()
+        return arrival, (clock.now().nanoseconds if clock.ros_time_is_active else arrival)
+
     def _enqueue(self, item):
         self._worker.put(item)
 
-    def _on_joint_states(self, raw: bytes):
-        self._enqueue(('js', time.time_ns(), raw))
+    def _on_joint_states(self, raw: bytes, info):
+        self._enqueue(('js', *self._received(info), raw))
+        self._last_js = time.monotonic()
 
-    def _on_teaching(self, msg: Bool):
-        self._enqueue(('teach', time.time_ns(), bool(msg.data)))
+    def _on_teaching(self, msg: Bool, info):
+        self._enqueue(('teach', *self._received(info), bool(msg.data)))
 
     def _on_trajectory(self, msg: JointTrajectory):
-        self._enqueue(('traj', time.time_ns(), msg))
+        self._enqueue(('traj', self._now(), msg))
 
     def _on_service(self, kind, resp):
-        rec = self.learner.recorder.recording
-        if kind == 'stop' and not rec:
-            resp.success = False
-            resp.message = 'not recording: call start_demonstration first'
-            self._warn('stop_without_start', resp.message)
-            return resp
-        if kind == 'start' and rec:
-            resp.success = False
-            resp.message = 'already recording a demonstration'
-            self._warn('start_while_recording', resp.message)
-            return resp
+        """Queue the request and wait for the worker's answer (on the service thread)."""
         done = threading.Event()
         box = {}
-        self._enqueue(('srv', time.time_ns(), kind, done, box))
-        if kind in ('start', 'stop'):
-            resp.success = True
-            resp.message = f'{kind} queued'
-            return resp
-        done.wait(timeout=30.0)
-        resp.success = bool(box.get('ok', False))
-        resp.message = str(box.get('message', 'timed out'))
+        self._worker.put_control(('srv', self._now(), kind, done, box))
+        while not done.wait(0.2):
+            if self._closing.is_set() or not self.context.ok():
+                resp.success = False
+                resp.message = 'the node is shutting down'
+                return resp
+        resp.success = bool(box['ok'])
+        resp.message = str(box['message'])
         return resp
 
     def _warn(self, key, text):
         self.counters[key] += 1
         self.last_warning = f'{key}: {text}'
-        self.get_logger().warning(text)
+        self.get_logger().warning(text, throttle_duration_sec=1.0)
 
     # ------------------------------------------------------------ worker
     def _handle_item(self, item):
         self._handle(item)
         if self._pending_config is not None and not self.learner.recorder.recording:
             self._apply_runtime(self._pending_config)
+        self._status_dirty = True
+        if item[0] != 'js' or time.monotonic() - self._status_t > 0.1:
+            self._update_status()
+
+    def _on_idle(self):
+        if self._held_teaching and time.monotonic() - self._last_js >= TEACH_QUIET_S:
+            self._release_teaching(float('inf'))
+        if self._status_dirty:
+            self._update_status()
 
     def _on_worker_error(self, exc):
         if self.context.ok():  # after shutdown there is nothing left to publish to
             self._warn('internal_error', f'{type(exc).__name__}: {exc}')
+            self._status_dirty = True
+
+    def _log_time(self, recv: int) -> int:
+        """Strictly increasing receive times: the bag replays in the order handled here.
+
+        Under simulated time a reset moves the clock back; those times are kept.
+        """
+        if self.get_clock().ros_time_is_active:
+            return int(recv)
+        self._last_log = max(int(recv), self._last_log + 1)
+        return self._last_log
+
+    def _release_teaching(self, upto) -> None:
+        """Apply held teaching signals that arrived at or before ``upto``.
+
+        The executor may call the teaching callback before joint states that
+        arrived earlier; holding the signal until a sample received after it is
+        handled puts it at its place in the stream (or, once the stream is quiet
+        for ``TEACH_QUIET_S``, at its end).
+        """
+        held = self._held_teaching
+        while held and held[0][0] <= upto:
+            _, recv, on = held.popleft()
+            t = self._log_time(recv)
+            self._record(lambda bag: bag.write(self._teach_topic, bag.boolean(on), t))
+            self._results(self.learner.set_teaching(on))
 
     def _handle(self, item):
         kind = item[0]
+        if kind == 'teach':
+            self._held_teaching.append(item[1:])
+            return
+        self._release_teaching(item[1] if kind == 'js' else float('inf'))
         if kind == 'js':
-            _, recv, raw = item
+            _, _, recv, raw = item
+            t = self._log_time(recv)
             msg = deserialize_message(raw, JointState)
-            if self._bag is not None:
-                self._bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState', recv, raw)
+            self._record(lambda bag: bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState',
+                                                   t, raw))
             stamp = msg.header.stamp.sec * 10**9 + msg.header.stamp.nanosec
-            skew = self._max_skew
-            if skew > 0 and abs(stamp - time.time_ns()) * 1e-9 > skew:
-                self._warn('stamp_out_of_range', f'joint_states stamp {stamp * 1e-9:.3f} s is '
-                           f'more than {skew} s from now')
-                return
             if len(msg.name) != len(msg.position):
                 self._warn('mismatched_lengths', f'joint_states has {len(msg.name)} names but '
                            f'{len(msg.position)} positions')
                 return
-            self._results(self.learner.feed(stamp, msg.name, msg.position))
-        elif kind == 'teach':
-            _, recv, on = item
-            if self._bag is not None:
-                self._bag.write(self._teach_topic,
-                                self._bag.boolean(on), recv)
-            self._results(self.learner.set_teaching(on))
+            self._results(self.learner.feed(stamp, msg.name, msg.position, t))
         elif kind == 'traj':
             self._handle_trajectory(item[2])
         elif kind == 'srv':
             _, recv, what, done, box = item
             try:
                 box['ok'], box['message'] = self._service(what)
+            except Exception as exc:  # noqa: BLE001 -- the caller gets the reason
+                box['ok'], box['message'] = False, f'{type(exc).__name__}: {exc}'
+                self._warn('internal_error', f'service {what}: {box["message"]}')
             finally:
                 done.set()
         elif kind == 'config':
             self._apply_runtime(item[1])
+        elif kind == 'skew':
+            self.learner.recorder.set_max_skew(item[1])
+        elif kind == 'flush':
+            self._flush_queued = False
+            self.learner.flush_storage()
+        self._note_storage()
+
+    def _record(self, write) -> None:
+        """Write into the session bag; if that fails, stop recording and keep learning."""
+        if self._bag is None:
+            return
+        try:
+            write(self._bag)
+        except OSError as exc:
+            bag, self._bag = self._bag, None
+            self._warn('bag_error', f'recording stopped, the bag cannot be written: '
+                       f'{type(exc).__name__}: {exc}')
+            try:
+                bag.close()
+            except Exception:  # noqa: BLE001 -- the bag is given up either way
+                pass
+
+    def _note_storage(self):
+        """Log once when the state directory starts or stops failing."""
+        err = self.learner.storage_error
+        if err == self._storage_error:
+            return
+        if err:
+            self.get_logger().error(f'state directory {self.learner.store.root}: {err}; '
+                                    'learning goes on in memory, writes are retried')
+        else:
+            self.get_logger().info('state directory writable again; pending writes done')
+        self._storage_error = err
 
     def _service(self, what):
         L = self.learner
         if what == 'start':
+            if L.recorder.recording:
+                self._warn('start_while_recording', 'already recording a demonstration')
+                return False, 'already recording a demonstration'
             L.start()
             return True, 'recording'
         if what == 'stop':
-            self._results(L.stop())
-            return True, 'stopped'
+            if not L.recorder.recording:
+                self._warn('stop_without_start', 'not recording: call start_demonstration first')
+                return False, 'not recording: call start_demonstration first'
+            out = L.stop()
+            self._results(out)
+            r = out[-1] if out else None
+            if isinstance(r, StepResult):
+                return True, f'stopped; demonstration {r.index + 1} learned'
+            return True, f'stopped; rejected: {r.reason}: {r.detail}' if r else 'stopped'
         if what == 'reset':
             where = L.reset()
             self._publish_estimates()
             return True, f'reset; previous state archived in {where}' if where else 'reset'
         if what == 'save':
-            try:
-                L.save()
-            except ValueError as exc:
-                return False, str(exc)
+            if L.store is None:
+                return False, 'no state_dir configured'
+            if not L.flush_storage():
+                return False, f'state directory not writable: {L.storage_error}'
+            L.save()
             return True, f'saved to {L.store.root}'
         if what == 'discard':
             if not L.discard_last():
@@ -415,56 +575,75 @@ class LearnerNode(Node):
         with self._lock:
             self._cache = msgs
             self._summaries = sums
-        stamp = time.time_ns()
+        stamp = self._now()
         for key, msg in msgs.items():
             self._pubs[key].publish(msg)
-            if self._bag is not None:
-                self._bag.write(self._pubs[key].topic_name,
-                                self._bag.float_array(msg.data, [(d.label, d.size, d.stride)
-                                                                 for d in msg.layout.dim]),
-                                stamp)
+            dims = [(d.label, d.size, d.stride) for d in msg.layout.dim]
+            self._record(lambda bag: bag.write(self._pubs[key].topic_name,
+                                               bag.float_array(msg.data, dims), stamp))
+        self._update_status()
         self._publish_status()
 
-    def _status_msg(self) -> DiagnosticArray:
+    def _update_status(self):
+        """Build the immutable status snapshot (worker thread only)."""
         L = self.learner
+        rc = L.recorder.counters
+        err = L.storage_error
+        quarantined = getattr(L, 'quarantined', ())
+        if err:
+            level, text = DiagnosticStatus.ERROR, f'state directory: {err}'
+        elif self.last_warning:
+            level, text = DiagnosticStatus.WARN, f'last warning {self.last_warning}'
+        else:
+            level, text = DiagnosticStatus.OK, ''
+        last_rej = (L.rejections[-1]['reason'] + ': ' + L.rejections[-1]['detail']
+                    if L.rejections else '')
+        common = [
+            ('accepted', str(L.n_demonstrations)), ('rejected', str(len(L.rejections))),
+            ('last_rejection', last_rej),
+            ('last_update_latency_ms', f'{self._latency * 1e3:.1f}'),
+            ('recording', str(L.recorder.recording).lower()),
+            ('samples', str(rc.get('samples', 0))),
+            ('storage_error', err),
+            ('pending_writes', str(len(L.store.pending) if L.store else 0)),
+            ('quarantined', str(len(quarantined))),
+            ('feature_names', json.dumps(list(L.names)))]
+        common += [(f'samples_{k}', str(rc.get(k, 0))) for k in _SAMPLE_COUNTERS]
+        common += [(f'node_{k}', str(v)) for k, v in sorted(self.counters.items())]
+        models = []
+        diagnostics = L.history_diagnostics()
+        for m, s in self._summaries.items():
+            values = [('model', m), ('ess', f'{s.ess:.1f}'),
+                      ('concentration', f'{s.concentration:.4f}'),
+                      ('demonstrations', str(s.n_demonstrations)),
+                      ('weights', json.dumps(np.round(s.mean, 6).tolist()))]
+            values += list(estimate_status_values(s, L.option_labels(), diagnostics).items())
+            models.append((m, tuple(values + common)))
+        msg = f'{L.n_demonstrations} demonstrations' + (f'; {text}' if text else '')
+        self._status = StatusSnapshot(level, msg, tuple(models), err)
+        self._status_t = time.monotonic()
+        self._status_dirty = False
+
+    def _status_msg(self) -> DiagnosticArray:
+        """Return the latest snapshot as a DiagnosticArray (any thread)."""
+        snap = self._status
         arr = DiagnosticArray()
         arr.header.stamp = self.get_clock().now().to_msg()
-        rc = L.recorder.counters
-        with self._lock:
-            sums = dict(self._summaries)      # computed once per estimate, not per status
-        for m, s in sums.items():
+        live = (('buffer_fill', str(len(self._worker))),
+                ('node_dropped_queue_full', str(self._worker.dropped)))
+        for m, values in snap.models:
             st = DiagnosticStatus()
-            st.level = DiagnosticStatus.OK if not self.last_warning else DiagnosticStatus.WARN
+            st.level = snap.level
             st.name = f'{self.get_name()}: {m}'
             st.hardware_id = self.get_name()
-            st.message = (f'{s.n_demonstrations} demonstrations'
-                          + (f'; last warning {self.last_warning}' if self.last_warning else ''))
-            values = {
-                'model': m, 'ess': f'{s.ess:.1f}', 'concentration': f'{s.concentration:.4f}',
-                'demonstrations': str(s.n_demonstrations),
-                'accepted': str(L.n_demonstrations),
-                'rejected': str(len(L.rejections)),
-                'last_rejection': (L.rejections[-1]['reason'] + ': '
-                                   + L.rejections[-1]['detail']) if L.rejections else '',
-                'last_update_latency_ms': f'{self._latency * 1e3:.1f}',
-                'buffer_fill': str(len(self._worker)),
-                'node_dropped_queue_full': str(self._worker.dropped),
-                'recording': str(L.recorder.recording).lower(),
-                'samples': str(rc.get('samples', 0)),
-                'weights': json.dumps(np.round(s.mean, 6).tolist()),
-                'feature_names': json.dumps(list(L.names)),
-            }
-            values.update(estimate_status_values(s, L.option_labels(), L.history_diagnostics()))
-            for k in ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
-                      'mismatched_lengths'):
-                values[f'samples_{k}'] = str(rc.get(k, 0))
-            for k, v in self.counters.items():
-                values[f'node_{k}'] = str(v)
-            st.values = [KeyValue(key=k, value=v) for k, v in values.items()]
+            st.message = snap.message
+            st.values = [KeyValue(key=k, value=v) for k, v in values + live]
             arr.status.append(st)
         return arr
 
     def _publish_status(self):
+        if self._status is None:
+            return
         msg = self._status_msg()
         self._status_pub.publish(msg)
         self._diag_pub.publish(msg)
@@ -494,8 +673,18 @@ class LearnerNode(Node):
         for key, msg in msgs.items():
             self._pubs[key].publish(msg)
         self._publish_status()
+        snap = self._status
+        if snap is not None and snap.storage_error and not self._flush_queued:
+            self._flush_queued = True             # retry the held-back writes
+            self._worker.put_control(('flush',))
 
     def destroy_node(self):
+        self._closing.set()
+        if getattr(self, '_srv_thread', None) is not None:
+            self._srv_thread.join(timeout=5.0)
+            self._srv_exec.shutdown()
+            self._srv_node.destroy_node()
+            self._srv_thread = None
         if getattr(self, '_worker', None) is not None:
             self._worker.stop()
         if getattr(self, '_bag', None) is not None:

@@ -1,0 +1,212 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
+"""The node under faults: slow or failing service handlers, a failing state directory."""
+
+import threading
+import time
+
+import numpy as np
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus
+from rclpy.parameter import Parameter
+from std_msgs.msg import Bool
+from std_srvs.srv import Trigger
+
+from pref_learner.learner import Learner, LearnerConfig
+from pref_learner.ros.common import publish_paced
+from pref_learner.ros.learner_node import LearnerNode
+from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from ros_util import publish_stream, ros_context, spin_until, spinning, teaching_publishers
+from test_storage_faults import Disk
+
+TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+SMALL = dict(n_particles=400, n_alternatives=80)
+
+
+def _node(ctx, **params):
+    return LearnerNode(context=ctx, parameter_overrides=[Parameter(k, value=v)
+                                                         for k, v in params.items()])
+
+
+def _teacher():
+    return SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)), TRUE,
+                            TeacherConfig(seed=11))
+
+
+def _call(ex, client, timeout=30):
+    fut = client.call_async(Trigger.Request())
+    assert spin_until(ex, fut.done, timeout)
+    return fut.result()
+
+
+def test_services_never_block_intake_are_never_dropped_and_report_errors(tmp_path):
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, state_dir=str(tmp_path), **SMALL)
+        client = rclpy.create_node('service_client', context=ctx)
+        ex.add_node(client)
+        with spinning(node, ctx):
+            pub, teach = teaching_publishers(client, ex)
+            names = list(node.learner.robot.joint_names)
+            teacher = _teacher()
+            stamps, q = teacher.stream(0, time.time_ns())
+            publish_stream(ex, pub, teach, stamps, q, names)
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 1, 30)
+            # discard_last replays the session; make it take as long as a long session's
+            # replay would (the worker waits on a gate before the real rebuild)
+            gate = threading.Event()
+            rebuild = node.learner._rebuild
+
+            def slow_rebuild(demos):
+                gate.wait(20)
+                rebuild(demos)
+            node.learner._rebuild = slow_rebuild
+            discard = client.create_client(Trigger, '/pref_learner/discard_last')
+            assert discard.wait_for_service(timeout_sec=10)
+            pending = discard.call_async(Trigger.Request())
+            assert spin_until(ex, lambda: not gate.is_set() and len(node._worker) == 0
+                              and node.learner._rebuild is slow_rebuild, 5)
+            time.sleep(0.3)                      # the worker is inside the rebuild now
+            # joint states keep coming in while the worker is busy (old design: the
+            # service callback held the executor and intake stopped)
+            rest = np.repeat(q[-1:], 500, axis=0)
+            st = time.time_ns() + np.arange(500) * 2_000_000
+            publish_paced(pub, st, rest, names, 500.0, every=lambda i: ex.spin_once(0))
+            assert spin_until(ex, lambda: len(node._worker) >= 450, 5), len(node._worker)
+            # many requests at once: every one is answered, in order, none dropped
+            saves = [client.create_client(Trigger, '/pref_learner/save') for _ in range(3)]
+            futs = [s.call_async(Trigger.Request()) for s in saves for _ in range(10)]
+            time.sleep(0.5)
+            assert not pending.done() and not any(f.done() for f in futs)
+            gate.set()
+            assert spin_until(ex, lambda: pending.done() and all(f.done() for f in futs), 30)
+            assert pending.result().success and '0 demonstrations remain' in \
+                pending.result().message
+            assert all(f.result().success for f in futs), [f.result() for f in futs]
+            assert node.learner.recorder.counters['samples'] >= 450 + len(stamps) - 10
+            # an exception in a handler comes back as a failure with its reason
+            node.learner._rebuild = rebuild
+
+            def broken():
+                raise ZeroDivisionError('float division by zero')
+            node.learner.discard_last = broken
+            r = _call(ex, discard)
+            assert not r.success and r.message == 'ZeroDivisionError: float division by zero'
+            assert node.counters['internal_error'] == 1
+            assert _call(ex, saves[0]).success         # and the node goes on
+        node.destroy_node()
+        client.destroy_node()
+
+
+def test_state_directory_faults_report_error_keep_learning_and_recover(tmp_path, monkeypatch):
+    # a state directory whose first demonstration cannot be read any more
+    L = Learner(LearnerConfig(state_dir=str(tmp_path), **SMALL))
+    _teacher().feed_session(L, 2)
+    (tmp_path / 'demos' / 'demo_000000.npz').write_bytes(b'PK\x03\x04 torn')
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, state_dir=str(tmp_path), publish_period=0.2, **SMALL)
+        client = rclpy.create_node('diagnostics_client', context=ctx)
+        ex.add_node(client)
+        diag = {}
+
+        def on_diag(msg):
+            for st in msg.status:
+                if st.hardware_id == 'pref_learner':
+                    diag.update(level=st.level, message=st.message,
+                                values={kv.key: kv.value for kv in st.values})
+        client.create_subscription(DiagnosticArray, '/diagnostics', on_diag, 10)
+        with spinning(node, ctx):
+            assert spin_until(ex, lambda: diag.get('values', {}).get('quarantined') == '1', 10)
+            assert diag['level'] == DiagnosticStatus.WARN
+            assert 'cannot be replayed' in diag['message'] and node.learner.n_demonstrations == 1
+            assert len(list((tmp_path / 'quarantine').glob('*.npz'))) == 1
+            before = sorted(p.name for p in (tmp_path / 'demos').iterdir())
+            disk = Disk(monkeypatch)
+            disk.full = True                          # the disk fills up
+            pub, teach = teaching_publishers(client, ex)
+            stamps, q = _teacher().stream(3, time.time_ns())
+            publish_stream(ex, pub, teach, stamps, q, list(node.learner.robot.joint_names))
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 2, 30)
+            assert spin_until(ex, lambda: diag['level'] == DiagnosticStatus.ERROR, 10), diag
+            assert 'ENOSPC' in diag['message'] and diag['values']['storage_error']
+            assert sorted(p.name for p in (tmp_path / 'demos').iterdir()) == before
+            assert not list(tmp_path.rglob('*.tmp'))
+            time.sleep(0.6)                           # retries keep failing, the node runs
+            assert diag['level'] == DiagnosticStatus.ERROR and node.context.ok()
+            disk.full = False                         # space returns
+            assert spin_until(ex, lambda: diag['level'] != DiagnosticStatus.ERROR, 10), diag
+            assert diag['values']['storage_error'] == ''
+            assert diag['values']['pending_writes'] == '0'
+        node.destroy_node()
+        client.destroy_node()
+    assert (tmp_path / 'demos' / 'demo_000002.npz').exists()
+    L2 = Learner(LearnerConfig(state_dir=str(tmp_path), **SMALL))
+    assert L2.n_demonstrations == 2 and any('loaded state' in m for m in L2.messages)
+
+
+def test_simulated_time_and_a_simulation_reset():
+    # use_sim_time: samples are judged against the node's simulated clock; a simulation
+    # reset (clock and stamps jump back) is a new timeline, adopted without losing samples
+    from rosgraph_msgs.msg import Clock
+
+    from pref_learner.ros.common import joint_state
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, use_sim_time=True, **SMALL)
+        client = rclpy.create_node('simulator', context=ctx)
+        ex.add_node(client)
+        clock = client.create_publisher(Clock, '/clock', 10)
+        names = list(node.learner.robot.joint_names)
+        teacher = _teacher()
+        with spinning(node, ctx):
+            pub, teach = teaching_publishers(client, ex,
+                                             ready=lambda: clock.get_subscription_count() > 0)
+
+            def play(k, t0_ns):
+                stamps, q = teacher.stream(k, t0_ns)     # 500 Hz of simulated time
+                teach.publish(Bool(data=True))
+                for i, (st, row) in enumerate(zip(stamps, q)):
+                    c = Clock()
+                    c.clock.sec, c.clock.nanosec = int(st // 10**9), int(st % 10**9)
+                    clock.publish(c)
+                    pub.publish(joint_state(int(st), names, row))
+                    if i % 4 == 0:
+                        time.sleep(0.004)                # twice faster than real time
+                teach.publish(Bool(data=False))
+            play(0, 100 * 10**9)
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 1, 30), \
+                (node.learner.rejections, dict(node.learner.recorder.counters))
+            play(1, 5 * 10**9)                           # the simulation was reset
+            assert spin_until(ex, lambda: node.learner.n_demonstrations == 2, 30), \
+                (node.learner.rejections, dict(node.learner.recorder.counters))
+            c = node.learner.recorder.counters
+            assert c['timeline_changes'] == 1 and node.learner.rejections == []
+        node.destroy_node()
+        client.destroy_node()
+
+
+def test_queue_worker_never_drops_requests_and_keeps_arrival_order():
+    from pref_learner.ros.common import QueueWorker
+    seen, errors = [], []
+    gate = threading.Event()
+
+    def handle(item):
+        gate.wait(5)
+        if item == 'bad':
+            raise KeyError(item)
+        seen.append(item)
+    w = QueueWorker(handle, errors.append, 10, 'test_worker')
+    w.put('s0')
+    w.start()
+    time.sleep(0.1)                                      # the worker is busy with s0
+    for i in range(1, 101):
+        w.put(f's{i}')                                   # the bounded sample queue overflows
+        if i in (50, 100):
+            w.put_control(f'c{i}')                       # a request is never dropped
+    w.put_control('bad')
+    w.put_control('after')
+    gate.set()
+    deadline = time.time() + 5
+    while len(w) and time.time() < deadline:
+        time.sleep(0.01)
+    w.stop()
+    assert seen == ['s0', 'c50'] + [f's{i}' for i in range(91, 101)] + ['c100', 'after']
+    assert w.dropped == 90 and len(errors) == 1 and isinstance(errors[0], KeyError)
