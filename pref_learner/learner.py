@@ -64,6 +64,7 @@ class LearnerConfig:
     spreads: Tuple[float, ...] = (0.08,)   # option-spread levels; several: inferred (opt-in)
     ascent_steps: int = 8
     ascent_step: float = 0.25
+    option_density: str = 'gaussian'    # density of a level's options: gaussian | kde
     n_waypoints: int = 64
     resample: str = 'arc_length'
     lowpass_hz: float = 10.0
@@ -135,7 +136,8 @@ class LearnerConfig:
             pass
         return PosteriorConfig(n_particles=self.n_particles, model=model, beta=self.beta,
                                beta_range=br, bandwidth=bw,
-                               n_levels=len(self.sampler_config().option_models()))
+                               n_levels=len(self.sampler_config().option_models()),
+                               option_density=self.option_density)
 
     def learning_hash(self) -> str:
         """Hash of every setting that changes what is learned (not state_dir)."""

@@ -76,22 +76,32 @@ def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarra
     return x / np.linalg.norm(x, axis=1, keepdims=True)
 
 
-def log_kde(points: np.ndarray, x: np.ndarray) -> float:
-    """Log density at ``x (d,)`` of a Gaussian kernel density estimate of ``points (M, d)``.
+def log_option_density(points: np.ndarray, x: np.ndarray, kind: str = 'gaussian') -> float:
+    """Log density at ``x (d,)`` of the distribution of ``points (M, d)``.
 
-    Full covariance times Scott's factor squared, as ``scipy.stats.gaussian_kde``
-    (Scott 1992); a tiny ridge keeps a degenerate set's covariance invertible.
+    ``gaussian``: a normal distribution with the points' mean and covariance
+    (as ``scipy.stats.multivariate_normal``); ``kde``: a Gaussian kernel
+    density estimate with the full covariance times Scott's factor squared
+    (as ``scipy.stats.gaussian_kde``, Scott 1992). A tiny ridge keeps a
+    degenerate set's covariance invertible.
     """
     pts = np.asarray(points, dtype=np.float64)
     m, d = pts.shape
     if m < 2:
         return 0.0
-    cov = np.atleast_2d(np.cov(pts, rowvar=False)) * choice.scott_factor(m, d) ** 2
+    cov = np.atleast_2d(np.cov(pts, rowvar=False))
+    if kind == 'kde':
+        cov = cov * choice.scott_factor(m, d) ** 2
+        centres = pts
+    elif kind == 'gaussian':
+        centres = pts.mean(axis=0, keepdims=True)
+    else:
+        raise ValueError(f'option density {kind!r} is unknown; allowed: gaussian, kde')
     cov = cov + np.eye(d) * (1e-12 + 1e-9 * np.trace(cov) / d)
     chol = np.linalg.cholesky(cov)
-    z = np.linalg.solve(chol, (x[None, :] - pts).T)             # (d, M)
+    z = np.linalg.solve(chol, (x[None, :] - centres).T)          # (d, centres)
     log_det = 2.0 * float(np.sum(np.log(np.diag(chol))))
-    return float(logsumexp(-0.5 * np.sum(z * z, axis=0)) - math.log(m)
+    return float(logsumexp(-0.5 * np.sum(z * z, axis=0)) - math.log(len(centres))
                  - 0.5 * (d * math.log(2 * math.pi) + log_det))
 
 
@@ -108,7 +118,7 @@ class ChoiceRecord:
         set (demonstration included); ``None`` for the Boltzmann model.
     log_sim_chosen : (L,) the demonstration's log-similarity sum within each level's set.
     log_density : (L,) log density of the demonstration's features under each level's
-        alternatives (Gaussian KDE). It makes levels comparable: with it the
+        alternatives (:func:`log_option_density`). It makes levels comparable: with it the
         likelihood is that of the demonstration's features, not only of the
         choice among a given set (0 with one level, where it is a constant).
     """
@@ -123,7 +133,7 @@ class ChoiceRecord:
 
     @classmethod
     def build(cls, features, chosen, bandwidth='scott', with_similarity=True, groups=None,
-              n_levels: Optional[int] = None):
+              n_levels: Optional[int] = None, density: str = 'gaussian'):
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
@@ -152,7 +162,7 @@ class ChoiceRecord:
                 ls[cols[1:]] = s[1:]
                 lsc[lev] = s[0]
             if L > 1:
-                dens[lev] = log_kde(x[cols[1:]], x[c])
+                dens[lev] = log_option_density(x[cols[1:]], x[c], density)
         return cls(x, c, g, L, ls, lsc, dens)
 
     def columns(self, level: int) -> np.ndarray:
@@ -187,6 +197,7 @@ class PosteriorConfig:
     ess_target: float = 0.5
     diversity_target: float = 0.8
     max_move_rounds: int = 8
+    option_density: str = 'gaussian'
 
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
@@ -215,6 +226,9 @@ class PosteriorConfig:
         if not 0.0 <= self.diversity_target <= 1.0:
             raise ValueError(f'diversity_target must be in [0, 1], got '
                              f'{self.diversity_target!r}')
+        if self.option_density not in ('gaussian', 'kde'):
+            raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
+                             'gaussian, kde')
         if not isinstance(self.n_levels, (int, np.integer)) or self.n_levels < 1:
             raise ValueError(f'n_levels must be an integer >= 1, got {self.n_levels!r}')
         if isinstance(self.bandwidth, str):
@@ -496,7 +510,8 @@ class ParticlePosterior:
                              'the spread level (groups) of every alternative')
         return ChoiceRecord.build(x, chosen, self.config.bandwidth,
                                   with_similarity=self.config.model == 'less', groups=groups,
-                                  n_levels=self.config.n_levels)
+                                  n_levels=self.config.n_levels,
+                                  density=self.config.option_density)
 
     def update(self, record, rng: np.random.Generator, move: bool = True):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
@@ -519,7 +534,8 @@ class ParticlePosterior:
                              f'{self.config.n_levels}')
         elif self.config.model == 'less' and record.log_sim is None:
             record = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
-                                        True, record.groups, record.n_levels)
+                                        True, record.groups, record.n_levels,
+                                        self.config.option_density)
         ll = self.record_loglik(record, self.theta, self.beta, self.level)
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '

@@ -259,16 +259,20 @@ def test_duplicating_dense_alternatives_moves_boltzmann():
     assert db > 3 * dl
 
 
-def test_log_kde_matches_scipy_gaussian_kde():
-    # scipy.stats.gaussian_kde with Scott's factor (Scott 1992) is the reference (to 1e-6,
-    # the tiny ridge that keeps degenerate sets invertible).
-    from scipy.stats import gaussian_kde
-    from pref_learner.posterior import log_kde
+def test_option_densities_match_scipy():
+    # References: scipy.stats.gaussian_kde with Scott's factor (Scott 1992) and
+    # scipy.stats.multivariate_normal with the sample mean and covariance (to 1e-6: the
+    # tiny ridge that keeps degenerate sets invertible).
+    from scipy.stats import gaussian_kde, multivariate_normal
+    from pref_learner.posterior import log_option_density
     rng = np.random.default_rng(80)
     pts = rng.normal(size=(150, 4)) @ rng.normal(size=(4, 4))
+    mvn = multivariate_normal(pts.mean(0), np.cov(pts, rowvar=False))
     for x in rng.normal(size=(5, 4)):
-        assert log_kde(pts, x) == pytest.approx(float(gaussian_kde(pts.T).logpdf(x)[0]),
-                                                rel=1e-6)
+        assert log_option_density(pts, x, 'kde') == pytest.approx(
+            float(gaussian_kde(pts.T).logpdf(x)[0]), rel=1e-6)
+        assert log_option_density(pts, x, 'gaussian') == pytest.approx(float(mvn.logpdf(x)),
+                                                                        rel=1e-6)
 
 
 @pytest.mark.parametrize('model', ['boltzmann', 'less'])
