@@ -1,6 +1,12 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""Sample ordering: judged against the stream's consensus, never a single stamp."""
+"""Sample ordering: judged against the stream's consensus, never a single stamp.
+
+Reference for the expectations: causality (common practice in sensor
+time-stamping) -- a message is stamped before it is sent and received, so
+with a fixed clock offset transport latency can only lower ``stamp -
+receive time``; a stamp ahead of the stream's offset is not a sample of it.
+"""
 
 import numpy as np
 

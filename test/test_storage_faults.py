@@ -6,6 +6,7 @@ OS errors are injected in-process by replacing ``os.fsync`` or
 ``tempfile.mkstemp`` (the calls store.py makes for every durable write) with
 functions that raise ``OSError(ENOSPC)`` / ``PermissionError(EACCES)``; the
 tests run as root here, so a read-only directory would not refuse writes.
+The errno values and texts are the C library's (``errno``, ``os.strerror``).
 """
 
 import errno
