@@ -271,8 +271,8 @@ def test_option_densities_match_scipy():
     for x in rng.normal(size=(5, 4)):
         assert log_option_density(pts, x, 'kde') == pytest.approx(
             float(gaussian_kde(pts.T).logpdf(x)[0]), rel=1e-6)
-        assert log_option_density(pts, x, 'gaussian') == pytest.approx(float(mvn.logpdf(x)),
-                                                                        rel=1e-6)
+        assert log_option_density(pts, x, 'gaussian') == pytest.approx(
+            float(mvn.logpdf(x)), rel=1e-6)
 
 
 @pytest.mark.parametrize('model', ['boltzmann', 'less'])

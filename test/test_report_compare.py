@@ -70,8 +70,13 @@ def test_compare_prints_a_verdict(state, tmp_path):
     assert set(res['loo_total']) == {'boltzmann', 'less'}
     for m, v in res['loo'].items():
         assert len(v) == 4 and res['loo_total'][m] == pytest.approx(sum(v), rel=1e-12)
-    assert res['better'] == max(res['loo_total'], key=res['loo_total'].get)
-    assert f'verdict: {res["better"]}' in r.stdout
+    # four demonstrations rarely settle it (paired t-test, 3 degrees of freedom): either a
+    # named model that also has the higher total, or an explicit "cannot tell"
+    if res['better'] is None:
+        assert 'verdict: cannot tell' in r.stdout
+    else:
+        assert res['better'] == max(res['loo_total'], key=res['loo_total'].get)
+        assert f'verdict: {res["better"]}' in r.stdout
     # The Boltzmann model, which is how this simulated person chooses, predicts held-out
     # choices better than a uniform guess among the K options of a set, log(1/K) each
     # (common-practice baseline; measured: -3.9 against -5.0 per demonstration).
