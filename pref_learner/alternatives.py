@@ -16,8 +16,16 @@ joint limits.
     the set spans from near the straight line to far from it. The standard
     normal draws are truncated at 3 sigma, so the noise, and with it the
     jerk, is bounded (:meth:`SmoothNoise.jerk_bound`).
+``near_optimal``
+    smooth draws moved a few steps up the reward of weights drawn from the
+    current posterior (half) and the prior (half), along the reward gradient
+    smoothed by the noise covariance (batched analytic gradients): options a
+    person who optimises would consider. With several spread levels they
+    form an option level of their own.
 ``perturb``
-    the demonstration itself plus the same noise.
+    the demonstration itself plus the same noise. Opt-in only: noise makes
+    every convex cost (effort, path length) worse on average, so a set with
+    such copies teaches the learner that the person dislikes noise.
 ``planner``
     trajectories optimised under random weights on the sphere, from a
     callable ``planner(start, goal, weights (m, d), rng) -> (m, T, n)``

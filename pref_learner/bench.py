@@ -44,30 +44,35 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     from .sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
-    teacher = SimulatedTeacher(L, TRUE, TeacherConfig())
+    # a person on the learner's waypoint count, so paths enter choice_set as they are
+    teacher = SimulatedTeacher(L, TRUE, TeacherConfig(n_waypoints=0))
     n_sets = 8 if quick else 12
     sets, qs = [], []
     for k in range(n_sets):
         _, path = teacher.choose(k)
-        allq, f = L.choice_set(path, k)
-        sets.append(f)
+        allq, f, groups = L.choice_set(path, k)
+        sets.append((f, 0, groups))
         qs.append(allq)
 
     # --- posterior updates (issue: inference core)
     for model in ('boltzmann', 'less'):
-        upd, mov = [], []
+        upd, mov, acc, steps = [], [], [], []
         for seed in range(2 if quick else 4):
             rng = np.random.default_rng(seed)
-            post = ParticlePosterior.create(PosteriorConfig(n_particles=4000, model=model), 6,
-                                            rng)
-            for f in sets:
+            post = ParticlePosterior.create(L.config.posterior_config(model), 6, rng)
+            for rec in sets:
                 t = time.perf_counter()
-                post, _ = post.update((f, 0), rng, move=False)
+                post, info = post.update(rec, rng, move=False)
                 upd.append(time.perf_counter() - t)
+                steps.append(info.tempering_steps)
                 t = time.perf_counter()
-                post, _ = post.rejuvenate(rng)
+                post, a = post.rejuvenate(rng)
                 mov.append(time.perf_counter() - t)
+                acc += [x for x in (info.acceptance, a) if np.isfinite(x)]
         tot = np.array(upd) + np.array(mov)
+        out[f'posterior_move_acceptance_{model}'] = float(np.mean(acc)) if acc else float('nan')
+        out[f'posterior_tempering_steps_mean_{model}'] = float(np.mean(steps))
+        out[f'posterior_tempering_steps_first_{model}'] = float(steps[0])
         out[f'posterior_update_ms_p95_{model}'] = float(np.percentile(upd, 95) * 1e3)
         out[f'posterior_update_ms_median_{model}'] = float(np.median(upd) * 1e3)
         out[f'posterior_rejuvenation_ms_p95_{model}'] = float(np.percentile(mov, 95) * 1e3)
@@ -75,7 +80,7 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
 
     rng = np.random.default_rng(0)
     cfg = dict(model='less', ess_min_ratio=0.0)
-    f0 = sets[0]
+    f0 = sets[0][0]
     reps = 5 if quick else 15
 
     def update_ms(n_particles, features):
@@ -107,6 +112,10 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     # --- alternatives (issue: demonstrations and alternative sets)
     _, path = teacher.choose(0)
     out['alternatives_ms'] = _median_ms(lambda: L.choice_set(path, 0), reps)
+    # the opt-in option levels: four spreads plus a near-optimal level of 20 %
+    Ln = Learner(LearnerConfig(model='less', spreads=(0.02, 0.04, 0.08, 0.16),
+                               mix_smooth=0.8, mix_near_optimal=0.2))
+    out['alternatives_ms_option_levels'] = _median_ms(lambda: Ln.choice_set(path, 0), reps)
     rec = Recorder(robot.joint_names, SegmentConfig(mode='motion'))
     names = list(robot.joint_names) + ['finger_left_joint', 'finger_right_joint']
     n = 20000 if quick else 100000

@@ -3,19 +3,23 @@
 """Particle posterior over reward weights on the unit sphere.
 
 The state is N weighted particles ``theta : (N, d)`` on S^{d-1}, optionally
-with a rationality coordinate ``log_beta : (N,)``, their log-weights
+with a rationality coordinate ``log_beta : (N,)`` (log-uniform prior on a
+range) and an option-level coordinate ``level : (N,)`` (which of L option
+models the person chose from; uniform prior), their log-weights
 ``log_weights : (N,)`` (normalised, log scale) and the per-particle sum of
 log-likelihoods of every demonstration so far ``log_lik : (N,)``.
 
-One update (:meth:`ParticlePosterior.update`) adds one demonstration:
-
-1. reweight: ``log_weights += log P(D | theta, beta)`` under the chosen model;
-2. when the effective sample size ``ESS = 1 / sum w_i^2`` falls below
-   ``ess_min_ratio * N``: systematic resampling (:func:`systematic_resample`),
-   then Metropolis-Hastings moves on the sphere (:func:`_rejuvenate`) whose
-   target is the posterior given *all* stored demonstrations (each choice set
-   is kept, a few kB, so the full likelihood is re-evaluated without
-   kinematics).
+One update (:meth:`ParticlePosterior.update`) adds one demonstration by
+adaptive tempering (Del Moral, Doucet & Jasra 2006): its log-likelihood
+enters in steps ``phi_1 < ... < 1`` chosen by bisection so that the
+effective sample size ``ESS = 1 / sum w_i^2`` stays at least ``ess_target`` x N
+in every step; between steps the particles are resampled systematically and
+moved by Metropolis-Hastings under the tempered target (prior x every
+stored likelihood x the new one to the power phi). Moves run until a stated
+share of the particles has moved, with a step that follows the cloud's
+spread and a factor tuned toward 15-40 % acceptance; the real acceptance is
+reported. Each choice set is kept (a few kB), so the full likelihood is
+re-evaluated without kinematics.
 
 The object is immutable: ``update`` returns a new posterior and an
 :class:`UpdateInfo`; a rejected update raises ``ValueError`` and leaves the
