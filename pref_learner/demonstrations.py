@@ -609,6 +609,10 @@ def prepare(demo: Demonstration, config: PrepareConfig, robot=None) -> np.ndarra
     """
     t, q = demo.t, demo.q
     q = lowpass(t, q, config.lowpass_hz)
+    if robot is not None:
+        # the filter overshoots where a person moves along a joint limit; the
+        # demonstration itself was inside the limits
+        q = np.clip(q, robot.lower, robot.upper)
     tool = None
     if config.resample == 'arc_length':
         if robot is None:

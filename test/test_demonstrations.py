@@ -195,3 +195,17 @@ def test_reconfigure_keeps_counters_and_refuses_mid_demonstration():
     rec.start()
     with pytest.raises(ValueError, match='during a demonstration'):
         rec.reconfigure(SegmentConfig(mode='manual'))
+
+
+def test_prepare_keeps_a_demonstration_along_a_joint_limit_within_it(arm):
+    # A person may move along a joint limit; the zero-phase low-pass filter overshoots a
+    # step (Gibbs, common practice), which must not turn a valid demonstration into one
+    # outside the limits (it used to raise in the kinematics).
+    t = np.linspace(0.0, 2.0, 1001)
+    q = np.zeros((len(t), arm.n))
+    q[:, 1] = np.where(t < 0.5, 0.0, arm.upper[1])
+    q[:, 0] = np.linspace(-0.5, 0.5, len(t))
+    demo = Demonstration(t, q, arm.joint_names)
+    out = prepare(demo, PrepareConfig(64, 'arc_length', 10.0, 1e-4), arm)   # the node's
+    assert np.all(out >= arm.lower) and np.all(out <= arm.upper)
+    assert out[-1, 1] == pytest.approx(arm.upper[1])
