@@ -28,15 +28,29 @@ the stream's consensus, not against one earlier stamp: its offset
 the last ``window`` seconds by at most ``tolerance`` (transport latency only
 ever lowers the offset), and its stamp must follow the last *accepted* one.
 Refused samples are counted (``stamp_ahead``, ``out_of_order``) and kept
-aside in a few candidate tracks of mutually consistent samples; a track of at
-least ``confirm`` samples becomes the new timeline (a bag played again, a
-simulation reset) once the current one has been silent for ``quiet`` seconds,
-and its samples are then used, so nothing of the new timeline is lost. The
-first timeline also needs ``confirm`` consistent samples, so no single sample
-sets a reference: at the start (or after the receive clock went back) the
-recorder watches for ``quiet`` seconds and then follows the confirmed track
-stamped closest to its receive clock. Without receive times (simulations
-feeding a learner directly) stamps are trusted and only their order is checked.
+aside in a few candidate tracks of mutually consistent samples (a track that
+pauses for ``quiet`` seconds starts again). A track of at least ``confirm``
+samples becomes the new timeline, and its samples are then used, so nothing of
+the new timeline is lost:
+
+- a track that began after the timeline's last sample (a bag played again,
+  a driver restarted with another clock) once the timeline has been silent
+  for ``quiet`` seconds;
+- a rival, a track that ran alongside the timeline (a machine with a wrong
+  clock), only once the timeline has been silent for ``rival_quiet``
+  seconds: a stream that pauses (a starved publisher, a driver's hiccup) has
+  not stopped;
+- at once, a stream that comes back: a track at the offset the timeline had
+  while healthy, after samples stamped further behind continued it in the
+  stream's absence, or at the offset of the timeline left at the last
+  change, when it is stamped nearer the receive clock than the current one.
+
+The first timeline also needs ``confirm`` consistent samples, so no single
+sample sets a reference: at the start (or after the receive clock went back)
+the recorder watches for ``quiet`` seconds and then follows the confirmed
+track stamped closest to its receive clock. Without receive times
+(simulations feeding a learner directly) stamps are trusted and only their
+order is checked.
 
 :func:`prepare` cleans a segment and resamples it to T waypoints (by time,
 or by arc length of the tool path; linear interpolation between samples;
