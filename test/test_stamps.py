@@ -219,31 +219,6 @@ def _play(rec, events):
     return out
 
 
-def test_a_paused_driver_is_not_replaced_by_a_consistent_wrong_clock():
-    # the reported fault: under CPU starvation the driver's stream stalled for >= 1 s
-    # while a machine with a wrong clock kept publishing; its consistent track was
-    # adopted as the new timeline and the demonstration in progress was dropped.
-    # Reference: the same recorder fed the driver's samples alone (causality, as above)
-    demos = [_motion(seed=k) for k in range(3)]
-    start = [1000 + 1250 * k for k in range(3)]    # index of each demonstration's first sample
-    stalls = {start[1] + 400: (1.5, True),         # starved mid-demonstration, then a burst
-              start[2] - 125: (1.5, False)}         # a hiccup while idle
-    events = _session(demos, stalls)
-    clean, messy = (Recorder(NAMES, SegmentConfig(mode='signal')) for _ in range(2))
-    want = _accepted(_play(clean, [e for e in events if e[2] != 'wrong']))
-    out = _play(messy, events)
-    got = _accepted(out)
-    assert len(want) == 3 and clean.counters['timeline_changes'] == 0
-    assert [o for o in out if isinstance(o, Rejection)] == [], dict(messy.counters)
-    assert len(got) == 3
-    for a, b in zip(want, got):
-        np.testing.assert_array_equal(a.t, b.t)
-        np.testing.assert_array_equal(a.q, b.q)
-    c = messy.counters
-    assert c['timeline_changes'] == 0 and c['samples'] == clean.counters['samples']
-    assert c['stamp_ahead'] > 0 and c['out_of_order'] > 0
-
-
 def _compare(stalls, n_demos, timeline_changes, wrong=WRONG_CLOCKS):
     """Demonstrations with and without the wrong clocks: the same, none rejected."""
     events = _session([_motion(seed=k) for k in range(n_demos)], stalls, wrong)
@@ -260,6 +235,20 @@ def _compare(stalls, n_demos, timeline_changes, wrong=WRONG_CLOCKS):
     return clean, messy
 
 
+def test_a_paused_driver_is_not_replaced_by_a_consistent_wrong_clock():
+    # the reported fault: under CPU starvation the driver's stream stalled for >= 1 s
+    # while a machine with a wrong clock kept publishing; its consistent track was
+    # adopted as the new timeline and the demonstration in progress was dropped.
+    # Reference: the same recorder fed the driver's samples alone (causality, as above)
+    start = [1000 + 1250 * k for k in range(3)]    # index of each demonstration's first sample
+    stalls = {start[1] + 400: (1.5, True),         # starved mid-demonstration, then a burst
+              start[2] - 125: (1.5, False)}         # a hiccup while idle
+    clean, messy = _compare(stalls, 3, timeline_changes=0)
+    c = messy.counters
+    assert c['samples'] == clean.counters['samples']   # every sample of the driver kept
+    assert c['stamp_ahead'] > 0 and c['out_of_order'] > 0
+
+
 def test_a_driver_back_after_a_long_silence_wins_back_its_timeline():
     # the driver is silent for 12 s, longer than rival_quiet: the clock 7 years ahead
     # that ran alongside is followed, but the driver (stamped nearest the receive
@@ -274,6 +263,7 @@ def test_a_driver_back_after_a_long_silence_wins_back_its_timeline():
 def test_a_new_timeline_among_wrong_clocks_is_adopted_after_quiet():
     # a bag played again (stamps an hour back) while two wrong clocks publish: the
     # new timeline began after the old one fell silent, so 1 s of quiet adopts it
-    _, messy = _compare({1000 + 1250 - 125: (1.5, False, -3600 * 10**9)}, 2,
-                        timeline_changes=1)
-    assert messy.counters['recovered'] >= 5
+    clean, messy = _compare({1000 + 1250 - 125: (1.5, False, -3600 * 10**9)}, 2,
+                            timeline_changes=1)
+    assert clean.counters['timeline_changes'] == 1
+    assert messy.counters['samples'] == clean.counters['samples']   # none of it lost
