@@ -28,15 +28,29 @@ the stream's consensus, not against one earlier stamp: its offset
 the last ``window`` seconds by at most ``tolerance`` (transport latency only
 ever lowers the offset), and its stamp must follow the last *accepted* one.
 Refused samples are counted (``stamp_ahead``, ``out_of_order``) and kept
-aside in a few candidate tracks of mutually consistent samples; a track of at
-least ``confirm`` samples becomes the new timeline (a bag played again, a
-simulation reset) once the current one has been silent for ``quiet`` seconds,
-and its samples are then used, so nothing of the new timeline is lost. The
-first timeline also needs ``confirm`` consistent samples, so no single sample
-sets a reference: at the start (or after the receive clock went back) the
-recorder watches for ``quiet`` seconds and then follows the confirmed track
-stamped closest to its receive clock. Without receive times (simulations
-feeding a learner directly) stamps are trusted and only their order is checked.
+aside in a few candidate tracks of mutually consistent samples (a track that
+pauses for ``quiet`` seconds starts again). A track of at least ``confirm``
+samples becomes the new timeline, and its samples are then used, so nothing of
+the new timeline is lost:
+
+- a track that began after the timeline's last sample (a bag played again,
+  a driver restarted with another clock) once the timeline has been silent
+  for ``quiet`` seconds;
+- a rival, a track that ran alongside the timeline (a machine with a wrong
+  clock), only once the timeline has been silent for ``rival_quiet``
+  seconds: a stream that pauses (a starved publisher, a driver's hiccup) has
+  not stopped;
+- at once, a stream that comes back: a track at the offset the timeline had
+  while healthy, after samples stamped further behind continued it in the
+  stream's absence, or at the offset of the timeline left at the last
+  change, when it is stamped nearer the receive clock than the current one.
+
+The first timeline also needs ``confirm`` consistent samples, so no single
+sample sets a reference: at the start (or after the receive clock went back)
+the recorder watches for ``quiet`` seconds and then follows the confirmed
+track stamped closest to its receive clock. Without receive times
+(simulations feeding a learner directly) stamps are trusted and only their
+order is checked.
 
 :func:`prepare` cleans a segment and resamples it to T waypoints (by time,
 or by arc length of the tool path; linear interpolation between samples;
@@ -124,12 +138,13 @@ class StampConfig:
     window: float = 2.0         # s of accepted samples whose largest offset is the reference
     confirm: int = 5            # consistent samples that establish a timeline
     quiet: float = 1.0          # s without accepted samples before a new timeline is adopted
+    rival_quiet: float = 10.0   # the same for a track that ran alongside the timeline
     track_length: int = 4096    # samples kept per candidate track (a new timeline's start)
     n_tracks: int = 8           # candidate tracks (least recently extended one goes first)
     max_skew: float = 0.0       # s; refuse |stamp - receive| beyond this (0: off)
 
     def __post_init__(self):
-        for k in ('tolerance', 'window', 'quiet'):
+        for k in ('tolerance', 'window', 'quiet', 'rival_quiet'):
             if not getattr(self, k) > 0:
                 raise ValueError(f'{k} must be > 0, got {getattr(self, k)!r}')
         for k in ('confirm', 'track_length', 'n_tracks'):
@@ -142,14 +157,17 @@ class StampConfig:
 
 
 class _Track:
-    """Refused samples that agree with each other: a candidate timeline."""
+    """Refused samples that agree with each other: a candidate timeline.
 
-    __slots__ = ('offset', 'last_stamp', 'touched', 'samples')
+    ``first`` is the receive time of its first sample, ``touched`` of its last.
+    """
 
-    def __init__(self, offset: int, maxlen: int):
+    __slots__ = ('offset', 'last_stamp', 'first', 'touched', 'samples')
+
+    def __init__(self, offset: int, recv: int, maxlen: int):
         self.offset = offset
         self.last_stamp = -1
-        self.touched = 0
+        self.first = self.touched = recv
         self.samples: Deque[Tuple[int, int, np.ndarray]] = collections.deque(maxlen=maxlen)
 
 
@@ -170,6 +188,8 @@ class Recorder:
         self._ref: Deque[Tuple[int, int]] = collections.deque()   # (receive, offset), max first
         self._tracks: List[_Track] = []
         self._first_candidate: Optional[int] = None
+        self._best: Optional[int] = None             # the timeline's offset while healthy
+        self._previous: Optional[Tuple[int, int]] = None   # (best, last stamp) before a change
         self._ring: Deque[Tuple[int, np.ndarray]] = collections.deque()
         self._seg: Optional[List[Tuple[int, np.ndarray]]] = None
         self._seg_invalid = 0
@@ -244,6 +264,7 @@ class Recorder:
         recv = int(receive_ns)
         if self._last_recv is not None and recv < self._last_recv - sc.tolerance * 1e9:
             self._timeline = False        # the receive clock went back (simulation reset)
+            self._previous = None
         reason = self._judge(stamp, recv) if self._timeline else 'unconfirmed'
         if reason is None:
             return self._accept(stamp, recv, q)
@@ -269,11 +290,15 @@ class Recorder:
         tol = sc.tolerance * 1e9
         track = next((t for t in self._tracks
                       if abs(off - t.offset) <= tol and stamp > t.last_stamp), None)
+        if track is not None and recv - track.touched > sc.quiet * 1e9:
+            track.samples.clear()                   # after a pause the track starts again
+            track.first = recv
         if track is None:
-            track = _Track(off, sc.track_length)
+            track = _Track(off, recv, sc.track_length)
+            if len(self._tracks) >= sc.n_tracks:    # unconfirmed, least recently extended first
+                weak = [t for t in self._tracks if len(t.samples) < sc.confirm] or self._tracks
+                self._tracks.remove(min(weak, key=lambda t: t.touched))
             self._tracks.append(track)
-            if len(self._tracks) > sc.n_tracks:
-                self._tracks.remove(min(self._tracks, key=lambda t: t.touched))
         track.samples.append((stamp, recv, q))
         track.offset, track.last_stamp, track.touched = off, stamp, recv
         if not self._timeline:
@@ -285,12 +310,29 @@ class Recorder:
                 return []
             ready = [t for t in self._tracks if len(t.samples) >= sc.confirm]
             return self._adopt(min(ready, key=lambda t: abs(t.offset))) if ready else []
-        if len(track.samples) < sc.confirm or recv - self._last_recv < sc.quiet * 1e9:
+        if len(track.samples) < sc.confirm:
             return []
-        return self._adopt(track)
+        if self._returns(track, tol):
+            return self._adopt(track)
+        if track.first > self._last_recv:            # began after the timeline fell silent
+            wait = sc.quiet
+        else:                                        # a rival: pausing is not stopping
+            wait = sc.rival_quiet
+        return self._adopt(track) if recv - self._last_recv >= wait * 1e9 else []
+
+    def _returns(self, track: _Track, tol: float) -> bool:
+        """Whether ``track`` is a followed stream back (see the module docstring)."""
+        off, ref = track.offset, self._ref[0][1]
+        if abs(off - self._best) <= tol and off > ref + tol:
+            return True         # this timeline's stream, after one stamped further back filled in
+        prev = self._previous   # the timeline left at the last change, nearer the clock
+        return (prev is not None and abs(off - prev[0]) <= tol and track.samples[0][0] > prev[1]
+                and abs(off) + tol < abs(ref))
 
     def _adopt(self, track: _Track) -> list:
         out = []
+        self._previous = (self._best, self._last_stamp) if self._timeline else None
+        self._best = None
         if self._last_stamp is not None:             # a timeline existed: it changed
             self.counters['timeline_changes'] += 1
             if self._seg:
@@ -320,9 +362,12 @@ class Recorder:
         while ref and ref[-1][1] <= off:
             ref.pop()
         ref.append((recv, off))
-        horizon = recv - self.stamp_config.window * 1e9
+        sc = self.stamp_config
+        horizon = recv - sc.window * 1e9
         while ref[0][0] < horizon:
             ref.popleft()
+        if self._best is None or ref[0][1] > self._best - sc.tolerance * 1e9:
+            self._best = ref[0][1]      # follows the offset unless it drops at once (a gap)
         self.counters['samples'] += 1
         sample = (stamp, q)
         out = []

@@ -67,6 +67,17 @@ class ValidStream:
         for _ in range(int(seconds / self.dt)):
             self._one(self.last)
 
+    def rest_until(self, pred, timeout):
+        """Keep streaming at rest until ``pred()`` (a robot does not stop while we wait).
+
+        Waiting without publishing would make the stream stall and then send its
+        backlog in one burst, which the node's best-effort subscription may drop.
+        """
+        deadline = time.monotonic() + timeout
+        while not pred() and time.monotonic() < deadline:
+            self.rest(0.02)
+        return pred()
+
 
 def test_flood_of_bad_messages_changes_nothing(tmp_path):
     bag = tmp_path / 'session'
@@ -88,13 +99,13 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
         valid.rest(1.5)                           # the robot streams before teaching starts
         valid.demo(paths[0])
         valid.rest(0.5)
-        assert spin_until(ex, lambda: node.learner.n_demonstrations == 1, 20)
+        assert valid.rest_until(lambda: node.learner.n_demonstrations == 1, 20)
         garbage = subprocess.Popen(
             [sys.executable, str(Path(__file__).with_name('garbage_publisher.py')),
              str(GARBAGE_S), str(GARBAGE_HZ), '3', *names],
             stdout=subprocess.PIPE, text=True)
         try:
-            spin_until(ex, lambda: node.learner.recorder.counters['zero_stamp'] > 0, 15)
+            valid.rest_until(lambda: node.learner.recorder.counters['zero_stamp'] > 0, 15)
             for k in range(1, N_DURING + 1):
                 valid.demo(paths[k])
                 valid.rest(0.3)

@@ -210,3 +210,28 @@ def test_queue_worker_never_drops_requests_and_keeps_arrival_order():
     w.stop()
     assert seen == ['s0', 'c50'] + [f's{i}' for i in range(91, 101)] + ['c100', 'after']
     assert w.dropped == 90 and len(errors) == 1 and isinstance(errors[0], KeyError)
+
+
+def test_a_lagging_worker_keeps_the_bag_in_the_order_it_handled(tmp_path):
+    # the worker handles samples after they were received (it lags while it learns);
+    # an estimate published meanwhile must not move the bag's log times of the samples
+    # after it up to its publication time: equal log times may be replayed in another
+    # order than the node handled (MCAP orders messages by log time only, from the
+    # MCAP specification), and `learn` would then judge other receive times
+    from pref_learner.bags import read_stream
+
+    bag = tmp_path / 'session'
+    with ros_context() as (ctx, _):
+        node = _node(ctx, record_bag=str(bag), **SMALL)
+        names = list(node.learner.robot.joint_names)
+        t0 = time.time_ns()
+        recv = [t0 + i * 2_000_000 for i in range(6)]
+        time.sleep(0.1)                               # all received; handled from now on
+        w = node._bag                                 # CDR as the middleware delivers it
+        for t in recv:
+            raw = bytes(w.ts.serialize_cdr(w.joint_state(t, names, np.zeros(len(names))),
+                                           'sensor_msgs/msg/JointState'))
+            node._handle(('js', t, t, raw))
+            node._publish_estimates()
+        node.destroy_node()                           # closes the bag
+    assert [e.log_ns for e in read_stream(bag)] == recv

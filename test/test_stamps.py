@@ -161,3 +161,109 @@ def test_timeline_change_during_a_demonstration_rejects_the_old_part():
         out += rec.feed(clk.t - 3600 * 10**9, NAMES, row, receive_ns=clk.t)
     out += rec.set_teaching(False)
     assert [o.reason for o in out if isinstance(o, Rejection)] == ['timeline_change']
+
+
+WRONG_CLOCKS = (7 * YEAR_NS, -5 * 10**9)         # stamp minus true time of two other machines
+
+
+def _session(demos, stalls, wrong=WRONG_CLOCKS, latency=2_000_000):
+    """Events ``(receive, order, kind, stamp, value)`` of a driver and two wrong clocks.
+
+    The driver streams at ``RATE``: 2 s at rest (the recorder's start-up watch),
+    then rests of 0.5 s around each demonstration in ``demos``; ``stalls`` maps a
+    sample index to ``(seconds, catch_up[, jump])``: nothing is received for that
+    long; with ``catch_up`` the driver keeps its schedule and delivers the backlog
+    in a burst (a starved publisher), without it its stamps skip the pause (a
+    driver hiccup) and move by ``jump`` ns (a bag played again). Machines with the
+    ``wrong`` clock offsets publish consistently at 100 Hz throughout.
+    """
+    t = 1_800_000_000 * 10**9
+    rest = np.zeros(7)
+    rows, teach = [rest] * int(1.5 * RATE), []
+    for q in demos:
+        rows += [rest] * int(RATE / 2)
+        teach.append((len(rows), len(rows) + len(q) - 1))
+        rows += list(q)
+        rest = q[-1]
+    rows += [rest] * int(RATE / 2)
+    events, recv, n, shift = [], 0, 0, 0
+    for i, row in enumerate(rows):
+        t += int(1e9 / RATE)
+        seconds, catch_up, *jump = stalls.get(i, (0.0, True))
+        if seconds and not catch_up:
+            t += int(seconds * 1e9)
+            shift += sum(jump)
+        stall_end = t + latency + int(seconds * 1e9)
+        recv = max(t + latency, recv + 20_000, stall_end if seconds and catch_up else 0)
+        for a, b in teach:
+            if i in (a, b):
+                events.append((recv + (-1 if i == a else 1), n, 'teach', 0, i == a))
+                n += 1
+        events.append((recv, n, 'js', t + shift, row))
+        n += 1
+    first, last = events[0][0], events[-1][0]
+    for k, now in enumerate(range(first, last, 10**7)):
+        for j, offset in enumerate(wrong):
+            events.append((now + j + 1, n, 'wrong', now + offset, np.full(7, 0.1 * k % 1)))
+            n += 1
+    return sorted(events, key=lambda e: e[:2])
+
+
+def _play(rec, events):
+    out = []
+    for recv, _, kind, stamp, value in events:
+        if kind == 'teach':
+            out += rec.set_teaching(value)
+        else:
+            out += rec.feed(stamp, NAMES, value, receive_ns=recv)
+    return out
+
+
+def _compare(stalls, n_demos, timeline_changes, wrong=WRONG_CLOCKS):
+    """Demonstrations with and without the wrong clocks: the same, none rejected."""
+    events = _session([_motion(seed=k) for k in range(n_demos)], stalls, wrong)
+    clean, messy = (Recorder(NAMES, SegmentConfig(mode='signal')) for _ in range(2))
+    want = _accepted(_play(clean, [e for e in events if e[2] != 'wrong']))
+    out = _play(messy, events)
+    assert [o for o in out if isinstance(o, Rejection)] == [], dict(messy.counters)
+    got = _accepted(out)
+    assert len(want) == len(got) == n_demos
+    for a, b in zip(want, got):
+        np.testing.assert_array_equal(a.t, b.t)
+        np.testing.assert_array_equal(a.q, b.q)
+    assert messy.counters['timeline_changes'] == timeline_changes, dict(messy.counters)
+    return clean, messy
+
+
+def test_a_paused_driver_is_not_replaced_by_a_consistent_wrong_clock():
+    # the reported fault: under CPU starvation the driver's stream stalled for >= 1 s
+    # while a machine with a wrong clock kept publishing; its consistent track was
+    # adopted as the new timeline and the demonstration in progress was dropped.
+    # Reference: the same recorder fed the driver's samples alone (causality, as above)
+    start = [1000 + 1250 * k for k in range(3)]    # index of each demonstration's first sample
+    stalls = {start[1] + 400: (1.5, True),         # starved mid-demonstration, then a burst
+              start[2] - 125: (1.5, False)}         # a hiccup while idle
+    clean, messy = _compare(stalls, 3, timeline_changes=0)
+    c = messy.counters
+    assert c['samples'] == clean.counters['samples']   # every sample of the driver kept
+    assert c['stamp_ahead'] > 0 and c['out_of_order'] > 0
+
+
+def test_a_driver_back_after_a_long_silence_wins_back_its_timeline():
+    # the driver is silent for 12 s, longer than rival_quiet: the clock 7 years ahead
+    # that ran alongside is followed, but the driver (stamped nearest the receive
+    # clock) takes its timeline back once it returns; its next demonstration is kept
+    _compare({1000 + 1250 - 125: (12.0, False)}, 2, 2, wrong=WRONG_CLOCKS[:1])
+    # with the clock 5 s behind as well, that one continues the timeline 5 s into the
+    # silence (its stamps then follow the last accepted one and are not ahead); the
+    # driver, back at the offset the timeline had, takes it back all the same
+    _compare({1000 + 1250 - 125: (12.0, False)}, 2, 1)
+
+
+def test_a_new_timeline_among_wrong_clocks_is_adopted_after_quiet():
+    # a bag played again (stamps an hour back) while two wrong clocks publish: the
+    # new timeline began after the old one fell silent, so 1 s of quiet adopts it
+    clean, messy = _compare({1000 + 1250 - 125: (1.5, False, -3600 * 10**9)}, 2,
+                            timeline_changes=1)
+    assert clean.counters['timeline_changes'] == 1
+    assert messy.counters['samples'] == clean.counters['samples']   # none of it lost

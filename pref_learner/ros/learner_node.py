@@ -576,7 +576,9 @@ class LearnerNode(Node):
         with self._lock:
             self._cache = msgs
             self._summaries = sums
-        stamp = self._now()
+        # logged with the last input handled, which it follows from: a later time would
+        # raise the next samples' log times to it (ties that a replay may reorder)
+        stamp = self._last_log or self._now()
         for key, msg in msgs.items():
             self._pubs[key].publish(msg)
             dims = [(d.label, d.size, d.stride) for d in msg.layout.dim]
