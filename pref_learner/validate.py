@@ -167,7 +167,8 @@ def study_set_robustness(n_sets=10, n_demos=8, n_particles=2000, n_alternatives=
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
     truth = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
-    rec = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1))
+    # only records the demonstrations (one alternative, one option level)
+    rec = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,)))
     teacher = SimulatedTeacher(rec, truth, TeacherConfig(model='less', seed=seed + 7))
     teacher.feed_session(rec, n_demos)
     demos = list(rec._demos)
