@@ -597,9 +597,6 @@ class ParticlePosterior:
                        level=None if self.level is None else self.level[idx],
                        log_weights=np.full(n, -np.log(n)))
 
-    def _resample(self, rng):
-        return self._take(systematic_resample(self.log_weights, rng))
-
     def _move(self, rng, extra: Optional[ChoiceRecord], phi: float, ll_extra):
         """Metropolis-Hastings moves on equally weighted particles.
 
