@@ -22,6 +22,18 @@ def _rss_mb(pid: int) -> float:
     return float('nan')
 
 
+def _live(teacher, k: int):
+    """Demonstration k as a live 1 kHz stream stamped from now: ``(stamps (S,), q (S, n))``.
+
+    Every second sample of the 500 Hz playback, stamped 1 ms apart, so stamps
+    advance with the clock the samples are published on (the node refuses
+    samples stamped ahead of their stream).
+    """
+    _, q = teacher.stream(k, 0)
+    q = q[::2]
+    return time.time_ns() + np.arange(len(q), dtype=np.int64) * 1_000_000, q
+
+
 def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     import rclpy
     from diagnostic_msgs.msg import DiagnosticArray
@@ -80,13 +92,11 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
 
             # -- latency from teaching=false to new weights, 1 kHz samples
             lat = []
-            stamp0 = time.time_ns()
             n_lat = 5 if quick else 12
             for k in range(n_lat):
-                stamps, q = teacher.stream(k, stamp0)
-                stamp0 = int(stamps[-1]) + 10**9
+                stamps, q = _live(teacher, k)
                 teach.publish(Bool(data=True))
-                publish_paced(pub, stamps[::2], q[::2], names, 1000.0)
+                publish_paced(pub, stamps, q, names, 1000.0)
                 rclpy.spin_once(node, timeout_sec=0.0)
                 before = n_demos()
                 t0 = time.perf_counter()
@@ -106,12 +116,11 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             t_start = time.perf_counter()
             k = 100
             while time.perf_counter() - t_start < dur:
-                stamps, q = teacher.stream(k, stamp0)
-                stamp0 = int(stamps[-1]) + 10**9
+                stamps, q = _live(teacher, k)
                 k += 1
                 teach.publish(Bool(data=True))
                 sent += publish_paced(
-                    pub, stamps[::2], q[::2], names, 1000.0,
+                    pub, stamps, q, names, 1000.0,
                     lambda i: rclpy.spin_once(node, timeout_sec=0.0) if i % 200 == 0 else None)
                 teach.publish(Bool(data=False))
             spin_until(lambda: int(state['status'].get('samples', 0)) - before >= sent, 20)
