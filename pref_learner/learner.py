@@ -61,7 +61,7 @@ class LearnerConfig:
     mix_perturb: float = 0.0            # noisy copies of the demonstration (biased; opt-in)
     mix_planner: float = 0.0            # share of alternatives optimised under random weights
     planner_jobs: int = 1               # worker processes for planner alternatives
-    spreads: Tuple[float, ...] = (0.02, 0.04, 0.08, 0.16)   # option spreads, inferred
+    spreads: Tuple[float, ...] = (0.08,)   # option spreads; several are inferred (opt-in)
     ascent_steps: int = 8
     ascent_step: float = 0.25
     option_density: str = 'gaussian'    # density of a level's options: gaussian | kde

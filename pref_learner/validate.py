@@ -217,9 +217,9 @@ def credible_region_contains(theta: np.ndarray, weights: np.ndarray, mean: np.nd
 def _calib_session(job) -> dict:
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
-    truth, variant, beta, seed, n_demos, n_particles, n_alternatives = job
+    truth, variant, beta, seed, n_demos, n_particles, n_alternatives, over = job
     L = Learner(LearnerConfig(model='less', seed=seed, n_particles=n_particles,
-                              n_alternatives=n_alternatives))
+                              n_alternatives=n_alternatives, **over))
     person = TeacherConfig(model='less', beta=beta, seed=seed + 1000,
                            **PERSON_VARIANTS[variant])
     SimulatedTeacher(L, truth, person).feed_session(L, n_demos)
@@ -244,13 +244,15 @@ def _run_jobs(fn, jobs, n_jobs: int, label: str):
 
 
 def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300,
-                      conditions=('matched', 'mismatched'), seed=0, n_jobs=1) -> dict:
+                      conditions=('matched', 'mismatched'), seed=0, n_jobs=1,
+                      learner: Optional[dict] = None) -> dict:
     """Cosine, 90 % coverage and confidently wrong runs for people who are not the learner.
 
     Truths are drawn uniformly on the sphere from ``seed``. ``matched``: the
     person's options are smooth draws of the learner's middle spread, beta 5.
     ``mismatched``: truth i meets the variant ``MISMATCHED[i % 3]`` and the beta
     ``PERSON_BETAS[(i // 3) % 3]`` (unknown to the learner, which infers beta).
+    ``learner``: settings of the learner other than its defaults (LearnerConfig fields).
     """
     from .learner import Learner, LearnerConfig
     d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
@@ -264,7 +266,7 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
             else:
                 variant, beta = MISMATCHED[i % 3], PERSON_BETAS[(i // 3) % 3]
             jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
-                         n_alternatives))
+                         n_alternatives, dict(learner or {})))
         runs = _run_jobs(_calib_session, jobs, n_jobs, f'calibration ({cond})')
         cos = np.array([r['cosine'] for r in runs])
         out[cond] = {'cosine_mean': float(cos.mean()),
