@@ -89,6 +89,24 @@ def verdict(loo: Dict[str, List[float]], level: float = 0.95) -> dict:
             'wins': {b: int(np.sum(diff > 0)), a: int(np.sum(diff < 0))}}
 
 
+def stored_choice_sets(store: StateStore, learner: Learner):
+    """Return the stored demonstrations and their ``(features, groups)`` choice sets.
+
+    Each set is drawn with the seed index its file carries, as the live
+    learner drew it (a quarantined demonstration leaves a gap in the indices).
+    """
+    demos, records = [], []
+    for path in store.demo_paths():
+        d = store.read_demo(path)
+        demo = Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
+                             int(d['stamp_ns']))
+        q = prepare(demo, learner.prepare_config, learner.robot)
+        _, feats, groups = learner.choice_set(q, store.demo_index(path))
+        demos.append(demo)
+        records.append((feats, groups))
+    return demos, records
+
+
 def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
                    n_alternatives: int = 0) -> dict:
     store = StateStore(state_dir)
@@ -105,13 +123,7 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
     L = Learner(cfg)
     if manifest.get('scales'):
         L.features = L.features.with_scales(manifest['scales'])
-    demos = [Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
-                           int(d['stamp_ns'])) for d in raw]
-    records = []
-    for i, d in enumerate(demos):
-        q = prepare(d, L.prepare_config, L.robot)
-        _, feats, groups = L.choice_set(q, i)
-        records.append((feats, groups))
+    demos, records = stored_choice_sets(store, L)
     k = len(records)
     loo = loo_scores(records, {m: cfg.posterior_config(m) for m in MODELS}, L.features.d,
                      cfg.seed)

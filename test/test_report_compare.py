@@ -137,3 +137,22 @@ def test_compare_says_cannot_tell_on_too_little_data():
             for m in ('boltzmann', 'less')}
     v = verdict(loo_scores(_crowd_sets('less', 2, 4), cfgs, 2))
     assert v['better'] is None and abs(v['z']) < v['critical'], v
+
+
+def test_compare_draws_each_set_with_its_stored_seed_index(state, tmp_path):
+    # A quarantined demonstration leaves a gap in the file indices; the other sets must be
+    # drawn with the index the live learner used, not their position in the list.
+    import shutil
+    from pref_learner.compare import stored_choice_sets
+    from pref_learner.demonstrations import prepare
+    from pref_learner.store import StateStore
+    copy = tmp_path / 'state'
+    shutil.copytree(state, copy)
+    store = StateStore(copy)
+    first = store.demo_paths()[0]
+    first.rename(tmp_path / first.name)
+    L = Learner(LearnerConfig(n_particles=10, n_alternatives=40))
+    demos, records = stored_choice_sets(store, L)
+    q = prepare(demos[0], L.prepare_config, L.robot)
+    np.testing.assert_array_equal(records[0][0], L.choice_set(q, 1)[1])
+    assert not np.array_equal(records[0][0], L.choice_set(q, 0)[1])
