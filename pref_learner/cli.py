@@ -48,7 +48,7 @@ def _ros_env(allow_network: bool) -> dict:
     peers = os.environ.pop('ROS_STATIC_PEERS', '')
     os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
     os.environ['ROS_DOMAIN_ID'] = domain
-    if was.upper() not in ('', 'LOCALHOST') or peers:
+    if was.upper() not in ('LOCALHOST', '') or peers:
         print(f'pref-learner demo: discovery forced to LOCALHOST (was {was or "unset"}'
               f'{", static peers dropped" if peers else ""}); --allow-network keeps yours',
               file=sys.stderr)

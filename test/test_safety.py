@@ -216,7 +216,7 @@ def test_installed_entry_point_allows_its_module(tmp_path, monkeypatch):
 
 def test_no_reader_can_run_code_from_a_file():
     # Static guard (common practice: pickle, yaml.load with a full loader, numpy.load with
-    # allow_pickle=True, eval and exec can all run code a file supplies). The one dynamic
+    # pickles allowed, eval and exec can all run code a file supplies). The one dynamic
     # import is features._load_user_type, behind the allow list tested above.
     import re
     risky = re.compile(r'\bpickle\.loads?\(|allow_pickle\s*=\s*True|yaml\.(unsafe_)?load\(|'
