@@ -97,9 +97,7 @@ def stored_choice_sets(store: StateStore, learner: Learner):
     """
     demos, records = [], []
     for path in store.demo_paths():
-        d = store.read_demo(path)
-        demo = Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
-                             int(d['stamp_ns']))
+        demo = Demonstration.from_arrays(store.read_demo(path))
         q = prepare(demo, learner.prepare_config, learner.robot)
         _, feats, groups = learner.choice_set(q, store.demo_index(path))
         demos.append(demo)

@@ -90,6 +90,17 @@ class Demonstration:
     def duration(self) -> float:
         return float(self.t[-1] - self.t[0])
 
+    def to_arrays(self, seed: int) -> dict:
+        """Arrays of the stored demonstration format (``seed``: the session's)."""
+        return {'t': self.t, 'q': self.q, 'joint_names': np.array(self.joint_names),
+                'stamp_ns': np.int64(self.stamp_ns), 'seed': np.int64(seed)}
+
+    @classmethod
+    def from_arrays(cls, arrays: dict) -> 'Demonstration':
+        """Decode the stored format of :meth:`to_arrays` (``KeyError`` if a key is missing)."""
+        return cls(arrays['t'], arrays['q'], tuple(str(x) for x in arrays['joint_names']),
+                   int(arrays['stamp_ns']))
+
 
 @dataclass(frozen=True)
 class Rejection:

@@ -323,9 +323,7 @@ class Learner:
 
     def _stored_demonstration(self, path) -> Demonstration:
         try:
-            d = self.store.read_demo(path)
-            demo = Demonstration(d['t'], d['q'], tuple(str(x) for x in d['joint_names']),
-                                 int(d['stamp_ns']))
+            demo = Demonstration.from_arrays(self.store.read_demo(path))
         except (ValueError, KeyError) as exc:
             raise DemonstrationError(f'{path.name}: {exc}') from None
         self._check_demonstration(demo)
@@ -503,10 +501,7 @@ class Learner:
         index = len(self._demos)
         store = self.store
         if store is not None:
-            store.write_demo(index, {'t': demo.t, 'q': demo.q,
-                                     'joint_names': np.array(demo.joint_names),
-                                     'stamp_ns': np.int64(demo.stamp_ns),
-                                     'seed': np.int64(self.config.seed)})
+            store.write_demo(index, demo.to_arrays(self.config.seed))
         posteriors = dict(self.posteriors)
         try:
             return self._learn_stored(demo)
