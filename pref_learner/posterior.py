@@ -411,6 +411,32 @@ class ParticlePosterior:
             lp = np.where((level >= 0) & (level < self.config.n_levels), lp, -np.inf)
         return lp
 
+    def _level_utilities(self, record: ChoiceRecord, theta: np.ndarray, beta: np.ndarray,
+                         level: Optional[np.ndarray]):
+        """Yield ``(sel, cols, r)`` per spread level present among the particles.
+
+        ``sel``: the particles at that level (a slice when it is all of them),
+        ``cols``: the rows they compare (chosen first), ``r : (len(sel), len(cols))``:
+        ``beta theta.phi`` (minus the LESS log-similarity), the one place the
+        models' utilities are formed.
+        """
+        x = record.features
+        lev = np.zeros(theta.shape[0], dtype=np.int64) if level is None else level
+        for g in range(record.n_levels):
+            sel = np.flatnonzero(lev == g)
+            if sel.size == 0:
+                continue
+            if sel.size == theta.shape[0]:
+                sel = slice(None)
+            cols = record.columns(g)
+            r = theta[sel] @ x[cols].T
+            r *= beta[sel, None]
+            if self.config.model == 'less':
+                ls = record.log_sim[cols]
+                ls[0] = record.log_sim_chosen[g]
+                r -= ls[None, :]
+            yield g, sel, cols, r
+
     def record_loglik(self, record: ChoiceRecord, theta: np.ndarray, beta: np.ndarray,
                       level: Optional[np.ndarray] = None,
                       with_density: bool = True) -> np.ndarray:
@@ -420,31 +446,8 @@ class ParticlePosterior:
         ``with_density=False`` gives the choice probability alone (the
         demonstration given its set).
         """
-        x = record.features
-        less = self.config.model == 'less'
-        if record.n_levels == 1:
-            r = theta @ x.T
-            r *= beta[:, None]
-            if less:
-                ls = record.log_sim.copy()
-                ls[record.chosen] = record.log_sim_chosen[0]
-                r -= ls[None, :]
-            chosen = r[:, record.chosen].copy()
-            out = chosen - _logsumexp_rows(r)
-            return out + record.log_density[0] if with_density else out
-        lev = np.zeros(theta.shape[0], dtype=np.int64) if level is None else level
         out = np.full(theta.shape[0], -np.inf)
-        for g in range(record.n_levels):
-            sel = np.flatnonzero(lev == g)
-            if sel.size == 0:
-                continue
-            cols = record.columns(g)
-            r = theta[sel] @ x[cols].T
-            r *= beta[sel, None]
-            if less:
-                ls = record.log_sim[cols]
-                ls[0] = record.log_sim_chosen[g]
-                r -= ls[None, :]
+        for g, sel, _, r in self._level_utilities(record, theta, beta, level):
             chosen = r[:, 0].copy()
             out[sel] = chosen - _logsumexp_rows(r) + (record.log_density[g] if with_density
                                                       else 0.0)
@@ -464,22 +467,10 @@ class ParticlePosterior:
         ``sum_p w_p P(row | theta_p, beta_p, level_p)``; rows outside a
         particle's spread level have probability 0 for it.
         """
-        x = record.features
         w = self.weights
-        beta = self.beta
-        lev = self.levels
-        out = np.zeros(x.shape[0])
-        for g in range(record.n_levels):
-            sel = np.flatnonzero(lev == g)
-            if sel.size == 0:
-                continue
-            cols = record.columns(g)
-            r = self.theta[sel] @ x[cols].T
-            r *= beta[sel, None]
-            if record.log_sim is not None and self.config.model == 'less':
-                ls = record.log_sim[cols]
-                ls[0] = record.log_sim_chosen[g]
-                r -= ls[None, :]
+        out = np.zeros(record.features.shape[0])
+        for _, sel, cols, r in self._level_utilities(record, self.theta, self.beta,
+                                                     self.level):
             r -= r.max(axis=1, keepdims=True)
             np.exp(r, out=r)
             r /= r.sum(axis=1, keepdims=True)
