@@ -13,10 +13,11 @@ from rcl_interfaces.msg import ParameterDescriptor
 from sensor_msgs.msg import JointState
 
 
-def run_node(factory, args=None, name='pref_learner') -> None:
+def run_node(factory, args=None, name='pref_learner', done=None) -> None:
     """Run a node as ``main``: loopback DDS unless told otherwise, spin until interrupted.
 
     A ``ValueError`` from the constructor (bad parameters) is one line and exit code 2.
+    ``done(node) -> bool``: stop spinning once it is true (checked every 0.1 s).
     """
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
@@ -30,7 +31,10 @@ def run_node(factory, args=None, name='pref_learner') -> None:
             ex = SingleThreadedExecutor()
             ex.add_node(node)
             try:
-                ex.spin()
+                if done is None:
+                    ex.spin()
+                while done is not None and rclpy.ok() and not done(node):
+                    ex.spin_once(timeout_sec=0.1)
             finally:
                 node.destroy_node()
     except (KeyboardInterrupt, ExternalShutdownException):

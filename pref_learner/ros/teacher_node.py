@@ -15,7 +15,6 @@ import threading
 import time
 
 import numpy as np
-import rclpy
 from rclpy.node import Node
 from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
@@ -24,7 +23,7 @@ from std_msgs.msg import Bool
 from ..learner import Learner, LearnerConfig
 from ..safety import allow_network_requested, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
-from .common import declare_feature_modules, declare_read_only, joint_state
+from .common import declare_feature_modules, declare_read_only, joint_state, run_node
 
 
 class TeacherNode(Node):
@@ -109,21 +108,7 @@ def main(args=None):
     if refusal:
         print(f'simulated_teacher: {refusal}', flush=True)
         raise SystemExit(2)
-    from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
-    try:
-        with rclpy.init(args=args):
-            try:
-                node = TeacherNode()
-            except ValueError as exc:
-                print(f'simulated_teacher: {exc}', flush=True)
-                raise SystemExit(2)
-            ex = SingleThreadedExecutor()
-            ex.add_node(node)
-            while rclpy.ok() and not node.finished.is_set():
-                ex.spin_once(timeout_sec=0.1)
-            node.destroy_node()
-    except (KeyboardInterrupt, ExternalShutdownException):
-        pass
+    run_node(TeacherNode, args, 'simulated_teacher', done=lambda n: n.finished.is_set())
 
 
 if __name__ == '__main__':
