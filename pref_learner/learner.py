@@ -255,9 +255,12 @@ class Learner:
 
     def history_diagnostics(self) -> List[dict]:
         """Per-demonstration set diagnostics and posterior checks, in order."""
-        if len(self._diagnostics) == len(self._demos) or self.store is None:
-            return list(self._diagnostics)
-        return [h['diagnostics'] for h in self.store.read_history()]
+        if len(self._diagnostics) != len(self._demos) and self.store is not None:
+            # a state loaded without replay: read the stored history once, not per status
+            n = len(self._demos)
+            stored = [h['diagnostics'] for h in self.store.read_history()][:n]
+            self._diagnostics = stored + [{}] * (n - len(stored))
+        return list(self._diagnostics)
 
     @property
     def names(self) -> Tuple[str, ...]:
