@@ -19,8 +19,6 @@ from typing import Callable, Dict, List
 
 import numpy as np
 
-TRUE = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
-
 
 def _median_ms(fn: Callable, reps: int) -> float:
     ts = []
@@ -39,13 +37,19 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     import pinocchio as pin
 
     from .demonstrations import Recorder, SegmentConfig
+    from .features import load_scenario
     from .learner import Learner, LearnerConfig
     from .posterior import ParticlePosterior, PosteriorConfig
     from .sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
     # a person on the learner's waypoint count, so paths enter choice_set as they are
-    teacher = SimulatedTeacher(L, TRUE, TeacherConfig(n_waypoints=0))
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'],
+                               TeacherConfig(n_waypoints=0))
+    from .validate import scenario_correlation
+    sc = scenario_correlation(L)
+    out['feature_max_abs_correlation'] = sc['feature_max_abs_correlation']
+    out['scenario_tasks'] = sc['n_tasks']
     n_sets = 8 if quick else 12
     sets, qs = [], []
     for k in range(n_sets):

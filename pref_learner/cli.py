@@ -25,8 +25,6 @@ import numpy as np
 
 from .safety import CAUTION, SIMULATED_JOINT_STATES
 
-DEFAULT_TRUE_WEIGHTS = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
-
 
 class CliError(Exception):
     """A user-facing error: printed as one line, exit code 2."""
@@ -78,6 +76,24 @@ def demo_commands(args, state: Path, bag: Path, truth: np.ndarray):
     return learner_cmd, teacher_cmd
 
 
+def _demo_truth(args) -> np.ndarray:
+    """Return the simulated person's unit weights: given, or the scenario's example."""
+    from .features import FeatureConfigError, load_scenario
+    if args.true_weights is not None:
+        truth = np.asarray(args.true_weights, dtype=np.float64)
+    else:
+        try:
+            truth = load_scenario()['example_preference']
+        except (OSError, FeatureConfigError) as exc:
+            raise CliError(f'--true-weights not given and the scenario cannot give them: {exc}')
+        if truth is None:
+            raise CliError('--true-weights not given and the feature file has no '
+                           'scenario.example_preference')
+    if not np.all(np.isfinite(truth)) or not np.linalg.norm(truth) > 0:
+        raise CliError(f'--true-weights must be finite and not all zero, got {truth.tolist()}')
+    return truth / np.linalg.norm(truth)
+
+
 def cmd_demo(args) -> int:
     env = _ros_env(args.allow_network)
     out = Path(args.out).resolve()
@@ -85,8 +101,7 @@ def cmd_demo(args) -> int:
     state = out / f'state-{stamp}'
     bag = out / f'session-{stamp}'
     out.mkdir(parents=True, exist_ok=True)
-    truth = np.asarray(args.true_weights, dtype=np.float64)
-    truth = truth / np.linalg.norm(truth)
+    truth = _demo_truth(args)
     learner_cmd, teacher_cmd = demo_commands(args, state, bag, truth)
     print(f'pref-learner demo: a simulated person ({args.person} chooser, beta '
           f'{args.person_beta}) '
@@ -323,7 +338,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument('--person-beta', type=float, default=5.0,
                    help="the simulated person's rationality (the learner does not know it)")
     d.add_argument('--demonstrations', type=int, default=8)
-    d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
+    d.add_argument('--true-weights', type=float, nargs='+', default=None,
+                   help="the simulated person's weights in feature order (default: the "
+                   "scenario's example_preference)")
     d.add_argument('--allow-network', action='store_true',
                    help='keep your ROS_AUTOMATIC_DISCOVERY_RANGE / ROS_STATIC_PEERS instead of '
                    'forcing loopback (the simulated person then publishes onto that network)')

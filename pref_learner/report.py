@@ -27,6 +27,11 @@ from .store import StateStore
 COLOURS = {'boltzmann': '#1f77b4', 'less': '#d62728'}
 
 
+#: Largest pooled within-set |correlation| at which two features' weights are
+#: taken as separable (the shipped scenario is designed to stay below it).
+SEPARABLE_R = 0.6
+
+
 def _plt():
     import matplotlib
     matplotlib.use('Agg')
@@ -179,6 +184,19 @@ def estimate_status_values(summary, option_labels, diagnostics) -> Dict[str, str
     return out
 
 
+def separation_note(names, sets) -> str:
+    """One sentence on how well a session's choice sets separate the features."""
+    from .alternatives import pooled_within_set_correlation, strongest_pair
+    if not sets:
+        return 'No choice sets yet: nothing to say about how well features are told apart.'
+    r, a, b = strongest_pair(pooled_within_set_correlation(sets), names)
+    verdict = ('every pair can be told apart' if r <= SEPARABLE_R else
+               f'the weights of {a} and {b} are hard to tell apart: demonstrate tasks where '
+               'they differ')
+    return (f'Feature separation in this session\'s choice sets: largest within-set |r| '
+            f'{r:.2f} ({a}, {b}); {verdict} (|r| <= {SEPARABLE_R}).')
+
+
 def _table(names, summaries: Dict[str, dict]) -> str:
     head = '<tr><th>feature</th>' + ''.join(
         f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'
@@ -235,6 +253,7 @@ def write_report(state_dir, out_dir) -> Path:
                                 st['manifest'].get('option_models') or [],
                                 [h['diagnostics'] for h in st['history']])
     notes_html = ''.join(f'<li>{html.escape(x)}</li>' for x in notes)
+    sep_html = separation_note(names, [r.features for r in first.records])
     meta = {m: {'ess': f'{s["ess"]:.0f}', 'concentration': f'{s["concentration"]:.4f}',
                 'demonstrations': s['n_demonstrations']} for m, s in sums.items()}
     imgs = ''.join(f'<h2>{html.escape(t)}</h2><img src="{f}" alt="{html.escape(t)}">'
@@ -255,6 +274,7 @@ Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
 {_table(names, sums)}
 <h2>Rationality, option model and checks</h2>
 <ul id="notes">{notes_html}</ul>
+<p id="separation">{html.escape(sep_html)}</p>
 {imgs}
 <h2>Demonstrations in their sets</h2>
 <table id="density"><tr><th>demonstration</th><th>density / median</th><th>region</th>

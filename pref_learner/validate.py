@@ -42,6 +42,27 @@ def _plt():
 
 
 # ---------------------------------------------------------------- study 1
+def scenario_correlation(learner, m: int = 300, seed: int = 0) -> dict:
+    """How well the scenario's choice sets separate the features.
+
+    Draws a choice set of ``m`` alternatives for every task of the learner's
+    scenario, exactly as a demonstration of that task would get (sampler,
+    re-timing, conditioning, fixed scales), and returns the pooled within-set
+    correlation matrix, its largest absolute off-diagonal entry
+    (``feature_max_abs_correlation``) and that pair of features.
+    """
+    from .alternatives import pooled_within_set_correlation, strongest_pair
+    rng = np.random.default_rng(seed)
+    sets = []
+    for _, start, goal in learner.tasks():
+        alts, _ = learner.sampler.sample(start, goal, rng, m=m)
+        sets.append(learner.features(learner.condition(learner.retime(alts))))
+    corr = pooled_within_set_correlation(sets)
+    r, a, b = strongest_pair(corr, learner.names)
+    return {'names': list(learner.names), 'correlation': corr.tolist(), 'n_tasks': len(sets),
+            'feature_max_abs_correlation': r, 'pair': [a, b]}
+
+
 def study_duplicates(k_max: int = 8, jitter: float = 1e-3, seed: int = 0) -> dict:
     rng = np.random.default_rng(seed)
     theta = np.array([1.0, 1.0]) / math.sqrt(2.0)
@@ -164,9 +185,10 @@ def study_arm_people(n_truths=8, n_demos=10, n_seeds=3, n_particles=2000, n_alte
 
 def study_set_robustness(n_sets=10, n_demos=8, n_particles=2000, n_alternatives=300,
                          seed=0) -> dict:
+    from .features import load_scenario
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
-    truth = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+    truth = load_scenario()['example_preference']
     # only records the demonstrations (one alternative, one option level)
     rec = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,)))
     teacher = SimulatedTeacher(rec, truth, TeacherConfig(model='less', seed=seed + 7))

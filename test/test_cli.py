@@ -75,9 +75,9 @@ def test_demo_learns_and_records(demo_run):
     # does not know); quality over many people is the calibration study's (bench calib_*)
     assert res['cosine']['less'] >= 0.8
     assert 'rationality (beta), less' in r.stdout and 'posterior predictive check' in r.stdout
-    assert 'tube_height' in r.stdout and 'session bag' in r.stdout
+    assert 'heat_zone_travel' in r.stdout and 'session bag' in r.stdout
     # the caution on the screen with the weights table, and at the learner node's start
-    table = r.stdout.index('tube_height')
+    table = r.stdout.index('heat_zone_travel')
     assert 0 <= r.stdout.rfind(CAUTION, 0, table)
     assert f'[pref_learner]: {CAUTION}' in r.stderr
 

@@ -15,8 +15,9 @@ from pref_learner.posterior import ParticlePosterior
 from pref_learner.report import write_report
 from pref_learner.safety import CAUTION
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 
 
 @pytest.fixture(scope='module')

@@ -20,6 +20,7 @@ from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
 
+from ..features import load_scenario
 from ..learner import Learner, LearnerConfig
 from ..safety import allow_network_requested, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
@@ -32,7 +33,8 @@ class TeacherNode(Node):
     def __init__(self, **kwargs):
         super().__init__('simulated_teacher', **kwargs)
         p = {
-            'true_weights': ([0.3, 0.5, 0.3, -0.6, -0.2, -0.4], 'the person\'s true weights'),
+            'true_weights': ([0.0], 'the person\'s true weights in feature order; all zero: '
+                             'the feature file\'s scenario.example_preference'),
             'model': ('less', 'how the person chooses: boltzmann or less'),
             'beta': (5.0, 'the person\'s rationality'),
             'n_demonstrations': (8, 'demonstrations to give'),
@@ -57,8 +59,14 @@ class TeacherNode(Node):
         self.learner = Learner(LearnerConfig(features=g('features'), n_particles=1,
                                              n_alternatives=1,
                                              calibration_seed=g('calibration_seed')))
+        truth = np.asarray(g('true_weights'), dtype=np.float64)
+        if not np.any(truth):
+            truth = load_scenario(g('features') or None)['example_preference']
+            if truth is None:
+                raise ValueError('true_weights not given and the feature file has no '
+                                 'scenario.example_preference')
         self.teacher = SimulatedTeacher(
-            self.learner, g('true_weights'),
+            self.learner, truth,
             TeacherConfig(model=g('model'), beta=g('beta'), seed=g('seed'), rate=g('rate'),
                           duration=g('duration')))
         self.js_pub = self.create_publisher(
