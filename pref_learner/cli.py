@@ -212,7 +212,8 @@ def cmd_learn(args) -> int:
 # ---------------------------------------------------------------- bench
 def cmd_bench(args) -> int:
     from .bench import run_benchmarks
-    res = run_benchmarks(quick=args.quick, parts=args.only or None)
+    res = run_benchmarks(quick=args.quick, parts=args.only or None,
+                         out_dir=Path(args.json).parent if args.json else None)
     text = json.dumps(res, indent=1, sort_keys=True)
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)

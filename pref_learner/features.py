@@ -46,6 +46,10 @@ line's ``--feature-module`` or a node's ``feature_modules`` parameter) or one
 an installed package declares under the entry-point group
 ``pref_learner.feature_types``; otherwise the type is refused before any import.
 
+Smooth surrogates (for the planner only; :meth:`FeatureSet.values_and_gradients`
+with ``temperatures``): soft min/max by log-sum-exp, distances and path-length
+segments rounded off at zero; every other evaluation is exact.
+
 Scaling: the reward uses features divided by one fixed positive scale per
 feature for the whole session (given, or calibrated once from smooth
 trajectories over the scenario's tasks and stored with the state), never
@@ -268,8 +272,22 @@ def _unit(v, where, key) -> np.ndarray:
 
 
 # ---------------------------------------------------------------- waypoint values
-def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
-    """Values g (..., T) and gradients dg/dpos (..., T, 3), dg/daxis (..., T, 3) or None."""
+def _norm(d: np.ndarray, temperature: float = 0.0):
+    """Euclidean norm of ``d (..., 3)`` and its unit direction.
+
+    ``temperature t > 0`` gives the smooth ``sqrt(|d|^2 + t^2)`` instead, within
+    ``t`` of ``|d|``, so that a distance has no cone point at zero.
+    """
+    r = np.sqrt(np.sum(d * d, axis=-1) + temperature * temperature)
+    return r, d / np.maximum(r, 1e-12)[..., None]
+
+
+def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray,
+                    temperature: float = 0.0):
+    """Values g (..., T) and gradients dg/dpos (..., T, 3), dg/daxis (..., T, 3) or None.
+
+    ``temperature > 0`` smooths the distance types at zero distance (:func:`_norm`).
+    """
     p = spec.params
     t = spec.type
     if t == 'height':
@@ -279,16 +297,16 @@ def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
         d = pos - p['point']
         if p['horizontal']:
             d = d * np.array([1.0, 1.0, 0.0])
-        g = np.linalg.norm(d, axis=-1)
-        return g, d / np.maximum(g, 1e-12)[..., None], None
+        g, u = _norm(d, temperature)
+        return g, u, None
     if t == 'capsule_distance':
         a, b = p['a'], p['b']
         ab = b - a
         L2 = float(ab @ ab)
         s = np.clip(((pos - a) @ ab) / L2, 0.0, 1.0) if L2 > 0 else np.zeros(pos.shape[:-1])
         d = pos - (a + s[..., None] * ab)
-        r = np.linalg.norm(d, axis=-1)
-        return r - p['radius'], d / np.maximum(r, 1e-12)[..., None], None
+        r, u = _norm(d, temperature)
+        return r - p['radius'], u, None
     if t == 'tilt':
         k = 'xyz'.index(p['axis'])
         axis = rot[..., :, k]
@@ -329,20 +347,20 @@ def _soft_box(pos: np.ndarray, lo: np.ndarray, hi: np.ndarray, s: float):
     return g, g[..., None] * (((1.0 - a) - (1.0 - b)) / s)
 
 
-def _path_value(spec: FeatureSpec, pos: np.ndarray, grad: bool):
+def _path_value(spec: FeatureSpec, pos: np.ndarray, grad: bool, temperature: float = 0.0):
     """Value (B,) of a path type of the frame positions ``pos (B, T, 3)``, and dvalue/dpos.
 
     The gradient (B, T, 3) is None unless ``grad``. One implementation serves
-    feature evaluation and the planner's gradients.
+    feature evaluation and the planner's gradients. ``temperature > 0`` smooths
+    each of the ``T - 1`` segments of ``path_length`` to
+    ``sqrt(l^2 + (t / (T - 1))^2)``; ``approach_offset`` is smooth already.
     """
     p, t = spec.params, spec.type
     T = pos.shape[-2]
     dpos = np.zeros(pos.shape) if grad else None
     if t == 'path_length':
-        seg = np.diff(pos, axis=-2)
-        ln = np.linalg.norm(seg, axis=-1)
+        ln, u = _norm(np.diff(pos, axis=-2), temperature / (T - 1))
         if grad:
-            u = seg / np.maximum(ln, 1e-12)[..., None]
             dpos[..., 1:, :] += u
             dpos[..., :-1, :] -= u
         return ln.sum(axis=-1), dpos
@@ -368,14 +386,37 @@ def _path_value(spec: FeatureSpec, pos: np.ndarray, grad: bool):
     raise AssertionError(t)
 
 
-def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray):
+def soft_extreme(g: np.ndarray, temperature: float, largest: bool = True):
+    """Log-sum-exp soft maximum (or soft minimum) of ``g (..., T)`` over its last axis.
+
+    Returns the value ``(...,)`` and its gradient ``(..., T)`` (softmax
+    weights: non-negative, summing to one). With temperature ``t > 0`` in
+    the units of ``g``, the soft maximum ``t log sum_i exp(g_i / t)`` lies in
+    ``[max g, max g + t log T]`` and the soft minimum
+    ``-t log sum_i exp(-g_i / t)`` in ``[min g - t log T, min g]``; both are
+    smooth and tend to the exact extreme as ``t -> 0``.
+    """
+    s = g if largest else -g
+    m = s.max(axis=-1, keepdims=True)
+    e = np.exp((s - m) / temperature)
+    z = e.sum(axis=-1, keepdims=True)
+    val = m[..., 0] + temperature * np.log(z[..., 0])
+    return (val if largest else -val), e / z
+
+
+def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray, temperature: float = 0.0):
     """Aggregate g (..., T) -> (...,) with weights dA/dg (..., T).
 
     For ``integral`` also the derivative with respect to positions (..., T, 3).
+    ``temperature > 0`` replaces ``min``/``max`` by their smooth log-sum-exp
+    surrogates (:func:`soft_extreme`); 0 keeps the exact extreme.
     """
     T = g.shape[-1]
     if agg == 'mean':
         return g.mean(axis=-1), np.full(g.shape, 1.0 / T), None
+    if agg in ('min', 'max') and temperature > 0:
+        val, w = soft_extreme(g, temperature, agg == 'max')
+        return val, w, None
     if agg in ('min', 'max'):
         idx = np.argmin(g, axis=-1) if agg == 'min' else np.argmax(g, axis=-1)
         val = np.take_along_axis(g, idx[..., None], axis=-1)[..., 0]
@@ -529,21 +570,29 @@ class FeatureSet:
         """
         return self.value_and_gradient(q)[1]
 
-    def value_and_gradient(self, q: np.ndarray):
+    def value_and_gradient(self, q: np.ndarray, temperatures=None):
         """Compute raw features ``(d,)`` and gradients ``(d, T, n)`` of one trajectory.
 
         One kinematics pass serves both (see :meth:`values_and_gradients`).
         """
         q = np.asarray(q, dtype=np.float64)
-        vals, grads = self.values_and_gradients(q[None])
+        vals, grads = self.values_and_gradients(q[None], temperatures)
         return vals[0], grads[0]
 
-    def values_and_gradients(self, q: np.ndarray):
+    def values_and_gradients(self, q: np.ndarray, temperatures=None):
         """Raw features ``(B, d)`` and gradients ``(B, d, T, n)`` of trajectories ``(B, T, n)``.
 
         Analytic: waypoint values through the frame Jacobians, chained through
         each aggregate (min and max use the subgradient at the extreme
         waypoint); one batched kinematics pass serves every trajectory.
+        ``temperatures (d,)``, each in its feature's units, give smooth
+        surrogates where an entry is > 0, values and gradients alike: a
+        ``min``/``max`` aggregate becomes the log-sum-exp soft extreme
+        (:func:`soft_extreme`), the distance of ``point_distance`` and
+        ``capsule_distance`` becomes ``sqrt(r^2 + t^2)`` and each of the
+        ``T - 1`` segments of ``path_length`` ``sqrt(l^2 + (t / (T - 1))^2)``
+        (no cone point at zero; within ``t`` of the exact value); other
+        features ignore their entry. None: exact features.
         """
         q = np.asarray(q, dtype=np.float64)
         B, T, n = q.shape
@@ -575,12 +624,13 @@ class FeatureSet:
             k = poses.index(s.frame)
             pos, rot = poses.positions[:, :, k], poses.rotations[:, :, k]
             Jp, Jr = jp[:, :, k], jr[:, :, k]                 # (B, T, 3, n)
+            temp = 0.0 if temperatures is None else float(temperatures[j])
             if s.type in PATH_TYPES:
-                vals[:, j], dpos = _path_value(s, pos, grad=True)
+                vals[:, j], dpos = _path_value(s, pos, grad=True, temperature=temp)
                 grads[:, j] = np.einsum('bti,btin->btn', dpos, Jp)
                 continue
-            g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot)
-            vals[:, j], w, dpos_agg = _aggregate(s.aggregate, g, pos)
+            g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot, temp)
+            vals[:, j], w, dpos_agg = _aggregate(s.aggregate, g, pos, temp)
             total = np.zeros((B, T, n))
             if dg_dpos is not None:
                 total += w[..., None] * np.einsum('bti,btin->btn', dg_dpos, Jp)
