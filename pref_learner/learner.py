@@ -489,10 +489,23 @@ class Learner:
         the posterior as it stands before this demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        alts, groups = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo,
-                                           weights=self._weight_source)
-        allq = self.condition(np.concatenate([q_demo[None], self.retime(alts)]))
+        alts, groups = self.task_alternatives(q_demo[0], q_demo[-1], rng, demo=q_demo)
+        allq = self.condition(np.concatenate([q_demo[None], alts]))
         return allq, self.features(allq), np.concatenate([[-1], groups])
+
+    def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
+                          demo: Optional[np.ndarray] = None, m: Optional[int] = None):
+        """Draw the alternatives a demonstration from ``start`` to ``goal`` is compared with.
+
+        Returns retimed (not yet conditioned) trajectories ``(M, T, n)`` and
+        their option levels ``(M,)``: the one construction of every choice
+        set (:meth:`choice_set`) and of the sets that score a task before it
+        is demonstrated (:mod:`pref_learner.guidance`, ``demo=None``); ``m``
+        overrides the number of alternatives.
+        """
+        alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m,
+                                           weights=self._weight_source)
+        return self.retime(alts), groups
 
     def process(self, demo: Demonstration) -> StepResult:
         """Learn from one accepted demonstration (stored first, then the posterior).
