@@ -231,3 +231,31 @@ def test_task_guide_scores_the_scenario_tasks_with_cached_sets():
     np.testing.assert_array_equal(TaskGuide(L).options(*tasks[0]).features, first.features)
     # a user task under another name reuses the set of the same start and goal
     assert guide.options('mine', tasks[0][1], tasks[0][2]).name == 'mine'
+
+
+def test_realised_information_is_the_kl_divergence_and_averages_to_the_gain():
+    # Lindley (1956): the information a result c gives is KL(p(theta | c) || p(theta)), and
+    # its expectation over the predictive p(c) is the mutual information. Reference KL:
+    # scipy.stats.entropy(posterior, prior) on the enumerated grid.
+    from pref_learner.learner import _information
+    from pref_learner.posterior import ChoiceRecord
+    rng = np.random.default_rng(12)
+    ang = np.linspace(0, 2 * math.pi, 20, endpoint=False)
+    theta = np.stack([np.cos(ang), np.sin(ang)], 1)
+    log_w = rng.normal(0, 1.0, len(theta))
+    prior = np.exp(log_w - logsumexp(log_w))
+    x = rng.normal(0, 1, (4, 2))
+    post = _posterior(theta, log_w, beta=2.5)
+    probs = _reference_probs(x, theta, np.full(len(theta), 2.5), 'boltzmann')
+    pc = prior @ probs
+    avg = 0.0
+    for c in range(len(x)):
+        got = _information({'boltzmann': post}, {'boltzmann': ChoiceRecord.build(x, c)}, x,
+                           np.zeros(len(x), dtype=np.int64))
+        after = prior * probs[:, c] / pc[c]
+        assert got['information_gain']['boltzmann'] == pytest.approx(entropy(after, prior),
+                                                                     rel=1e-10)
+        assert got['expected_gain']['boltzmann'] == pytest.approx(
+            _enumerated_mi(prior, probs), rel=1e-10)
+        avg += pc[c] * got['information_gain']['boltzmann']
+    assert avg == pytest.approx(_enumerated_mi(prior, probs), rel=1e-10)
