@@ -1,6 +1,6 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""``pref-learner``: the command line (demo, learn, bench).
+"""``pref-learner``: the command line (demo, watch, learn, bench, ...).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
 The demo keeps DDS discovery on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST,
@@ -146,6 +146,12 @@ def cmd_demo(args) -> int:
         raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
                        'reached the learner')
     return 0
+
+
+# ---------------------------------------------------------------- watch
+def cmd_watch(args) -> int:
+    from .ros.watch import watch
+    return watch(args.namespace, args.duration)
 
 
 # ---------------------------------------------------------------- learn
@@ -328,6 +334,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help='keep your ROS_AUTOMATIC_DISCOVERY_RANGE / ROS_STATIC_PEERS instead of '
                    'forcing loopback (the simulated person then publishes onto that network)')
     d.set_defaults(func=cmd_demo)
+
+    w = sub.add_parser('watch', help='follow a running learner node in the terminal (only '
+                       'subscribes)')
+    w.add_argument('--namespace', default='/pref_learner',
+                   help="the learner node's namespace and name (default /pref_learner)")
+    w.add_argument('--duration', type=float, default=None,
+                   help='stop after this many seconds (default: until Ctrl-C)')
+    w.set_defaults(func=cmd_watch)
 
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
     lrn.add_argument('bag')
