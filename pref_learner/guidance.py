@@ -131,7 +131,7 @@ def _particles(posterior: ParticlePosterior, max_particles: Optional[int],
 def information_gain(posterior: ParticlePosterior, options: TaskOptions,
                      max_particles: Optional[int] = None,
                      rng: Optional[np.random.Generator] = None) -> float:
-    """Expected information gain (nats) of demonstrating the task of ``options``.
+    """Return the expected information gain (nats) of demonstrating the task of ``options``.
 
     ``sum_g P(g) I(c; theta, beta | g)`` over option levels g (one level: the
     mutual information of the module docstring). ``max_particles`` thins the

@@ -154,7 +154,7 @@ class LearnerConfig:
 
 
 def _information(before: Dict[str, ParticlePosterior], records, features, groups) -> dict:
-    """What a demonstration was expected to tell and what it told (nats, per model).
+    """Return what a demonstration was expected to tell and what it told (nats, per model).
 
     ``expected_gain``: the expected information gain of its task's set under
     the posterior before it (:func:`pref_learner.guidance.information_gain`);
