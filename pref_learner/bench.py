@@ -133,6 +133,41 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     return out
 
 
+def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
+    """Time to score 20 candidate tasks (N 4,000, M 500) and the guided-teaching study.
+
+    ``next_task_ms``: median over repetitions of scoring 20 tasks (the
+    scenario's and random in-limit ones) after two demonstrations, with
+    every task's option set already built (the node builds each once and
+    reuses it); ``next_task_first_ms`` includes building the 20 sets.
+    The study runs at the smaller sizes of ``validate.GUIDANCE_SIZES``.
+    """
+    from .features import load_scenario
+    from .guidance import TaskGuide
+    from .learner import Learner, LearnerConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    from .validate import GUIDANCE_SIZES, study_guidance
+    out: Dict[str, float] = {}
+    L = Learner(LearnerConfig(model='less'))
+    SimulatedTeacher(L, load_scenario()['example_preference'],
+                     TeacherConfig()).feed_session(L, 2)
+    tasks = list(L.tasks())[:20]
+    qs = L.robot.random_configurations(2 * (20 - len(tasks)), np.random.default_rng(5),
+                                       margin=0.2)
+    tasks += [(f'random_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(20 - len(tasks))]
+    guide = TaskGuide(L)
+    t = time.perf_counter()
+    guide.score(tasks)
+    out['next_task_first_ms'] = (time.perf_counter() - t) * 1e3
+    out['next_task_ms'] = _median_ms(lambda: guide.score(tasks), 3 if quick else 9)
+    t = time.perf_counter()
+    r = study_guidance(n_truths=8 if quick else 24, n_demos=10,
+                       n_jobs=min(2, os.cpu_count() or 1), **GUIDANCE_SIZES)
+    out.update(r['figures'])
+    out['guidance_study_wall_s'] = time.perf_counter() - t
+    return out
+
+
 def demo_benchmark(quick: bool = False) -> Dict[str, float]:
     import tempfile
     t = time.perf_counter()
@@ -149,7 +184,7 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
     """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
-    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration']
+    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'guidance']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
     if 'core' in parts:
         res.update(core_benchmarks(quick))
@@ -163,7 +198,7 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
         res.update(demo_benchmark(quick))
     if 'validate' in parts:
         from .validate import run_studies
-        figs = run_studies(quick=True, out_dir=None)['figures']
+        figs = run_studies(quick=True, out_dir=None, guidance=False)['figures']
         res.update({k: v for k, v in figs.items() if not k.startswith(('calib_', 'sbc_'))})
     if 'calibration' in parts:
         from .validate import calibration_figures, study_calibration, study_sbc
@@ -172,4 +207,6 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
                                   n_jobs=min(2, os.cpu_count() or 1))
         res.update(calibration_figures(calib, study_sbc(n_runs=60 if quick else 200)))
         res['calibration_wall_s'] = time.perf_counter() - t
+    if 'guidance' in parts:
+        res.update(guidance_benchmarks(quick))
     return res

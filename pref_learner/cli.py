@@ -1,6 +1,6 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""``pref-learner``: the command line (demo, learn, bench).
+"""``pref-learner``: the command line (demo, watch, learn, bench, ...).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
 The demo keeps DDS discovery on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST,
@@ -72,6 +72,7 @@ def demo_commands(args, state: Path, bag: Path, truth: np.ndarray):
                    '-p', f'n_demonstrations:={args.demonstrations}',
                    '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
                    '-p', f'allow_network:={str(args.allow_network).lower()}',
+                   '-p', f'follow_proposals:={str(args.guided).lower()}',
                    '--log-level', 'warn']
     return learner_cmd, teacher_cmd
 
@@ -105,7 +106,8 @@ def cmd_demo(args) -> int:
     learner_cmd, teacher_cmd = demo_commands(args, state, bag, truth)
     print(f'pref-learner demo: a simulated person ({args.person} chooser, beta '
           f'{args.person_beta}) '
-          f'teaches {args.demonstrations} tube transfers on the bench arm; '
+          f'teaches {args.demonstrations} tube transfers on the bench arm'
+          f'{" (the task the learner proposes each time)" if args.guided else ""}; '
           f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, '
           f'discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
     t0 = time.time()
@@ -139,13 +141,25 @@ def cmd_demo(args) -> int:
             s = sums[m]
             row += f'{s.mean[j]:16.2f}{"[" + f"{s.ci_low[j]:.2f}, {s.ci_high[j]:.2f}" + "]":>18}'
         print(row)
+    hist = final.history_diagnostics()
     result = {'wall_s': time.time() - t0, 'n_demonstrations': final.n_demonstrations,
+              'guided': bool(args.guided),
+              'information_gain': [h.get('information_gain', {}) for h in hist],
               'true_weights': truth.tolist(), 'feature_names': list(names),
               'cosine': {m: float(sums[m].mean @ truth) for m in final.config.models},
               'state_dir': str(state), 'bag': str(bag)}
     print()
+    from .guidance import unknown_lines
+    for m in final.config.models:
+        for line in unknown_lines(sums[m], names):
+            print(f'still unknown, {m}: {line}')
     for line in estimate_notes(final):
         print(line)
+    for m in final.config.models:
+        got = [h.get('information_gain', {}).get(m) for h in hist]
+        if got and None not in got:
+            print(f'information gained per demonstration, {m} (nats): '
+                  + ', '.join(f'{x:.2f}' for x in got))
     for m, c in result['cosine'].items():
         print(f'cosine(estimate, truth) {m}: {c:.3f}')
     print(f'demonstrations accepted: {final.n_demonstrations}; '
@@ -161,6 +175,12 @@ def cmd_demo(args) -> int:
         raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
                        'reached the learner')
     return 0
+
+
+# ---------------------------------------------------------------- watch
+def cmd_watch(args) -> int:
+    from .ros.watch import watch
+    return watch(args.namespace, args.duration)
 
 
 # ---------------------------------------------------------------- learn
@@ -342,10 +362,21 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument('--true-weights', type=float, nargs='+', default=None,
                    help="the simulated person's weights in feature order (default: the "
                    "scenario's example_preference)")
+    d.add_argument('--guided', action='store_true',
+                   help='the simulated person demonstrates the task the learner proposes '
+                   '(most informative next) instead of the scenario\'s tasks in turn')
     d.add_argument('--allow-network', action='store_true',
                    help='keep your ROS_AUTOMATIC_DISCOVERY_RANGE / ROS_STATIC_PEERS instead of '
                    'forcing loopback (the simulated person then publishes onto that network)')
     d.set_defaults(func=cmd_demo)
+
+    w = sub.add_parser('watch', help='follow a running learner node in the terminal (only '
+                       'subscribes)')
+    w.add_argument('--namespace', default='/pref_learner',
+                   help="the learner node's namespace and name (default /pref_learner)")
+    w.add_argument('--duration', type=float, default=None,
+                   help='stop after this many seconds (default: until Ctrl-C)')
+    w.set_defaults(func=cmd_watch)
 
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
     lrn.add_argument('bag')
@@ -380,7 +411,8 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument('--json', help='write the figures to this file')
     b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
     b.add_argument('--only', nargs='+',
-                   choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration'],
+                   choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration',
+                            'guidance'],
                    help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p

@@ -142,3 +142,25 @@ def test_readme_example_cell_is_the_shipped_file_and_learns():
     assert L.n_demonstrations == 8
     mean = L.summaries()['less'].mean
     assert float(mean @ truth) > 0.7
+
+
+def test_guidance_study_runs_paired_and_gives_finite_figures():
+    # Small and fast: checks the machinery, not the figures (those are the bench's keys
+    # guided_demos_to_cos90_ratio and guided_cosine_after5_gain at full size).
+    import math
+    r = validate.study_guidance(n_truths=2, n_demos=3, n_particles=200, n_alternatives=40)
+    rr, gd = r['round_robin']['runs'], r['guided']['runs']
+    assert len(rr) == len(gd) == 2
+    for a, b in zip(rr, gd):                 # paired: the same person in both arms
+        assert (a['variant'], a['person_beta']) == (b['variant'], b['person_beta'])
+        assert 1 <= a['demos_to_cos90'] <= 3 and 1 <= b['demos_to_cos90'] <= 3
+        assert all(-1.0 <= c <= 1.0 for c in a['cosine'] + b['cosine'])
+    from pref_learner.learner import Learner, LearnerConfig
+    names = [t[0] for t in validate.study_tasks(Learner(LearnerConfig(n_particles=1,
+                                                                      n_alternatives=1)))]
+    assert rr[0]['tasks'] == names[:3]       # round-robin takes the tasks in turn
+    # every guided choice is a study task, with a gain within [0, log M] (Cover & Thomas)
+    assert all(t in names for t in gd[0]['tasks'])
+    assert all(0.0 <= g <= math.log(40) for x in gd for g in x['expected_gain'])
+    assert [x['variant'] for x in rr] == ['matched', validate.MISMATCHED[0]]
+    assert all(math.isfinite(v) for v in r['figures'].values())
