@@ -8,7 +8,6 @@ import subprocess
 import sys
 import time
 
-import numpy as np
 import rclpy
 from rclpy.parameter import Parameter
 from std_srvs.srv import Trigger
