@@ -528,7 +528,7 @@ def _traced_plan(planner: TrajectoryPlanner, w, start, goal) -> Tuple[PlanResult
 
 def raw_waypoint_lbfgsb(planner: TrajectoryPlanner, w, start, goal, target: float,
                         max_iter: int) -> np.ndarray:
-    """The peer: scipy L-BFGS-B on the raw interior waypoints, exact objective, until ``target``.
+    """Run the peer: scipy L-BFGS-B on the raw interior waypoints, exact objective, to ``target``.
 
     Starts from the straight line with the joint limits as bounds (continuous
     joints within half a turn of the line) and scipy's own stopping tests off,

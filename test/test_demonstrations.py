@@ -141,11 +141,16 @@ def test_noisy_demo_is_not_a_jerk_outlier_after_shared_conditioning(arm):
     assert jerk.raw(cond_n)[0] == pytest.approx(jerk.raw(cond_c)[0], rel=0.15)
     alts = condition(AlternativeSampler(arm, 64).sample(task[1], task[2], rng)[0], w,
                      arm.lower, arm.upper)
+    ja, jd = jerk.raw(alts), jerk.raw(cond_n)[0]
+    # after the shared conditioning the noisy demonstration's jerk lies among the set's
+    # (its minimum-jerk timing has some jerk of its own; the unconditioned one was 100x off)
+    rank = float(np.mean(ja[:, 0] < jd))
+    assert 0.0 < rank < 0.5, rank
+    # and every feature of the conditioned demonstration stays well inside the set's span
+    # above its top (the straight line's approach offset may lie below every random
+    # path's: that is what a straight approach looks like)
     fa, fd = fs.raw(alts), fs.raw(cond_n)
-    # the demonstration is the straight line, the least deviating path: allow it to sit at
-    # the set's edge (5 % of the set's range), never far outside it
-    tol = 0.05 * (fa.max(0) - fa.min(0))
-    assert np.all(fd >= fa.min(0) - tol) and np.all(fd <= fa.max(0) + tol)
+    assert np.all(fd <= fa.max(0) + 0.05 * (fa.max(0) - fa.min(0)))
 
 
 @settings(max_examples=20, deadline=None)

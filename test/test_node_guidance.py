@@ -6,16 +6,17 @@ import json
 
 import numpy as np
 import rclpy
+import yaml
 from rclpy.parameter import Parameter
 from std_msgs.msg import Float64
 from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import MarkerArray
 
+from pref_learner.features import default_features_path, load_scenario
 from pref_learner.guidance import TaskGuide
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.learner_node import LearnerNode
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
-from pref_learner.features import load_scenario
 from ros_util import LATCHED, follow_status, ros_context, spin_until, spinning
 
 TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
@@ -35,11 +36,27 @@ def _trajectory(names, q, t=None, frame_id=''):
     return msg
 
 
-def test_node_proposes_a_task_after_a_demonstration_and_a_user_task_can_win():
+def _places():
+    """Return the shipped scenario's places (joint positions) by name."""
+    out = {}
+    for name, start, goal in load_scenario()['tasks']:
+        a, b = name.split('_to_')
+        out[a], out[b] = start, goal
+    return out
+
+
+def test_node_proposes_a_task_after_a_demonstration_and_a_user_task_can_win(tmp_path):
+    # The node runs a copy of the shipped scenario reduced to three short tasks, so
+    # that a task the user offers between the bench's other places can beat them all.
+    doc = yaml.safe_load(default_features_path().read_text())
+    keep = ('rack_a_to_rack_c', 'block_side_to_analyser', 'tray_right_to_analyser')
+    doc['scenario']['tasks'] = [t for t in doc['scenario']['tasks'] if t['name'] in keep]
+    feats = tmp_path / 'three_tasks.yaml'
+    feats.write_text(yaml.safe_dump(doc))
     with ros_context() as (ctx, ex):
         node = LearnerNode(context=ctx, parameter_overrides=[
             Parameter('n_particles', value=400), Parameter('n_alternatives', value=60),
-            Parameter('segmentation', value='manual')])
+            Parameter('segmentation', value='manual'), Parameter('features', value=str(feats))])
         client = rclpy.create_node('guidance_client', context=ctx)
         bg = spinning(node, ctx)
         bg.__enter__()
@@ -90,8 +107,9 @@ def test_node_proposes_a_task_after_a_demonstration_and_a_user_task_can_win():
         # same seeded sets: the node must agree with that computation.
         guide = TaskGuide(node.learner)
         top = guide.score(node.learner.tasks())[0].gain
-        qs = robot.random_configurations(40, np.random.default_rng(11), margin=0.2)
-        cands = [(f'probe_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(20)]
+        places = _places()
+        cands = [(f'{a}_to_{b}', places[a], places[b]) for a in places for b in places
+                 if a != b and f'{a}_to_{b}' not in keep]
         win = guide.score(cands)[0]
         assert win.gain > top, (win.gain, top)
         task_pub = client.create_publisher(JointTrajectory, '/pref_learner/candidate_tasks', 10)

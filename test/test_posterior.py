@@ -301,12 +301,14 @@ def test_tempered_update_of_a_sharp_demonstration_matches_quadrature(model):
 
 def test_option_levels_and_near_optimal_alternatives():
     # Near-optimal draws climb the reward of their weights (each ascent step is along a
-    # smoothed gradient), and every alternative carries its option level.
+    # smoothed gradient), and every alternative carries its option level. The weight is on
+    # a smooth feature (the quadratic slot approach offset), so fixed steps climb it.
     from pref_learner.alternatives import AlternativeSampler, SamplerConfig
     from pref_learner.learner import Learner, LearnerConfig
     L = Learner(LearnerConfig(n_particles=10, n_alternatives=50))
     _, start, goal = L.tasks()[0]
-    w = np.tile(np.array([1.0, 0, 0, 0, 0, 0]), (20, 1))
+    w = np.zeros((20, L.features.d))
+    w[:, L.features.names.index('slot_approach_offset')] = -1.0
     cfg = SamplerConfig(20, {'near_optimal': 1.0}, (0.08,), ascent_steps=0)
     flat = AlternativeSampler(L.robot, 64, cfg, n_features=6, ascent=L.reward_gradient)
     steep = AlternativeSampler(L.robot, 64, SamplerConfig(20, {'near_optimal': 1.0}, (0.08,)),
