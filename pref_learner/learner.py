@@ -413,9 +413,24 @@ class Learner:
         self.recorder.reconfigure(config.segment_config())
         self.config = config
 
-    def add_demonstration(self, demo: Demonstration) -> List[object]:
-        """Learn from a whole demonstration; returns [StepResult] or [Rejection]."""
+    def add_demonstration(self, demo: Demonstration,
+                          index: Optional[int] = None) -> List[object]:
+        """Learn from a whole demonstration; returns [StepResult] or [Rejection].
+
+        ``index``: the seed index to learn it with (a stored file's number, which
+        skips the slots of quarantined demonstrations); default the next one.
+        """
+        if index is not None:
+            if index < len(self._demos):
+                raise ValueError(f'seed index {index} is already taken (next free: '
+                                 f'{len(self._demos)})')
+            self._demos.extend([None] * (index - len(self._demos)))
         return self._handle([demo])
+
+    @property
+    def demonstrations(self) -> Tuple[Optional[Demonstration], ...]:
+        """Return the learned demonstrations by seed index (None in skipped slots)."""
+        return tuple(self._demos)
 
     def save(self) -> None:
         """Write the posterior(s) and manifest now (they are also written after each update)."""
