@@ -9,7 +9,9 @@ Tasks. Each participant is one task, :func:`analyse_participant`, a pure
 function of (session, settings, seed): it re-learns the session from its
 demonstrations with the study's settings (both choice models, the stored
 posterior is not used), then runs :mod:`compare`'s leave-one-out comparison
-and verdict. Nothing in a task depends on the process, the backend or the
+and verdict. A participant's seed derives from the study's seed and their
+name (:func:`participant_seed`), so different participants' alternative sets
+are drawn independently. Nothing in a task depends on the process, the backend or the
 worker count, so the tables are identical bit for bit however they were run.
 A bad session (corrupt bag, wrong robot, no accepted demonstration) becomes a
 failed participant with a reason; it never stops the study.
@@ -267,11 +269,13 @@ def load_settings(path) -> StudySettings:
     learner['joint_names'] = tuple(jn)
     if 'spreads' in learner:
         learner['spreads'] = tuple(float(s) for s in learner['spreads'])
-    for key in ('urdf', 'features'):       # paths relative to the parameters file
+    for key in ('urdf', 'features'):   # relative paths: to the parameters file, else here
         v = str(learner.get(key) or '')
-        if v and not v.lstrip().startswith('<') and not Path(v).is_absolute() \
-                and (path.parent / v).exists():
-            learner[key] = str((path.parent / v).resolve())
+        if v and not v.lstrip().startswith('<') and not Path(v).is_absolute():
+            for base in (path.parent, Path.cwd()):
+                if (base / v).exists():
+                    learner[key] = str((base / v).resolve())   # workers may run elsewhere
+                    break
     model = learner.pop('model', 'both')
     if model != 'both':
         notes.append(f'model: both choice models are estimated for every participant (the '
@@ -321,6 +325,18 @@ class ParticipantTask:
     leave_one_out: bool = True
     max_stamp_skew: float = 0.0
     feature_modules: Tuple[str, ...] = ()
+
+
+def participant_seed(study_seed: int, participant: str) -> int:
+    """Return a participant's seed: from the study's seed and the participant's name.
+
+    The first 4 bytes of SHA-256 of ``"<study_seed>/<participant>"``, so every
+    participant's alternative sets are drawn independently of the others',
+    whatever the order, number or backend of the tasks.
+    """
+    import hashlib
+    digest = hashlib.sha256(f'{int(study_seed)}/{participant}'.encode()).digest()
+    return int.from_bytes(digest[:4], 'little')
 
 
 def session_kind(path) -> str:
@@ -512,7 +528,7 @@ def _comparison(L, seed: int, rows: list) -> dict:
 
 def _failed(task: ParticipantTask, kind: str, reason: str, notes=(), rows=()) -> dict:
     return {'participant': task.participant, 'path': task.path, 'kind': kind,
-            'status': 'failed', 'reason': reason, 'notes': list(notes),
+            'seed': task.seed, 'status': 'failed', 'reason': reason, 'notes': list(notes),
             'n_accepted': 0, 'n_rejected': sum(r['status'] == 'rejected' for r in rows),
             'demonstrations': list(rows), 'estimates': {}, 'comparison': None,
             'feature_names': [], 'worker': _worker_info()}
@@ -556,7 +572,7 @@ def analyse_participant(task: ParticipantTask) -> dict:
             comp = {'verdict': 'too few demonstrations', 't': None, 'critical': None,
                     'difference': None, 'loo_total': {}}
         return {'participant': task.participant, 'path': task.path, 'kind': kind,
-                'status': 'ok', 'reason': '', 'notes': notes,
+                'seed': task.seed, 'status': 'ok', 'reason': '', 'notes': notes,
                 'n_accepted': L.n_demonstrations,
                 'n_rejected': sum(r['status'] == 'rejected' for r in rows),
                 'demonstrations': rows, 'estimates': est, 'comparison': comp,
@@ -647,7 +663,8 @@ def population_summary(directions: np.ndarray, participants: Sequence[str],
 # ================================================================ tables
 def _column_types(names: Sequence[str]):
     import pyarrow as pa
-    cols = [('participant', pa.string()), ('kind', pa.string()), ('status', pa.string()),
+    cols = [('participant', pa.string()), ('kind', pa.string()), ('seed', pa.int64()),
+            ('status', pa.string()),
             ('reason', pa.string()), ('n_accepted', pa.int64()), ('n_rejected', pa.int64()),
             ('n_atypical', pa.int64()), ('verdict', pa.string()), ('verdict_t', pa.float64()),
             ('verdict_critical', pa.float64()), ('loo_difference', pa.float64())]
@@ -670,7 +687,8 @@ def participant_table(results: Sequence[dict], names: Sequence[str], population:
     types = _column_types(names)
     data = {k: [] for k, _ in types}
     for r in results:
-        row = {'participant': r['participant'], 'kind': r['kind'], 'status': r['status'],
+        row = {'participant': r['participant'], 'kind': r['kind'], 'seed': r['seed'],
+               'status': r['status'],
                'reason': r['reason'], 'n_accepted': r['n_accepted'],
                'n_rejected': r['n_rejected'],
                'n_atypical': sum(bool(d.get('atypical')) for d in r['demonstrations']),
@@ -728,10 +746,12 @@ def _plt():
 
 
 def _save(fig, path) -> None:
-    """Save a figure with the caution line under it and in the PNG's Description."""
+    """Lay out and save a figure with the caution line under it and in the PNG's Description."""
     import textwrap
-    fig.text(0.01, 0.005, '\n'.join(textwrap.wrap(CAUTION, 150)), fontsize=6.5, va='bottom',
-             color='#a00')
+    width, height = fig.get_size_inches()
+    lines = textwrap.wrap(CAUTION, int(width * 17))
+    fig.text(0.01, 0.005, '\n'.join(lines), fontsize=6.5, va='bottom', color='#a00')
+    fig.tight_layout(rect=(0, (0.13 * len(lines) + 0.05) / height, 1, 1))
     fig.savefig(path, dpi=80, metadata={'Description': CAUTION})
     _plt().close(fig)
 
@@ -761,7 +781,6 @@ def _plot_weights(names, dirs: Dict[str, np.ndarray], path) -> None:
     ax.set_ylim(-1.05, 1.05)
     ax.set_title('participants\' estimated weights: 5-95 % (line), 25-75 % (bar), median')
     ax.legend(fontsize=8)
-    fig.tight_layout(rect=(0, 0.06, 1, 1))
     _save(fig, path)
 
 
@@ -791,20 +810,19 @@ def _plot_directions(dirs: Dict[str, np.ndarray], pops: dict, path) -> None:
         handles = [plt.Line2D([], [], marker='o', ls='', color=sc.cmap(sc.norm(g)),
                               label=f'group {g}') for g in sorted(set(labels))]
         ax.legend(handles=handles, fontsize=7)
-    fig.tight_layout(rect=(0, 0.07, 1, 1))
     _save(fig, path)
 
 
 def _plot_verdicts(counts: Dict[str, int], path) -> None:
     plt = _plt()
-    fig, ax = plt.subplots(figsize=(6, 3.4))
+    fig, ax = plt.subplots(figsize=(7, 3.6))
     keys = list(counts)
     ax.bar(range(len(keys)), [counts[k] for k in keys], color='0.5')
     ax.set_xticks(range(len(keys)))
     ax.set_xticklabels(keys, fontsize=8)
     ax.set_ylabel('participants')
-    ax.set_title('which model explains each participant better (leave-one-out, paired t)')
-    fig.tight_layout(rect=(0, 0.1, 1, 1))
+    ax.set_title('verdicts: which model predicts each participant\'s held-out choices better',
+                 fontsize=10)
     _save(fig, path)
 
 
@@ -933,7 +951,8 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
     names = list(Learner(LearnerConfig(**dict(settings.learner, model='both',
                                               seed=settings.seed, n_particles=1,
                                               n_alternatives=1))).names)
-    tasks = [ParticipantTask(p, str(path.resolve()), dict(settings.learner), settings.seed,
+    tasks = [ParticipantTask(p, str(path.resolve()), dict(settings.learner),
+                             participant_seed(settings.seed, p),
                              settings.leave_one_out, settings.max_stamp_skew,
                              tuple(feature_modules)) for p, path in sessions]
     executor = make_executor(workers, scheduler)
@@ -957,8 +976,9 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
         counts[v] = counts.get(v, 0) + 1
     notes = [f'parameters: {settings.source}'] + list(settings.notes) + [
         'every session is re-learned from its demonstrations with these settings (a state '
-        'directory\'s stored posterior is not used); seed '
-        f'{settings.seed} for every participant']
+        'directory\'s stored posterior is not used); each participant\'s seed is derived '
+        f'from the study seed {settings.seed} and their name (column seed), so their '
+        'alternative sets are drawn independently']
     blas = sorted({r['worker']['blas_threads'] for r in results} - {'1'})
     if blas:
         notes.append(f'some workers ran with OPENBLAS_NUM_THREADS={blas}: results may differ '

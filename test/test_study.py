@@ -187,17 +187,31 @@ def test_bad_sessions_are_reported_per_participant(runs):
     assert len(demos[demos.status == 'accepted']) == N_DEMOS * len(good)
 
 
-def test_a_bag_and_a_state_directory_of_one_session_agree(runs):
+def test_a_bag_and_a_state_directory_of_one_session_agree(folder):
     # The bag path (segmentation of the recorded stream) must give the demonstrations the
-    # simulated teacher fed straight to a learner: the same estimates, bit for bit.
+    # simulated teacher fed straight to a learner: with one seed, the same results.
+    from pref_learner.study import ParticipantTask, analyse_participant
+    root, _ = folder
+    res = [analyse_participant(ParticipantTask(name, str(root / 'sessions' / name),
+                                               {'n_particles': 200, 'n_alternatives': 40},
+                                               seed=11))
+           for name in ('p03', 'p03_state')]
+    assert [r['kind'] for r in res] == ['bag', 'state_dir']
+    assert res[0]['estimates'] == res[1]['estimates'] and res[0]['estimates']
+    assert res[0]['comparison'] == res[1]['comparison']
+    assert [d['duration_s'] for d in res[0]['demonstrations']] == \
+        [d['duration_s'] for d in res[1]['demonstrations']]
+
+
+def test_each_participant_has_a_seed_of_their_own(runs):
+    # Reference: hashlib's SHA-256 of "<study seed>/<name>", first 4 bytes little-endian.
+    import hashlib
     root, *_ = runs
     t = pq.read_table(root / 'out_local' / 'participants.parquet').to_pandas()
-    t = t.set_index('participant')
-    cols = [c for c in t.columns if c.startswith(('less_', 'boltzmann_'))
-            and not c.endswith(('_group', '_stands_apart', '_cosine_to_population'))]
-    assert t.loc['p03', 'kind'] == 'bag' and t.loc['p03_state', 'kind'] == 'state_dir'
-    a = t.loc['p03', cols].to_numpy(np.float64)
-    np.testing.assert_array_equal(a, t.loc['p03_state', cols].to_numpy(np.float64))
+    for name, seed in zip(t.participant, t.seed):
+        h = hashlib.sha256(f'3/{name}'.encode()).digest()
+        assert seed == int.from_bytes(h[:4], 'little')
+    assert t.seed.nunique() == len(t)
 
 
 def test_verdicts_follow_a_paired_t_test_on_the_leave_one_out_scores(runs):
@@ -265,6 +279,14 @@ def test_parameters_files(tmp_path):
     s = load_settings(launch)                        # the node's own parameters file
     assert s.learner['n_particles'] == 4000 and s.learner['joint_names'] == ()
     assert any('record_bag' in n for n in s.notes)
+    from pref_learner.features import default_features_path
+    (tmp_path / 'sub').mkdir()
+    shutil.copy(default_features_path(), tmp_path / 'sub' / 'scenario.yaml')
+    (tmp_path / 'sub' / 'p.yaml').write_text('features: scenario.yaml\nmodel: less\n')
+    s = load_settings(tmp_path / 'sub' / 'p.yaml')    # relative to the parameters file
+    assert s.learner['features'] == str((tmp_path / 'sub' / 'scenario.yaml').resolve())
+    assert any(n.startswith('features: from the parameters file') for n in s.notes)
+    assert any(n.startswith('model: both choice models') for n in s.notes)
     bad = tmp_path / 'bad.yaml'
     bad.write_text('n_particle: 10\n')
     with pytest.raises(ValueError, match="'n_particle' is not a learner setting"):
