@@ -41,7 +41,7 @@ the learner derives it from a seed stored with each demonstration.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Callable, Dict, Optional, Tuple
+from typing import Callable, Dict, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -334,3 +334,29 @@ def set_diagnostics(features: np.ndarray, chosen: int, log_sim: Optional[np.ndar
     rel = float(np.exp(log_sim[chosen] - np.median(log_sim)))
     return {'percentiles': pct.tolist(), 'relative_density': rel, 'outside': outside,
             'sparse': bool(rel < sparse_ratio or outside), 'dense': bool(rel > 1.0 / sparse_ratio)}
+
+
+def pooled_within_set_correlation(sets: Sequence[np.ndarray]) -> np.ndarray:
+    """Correlation ``(d, d)`` between features, pooled within choice sets.
+
+    Each set ``(M_k, d)`` is centred on its own mean, the centred rows are
+    pooled and their Pearson correlation is returned: how strongly two features
+    move together among the options of one task, which is what decides whether
+    their weights can be told apart (differences across tasks do not count). A
+    feature that never varies within a set gets correlation 0 with the others.
+    """
+    x = np.concatenate([np.asarray(f, dtype=np.float64) - np.mean(f, axis=0) for f in sets])
+    cov = x.T @ x
+    sd = np.sqrt(np.diag(cov))
+    ok = sd > 1e-12 * max(float(sd.max()), 1e-300)
+    c = np.zeros_like(cov)
+    c[np.ix_(ok, ok)] = cov[np.ix_(ok, ok)] / np.outer(sd[ok], sd[ok])
+    np.fill_diagonal(c, 1.0)
+    return c
+
+
+def strongest_pair(corr: np.ndarray, names: Sequence[str]) -> Tuple[float, str, str]:
+    """Return the largest absolute off-diagonal correlation and its two feature names."""
+    off = np.abs(np.asarray(corr)) - np.eye(len(corr))
+    i, j = np.unravel_index(int(np.argmax(off)), off.shape)
+    return float(off[i, j]), names[min(i, j)], names[max(i, j)]

@@ -5,7 +5,9 @@
 Defaults of the learner (LearnerConfig): shipped 7-DoF arm, T = 64, d = 6, M = 500, N = 4,000.
 Node figures start a real learner node in a subprocess and talk to it over
 DDS on this machine. Nothing here is a pass/fail test; the figures are for
-people to read.
+people to read. With ``--json PATH`` the planner group also writes
+``plan_convergence.png`` next to it (exact cost against wall time and
+iterations, ours against L-BFGS-B on the raw waypoints).
 """
 
 from __future__ import annotations
@@ -18,8 +20,6 @@ import time
 from typing import Callable, Dict, List
 
 import numpy as np
-
-TRUE = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
 
 
 def _median_ms(fn: Callable, reps: int) -> float:
@@ -39,13 +39,19 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     import pinocchio as pin
 
     from .demonstrations import Recorder, SegmentConfig
+    from .features import load_scenario
     from .learner import Learner, LearnerConfig
     from .posterior import ParticlePosterior, PosteriorConfig
     from .sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
     # a person on the learner's waypoint count, so paths enter choice_set as they are
-    teacher = SimulatedTeacher(L, TRUE, TeacherConfig(n_waypoints=0))
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'],
+                               TeacherConfig(n_waypoints=0))
+    from .validate import scenario_correlation
+    sc = scenario_correlation(L)
+    out['feature_max_abs_correlation'] = sc['feature_max_abs_correlation']
+    out['scenario_tasks'] = sc['n_tasks']
     n_sets = 8 if quick else 12
     sets, qs = [], []
     for k in range(n_sets):
@@ -127,6 +133,41 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     return out
 
 
+def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
+    """Time to score 20 candidate tasks (N 4,000, M 500) and the guided-teaching study.
+
+    ``next_task_ms``: median over repetitions of scoring 20 tasks (the
+    scenario's and random in-limit ones) after two demonstrations, with
+    every task's option set already built (the node builds each once and
+    reuses it); ``next_task_first_ms`` includes building the 20 sets.
+    The study runs at the smaller sizes of ``validate.GUIDANCE_SIZES``.
+    """
+    from .features import load_scenario
+    from .guidance import TaskGuide
+    from .learner import Learner, LearnerConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    from .validate import GUIDANCE_SIZES, study_guidance
+    out: Dict[str, float] = {}
+    L = Learner(LearnerConfig(model='less'))
+    SimulatedTeacher(L, load_scenario()['example_preference'],
+                     TeacherConfig()).feed_session(L, 2)
+    tasks = list(L.tasks())[:20]
+    qs = L.robot.random_configurations(2 * (20 - len(tasks)), np.random.default_rng(5),
+                                       margin=0.2)
+    tasks += [(f'random_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(20 - len(tasks))]
+    guide = TaskGuide(L)
+    t = time.perf_counter()
+    guide.score(tasks)
+    out['next_task_first_ms'] = (time.perf_counter() - t) * 1e3
+    out['next_task_ms'] = _median_ms(lambda: guide.score(tasks), 3 if quick else 9)
+    t = time.perf_counter()
+    r = study_guidance(n_truths=8 if quick else 24, n_demos=10,
+                       n_jobs=min(2, os.cpu_count() or 1), **GUIDANCE_SIZES)
+    out.update(r['figures'])
+    out['guidance_study_wall_s'] = time.perf_counter() - t
+    return out
+
+
 def demo_benchmark(quick: bool = False) -> Dict[str, float]:
     import tempfile
     t = time.perf_counter()
@@ -160,7 +201,7 @@ def simulated_study_folder(folder, n_per_kind: int = 8, n_demonstrations: int = 
         kind = 'bag' if i % 4 == 3 else 'state_dir'
         write_simulated_session(folder / f'p{i:02d}', truth, n_demonstrations,
                                 TeacherConfig(seed=100 + i, beta=10.0), kind=kind,
-                                learner=base if kind == 'bag' else None)
+                                learner=base)
         truths.append(truth)
     return truths
 
@@ -206,16 +247,19 @@ def study_benchmark(quick: bool = False) -> Dict[str, float]:
     return out
 
 
-def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, float]:
+def run_benchmarks(quick: bool = False, parts: List[str] = None,
+                   out_dir=None) -> Dict[str, float]:
+    """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
-    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'study']
+    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'guidance',
+                      'study']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
     if 'core' in parts:
         res.update(core_benchmarks(quick))
     if 'planner' in parts:
         from .planner import plan_benchmark
-        res.update(plan_benchmark(quick))
+        res.update(plan_benchmark(quick, out_dir))
     if 'node' in parts:
         from .ros.bench_node import node_benchmarks
         res.update(node_benchmarks(quick))
@@ -223,7 +267,7 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, fl
         res.update(demo_benchmark(quick))
     if 'validate' in parts:
         from .validate import run_studies
-        figs = run_studies(quick=True, out_dir=None)['figures']
+        figs = run_studies(quick=True, out_dir=None, guidance=False)['figures']
         res.update({k: v for k, v in figs.items() if not k.startswith(('calib_', 'sbc_'))})
     if 'calibration' in parts:
         from .validate import calibration_figures, study_calibration, study_sbc
@@ -232,6 +276,8 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None) -> Dict[str, fl
                                   n_jobs=min(2, os.cpu_count() or 1))
         res.update(calibration_figures(calib, study_sbc(n_runs=60 if quick else 200)))
         res['calibration_wall_s'] = time.perf_counter() - t
+    if 'guidance' in parts:
+        res.update(guidance_benchmarks(quick))
     if 'study' in parts:
         res.update(study_benchmark(quick))
     return res

@@ -1,6 +1,6 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""``pref-learner``: the command line (demo, learn, report, compare, study, validate, bench).
+"""``pref-learner``: the command line (demo, watch, learn, report, compare, study, ...).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
 The demo keeps DDS discovery on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST,
@@ -24,8 +24,6 @@ from pathlib import Path
 import numpy as np
 
 from .safety import CAUTION, SIMULATED_JOINT_STATES
-
-DEFAULT_TRUE_WEIGHTS = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
 
 
 class CliError(Exception):
@@ -74,8 +72,27 @@ def demo_commands(args, state: Path, bag: Path, truth: np.ndarray):
                    '-p', f'n_demonstrations:={args.demonstrations}',
                    '-p', f'seed:={args.seed + 1}', '-p', 'start_delay:=4.0',
                    '-p', f'allow_network:={str(args.allow_network).lower()}',
+                   '-p', f'follow_proposals:={str(args.guided).lower()}',
                    '--log-level', 'warn']
     return learner_cmd, teacher_cmd
+
+
+def _demo_truth(args) -> np.ndarray:
+    """Return the simulated person's unit weights: given, or the scenario's example."""
+    from .features import FeatureConfigError, load_scenario
+    if args.true_weights is not None:
+        truth = np.asarray(args.true_weights, dtype=np.float64)
+    else:
+        try:
+            truth = load_scenario()['example_preference']
+        except (OSError, FeatureConfigError) as exc:
+            raise CliError(f'--true-weights not given and the scenario cannot give them: {exc}')
+        if truth is None:
+            raise CliError('--true-weights not given and the feature file has no '
+                           'scenario.example_preference')
+    if not np.all(np.isfinite(truth)) or not np.linalg.norm(truth) > 0:
+        raise CliError(f'--true-weights must be finite and not all zero, got {truth.tolist()}')
+    return truth / np.linalg.norm(truth)
 
 
 def cmd_demo(args) -> int:
@@ -85,12 +102,12 @@ def cmd_demo(args) -> int:
     state = out / f'state-{stamp}'
     bag = out / f'session-{stamp}'
     out.mkdir(parents=True, exist_ok=True)
-    truth = np.asarray(args.true_weights, dtype=np.float64)
-    truth = truth / np.linalg.norm(truth)
+    truth = _demo_truth(args)
     learner_cmd, teacher_cmd = demo_commands(args, state, bag, truth)
     print(f'pref-learner demo: a simulated person ({args.person} chooser, beta '
           f'{args.person_beta}) '
-          f'teaches {args.demonstrations} tube transfers on the bench arm; '
+          f'teaches {args.demonstrations} tube transfers on the bench arm'
+          f'{" (the task the learner proposes each time)" if args.guided else ""}; '
           f'ROS_DOMAIN_ID={env["ROS_DOMAIN_ID"]}, '
           f'discovery {env["ROS_AUTOMATIC_DISCOVERY_RANGE"]}')
     t0 = time.time()
@@ -124,13 +141,25 @@ def cmd_demo(args) -> int:
             s = sums[m]
             row += f'{s.mean[j]:16.2f}{"[" + f"{s.ci_low[j]:.2f}, {s.ci_high[j]:.2f}" + "]":>18}'
         print(row)
+    hist = final.history_diagnostics()
     result = {'wall_s': time.time() - t0, 'n_demonstrations': final.n_demonstrations,
+              'guided': bool(args.guided),
+              'information_gain': [h.get('information_gain', {}) for h in hist],
               'true_weights': truth.tolist(), 'feature_names': list(names),
               'cosine': {m: float(sums[m].mean @ truth) for m in final.config.models},
               'state_dir': str(state), 'bag': str(bag)}
     print()
+    from .guidance import unknown_lines
+    for m in final.config.models:
+        for line in unknown_lines(sums[m], names):
+            print(f'still unknown, {m}: {line}')
     for line in estimate_notes(final):
         print(line)
+    for m in final.config.models:
+        got = [h.get('information_gain', {}).get(m) for h in hist]
+        if got and None not in got:
+            print(f'information gained per demonstration, {m} (nats): '
+                  + ', '.join(f'{x:.2f}' for x in got))
     for m, c in result['cosine'].items():
         print(f'cosine(estimate, truth) {m}: {c:.3f}')
     print(f'demonstrations accepted: {final.n_demonstrations}; '
@@ -146,6 +175,12 @@ def cmd_demo(args) -> int:
         raise CliError(f'only {final.n_demonstrations} of {args.demonstrations} demonstrations '
                        'reached the learner')
     return 0
+
+
+# ---------------------------------------------------------------- watch
+def cmd_watch(args) -> int:
+    from .ros.watch import watch
+    return watch(args.namespace, args.duration)
 
 
 # ---------------------------------------------------------------- learn
@@ -197,7 +232,8 @@ def cmd_learn(args) -> int:
 # ---------------------------------------------------------------- bench
 def cmd_bench(args) -> int:
     from .bench import run_benchmarks
-    res = run_benchmarks(quick=args.quick, parts=args.only or None)
+    res = run_benchmarks(quick=args.quick, parts=args.only or None,
+                         out_dir=Path(args.json).parent if args.json else None)
     text = json.dumps(res, indent=1, sort_keys=True)
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)
@@ -356,11 +392,24 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument('--person-beta', type=float, default=5.0,
                    help="the simulated person's rationality (the learner does not know it)")
     d.add_argument('--demonstrations', type=int, default=8)
-    d.add_argument('--true-weights', type=float, nargs='+', default=list(DEFAULT_TRUE_WEIGHTS))
+    d.add_argument('--true-weights', type=float, nargs='+', default=None,
+                   help="the simulated person's weights in feature order (default: the "
+                   "scenario's example_preference)")
+    d.add_argument('--guided', action='store_true',
+                   help='the simulated person demonstrates the task the learner proposes '
+                   '(most informative next) instead of the scenario\'s tasks in turn')
     d.add_argument('--allow-network', action='store_true',
                    help='keep your ROS_AUTOMATIC_DISCOVERY_RANGE / ROS_STATIC_PEERS instead of '
                    'forcing loopback (the simulated person then publishes onto that network)')
     d.set_defaults(func=cmd_demo)
+
+    w = sub.add_parser('watch', help='follow a running learner node in the terminal (only '
+                       'subscribes)')
+    w.add_argument('--namespace', default='/pref_learner',
+                   help="the learner node's namespace and name (default /pref_learner)")
+    w.add_argument('--duration', type=float, default=None,
+                   help='stop after this many seconds (default: until Ctrl-C)')
+    w.set_defaults(func=cmd_watch)
 
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
     lrn.add_argument('bag')
@@ -408,7 +457,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
     b.add_argument('--only', nargs='+',
                    choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration',
-                            'study'],
+                            'guidance', 'study'],
                    help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p

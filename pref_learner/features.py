@@ -46,6 +46,10 @@ line's ``--feature-module`` or a node's ``feature_modules`` parameter) or one
 an installed package declares under the entry-point group
 ``pref_learner.feature_types``; otherwise the type is refused before any import.
 
+Smooth surrogates (for the planner only; :meth:`FeatureSet.values_and_gradients`
+with ``temperatures``): soft min/max by log-sum-exp, distances and path-length
+segments rounded off at zero; every other evaluation is exact.
+
 Scaling: the reward uses features divided by one fixed positive scale per
 feature for the whole session (given, or calibrated once from smooth
 trajectories over the scenario's tasks and stored with the state), never
@@ -67,8 +71,13 @@ from scipy.special import expit
 
 from .robot import RobotModel
 
-WAYPOINT_TYPES = ('height', 'point_distance', 'capsule_distance', 'tilt', 'in_box')
-TRAJECTORY_TYPES = ('path_length', 'effort', 'jerk')
+WAYPOINT_TYPES = ('height', 'point_distance', 'capsule_distance', 'tilt', 'in_box',
+                  'in_cylinder')
+TRAJECTORY_TYPES = ('path_length', 'effort', 'jerk', 'approach_offset')
+#: Types computed from joint positions alone (no frame).
+JOINT_TYPES = ('effort', 'jerk')
+#: Types computed from the whole path of a frame.
+PATH_TYPES = ('path_length', 'approach_offset')
 AGGREGATES = ('mean', 'min', 'max', 'integral')
 _PARAMS = {
     'height': {'point': [0.0, 0.0, 0.0], 'normal': [0.0, 0.0, 1.0]},
@@ -76,7 +85,10 @@ _PARAMS = {
     'capsule_distance': {'a': None, 'b': None, 'radius': None},
     'tilt': {'axis': 'z'},
     'in_box': {'min': None, 'max': None, 'softness': 0.005},
+    'in_cylinder': {'base': None, 'axis': [0.0, 0.0, 1.0], 'radius': None, 'height': None,
+                    'softness': 0.005},
     'path_length': {}, 'effort': {}, 'jerk': {},
+    'approach_offset': {'axis': [0.0, 0.0, 1.0], 'fraction': 0.2, 'ends': 'both'},
 }
 _SPEC_KEYS = ('name', 'type', 'frame', 'aggregate', 'params')
 _NAME_RE = re.compile(r'^[a-z][a-z0-9_]*$')
@@ -184,7 +196,7 @@ def _parse_spec(raw, i: int, source: str, robot: RobotModel) -> FeatureSpec:
         params = merged
         _check_params(ftype, params, where)
     frame = raw.get('frame', robot.tool_frame)
-    if ftype not in ('effort', 'jerk'):
+    if ftype not in JOINT_TYPES:
         if not isinstance(frame, str) or not robot.model.existFrame(frame):
             raise FeatureConfigError(
                 f'{where}: frame {frame!r} is not a frame of {robot.source}; frames: '
@@ -226,15 +238,56 @@ def _check_params(ftype, p, where):
         hi = _vec3(p['max'], where, 'max')
         if np.any(hi <= lo):
             raise FeatureConfigError(f'{where}: params.max must exceed params.min on every axis')
-        s = p['softness']
-        if not isinstance(s, (int, float)) or not s > 0:
-            raise FeatureConfigError(f'{where}: params.softness must be > 0, got {s!r}')
-        p['min'], p['max'], p['softness'] = lo, hi, float(s)
+        p['min'], p['max'] = lo, hi
+        p['softness'] = _positive(p['softness'], where, 'softness')
+    elif ftype == 'in_cylinder':
+        p['base'] = _vec3(p['base'], where, 'base')
+        p['axis'] = _unit(p['axis'], where, 'axis')
+        for key in ('radius', 'height', 'softness'):
+            p[key] = _positive(p[key], where, key)
+    elif ftype == 'approach_offset':
+        p['axis'] = _unit(p['axis'], where, 'axis')
+        f = p['fraction']
+        if isinstance(f, bool) or not isinstance(f, (int, float)) or not 0 < f <= 0.5:
+            raise FeatureConfigError(f'{where}: params.fraction must be a number in (0, 0.5], '
+                                     f'got {f!r}')
+        p['fraction'] = float(f)
+        if p['ends'] not in ('start', 'goal', 'both'):
+            raise FeatureConfigError(f'{where}: params.ends must be start, goal or both, '
+                                     f'got {p["ends"]!r}')
+
+
+def _positive(v, where, key) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+        raise FeatureConfigError(f'{where}: params.{key} must be a number > 0, got {v!r}')
+    return float(v)
+
+
+def _unit(v, where, key) -> np.ndarray:
+    a = _vec3(v, where, key)
+    n = np.linalg.norm(a)
+    if n == 0:
+        raise FeatureConfigError(f'{where}: params.{key} must be non-zero')
+    return a / n
 
 
 # ---------------------------------------------------------------- waypoint values
-def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
-    """Values g (..., T) and gradients dg/dpos (..., T, 3), dg/daxis (..., T, 3) or None."""
+def _norm(d: np.ndarray, temperature: float = 0.0):
+    """Euclidean norm of ``d (..., 3)`` and its unit direction.
+
+    ``temperature t > 0`` gives the smooth ``sqrt(|d|^2 + t^2)`` instead, within
+    ``t`` of ``|d|``, so that a distance has no cone point at zero.
+    """
+    r = np.sqrt(np.sum(d * d, axis=-1) + temperature * temperature)
+    return r, d / np.maximum(r, 1e-12)[..., None]
+
+
+def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray,
+                    temperature: float = 0.0):
+    """Values g (..., T) and gradients dg/dpos (..., T, 3), dg/daxis (..., T, 3) or None.
+
+    ``temperature > 0`` smooths the distance types at zero distance (:func:`_norm`).
+    """
     p = spec.params
     t = spec.type
     if t == 'height':
@@ -244,16 +297,16 @@ def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
         d = pos - p['point']
         if p['horizontal']:
             d = d * np.array([1.0, 1.0, 0.0])
-        g = np.linalg.norm(d, axis=-1)
-        return g, d / np.maximum(g, 1e-12)[..., None], None
+        g, u = _norm(d, temperature)
+        return g, u, None
     if t == 'capsule_distance':
         a, b = p['a'], p['b']
         ab = b - a
         L2 = float(ab @ ab)
         s = np.clip(((pos - a) @ ab) / L2, 0.0, 1.0) if L2 > 0 else np.zeros(pos.shape[:-1])
         d = pos - (a + s[..., None] * ab)
-        r = np.linalg.norm(d, axis=-1)
-        return r - p['radius'], d / np.maximum(r, 1e-12)[..., None], None
+        r, u = _norm(d, temperature)
+        return r - p['radius'], u, None
     if t == 'tilt':
         k = 'xyz'.index(p['axis'])
         axis = rot[..., :, k]
@@ -262,25 +315,108 @@ def _waypoint_value(spec: FeatureSpec, pos: np.ndarray, rot: np.ndarray):
         ga[..., 2] = -2.0 * axis[..., 2]
         return g, None, ga
     if t == 'in_box':
-        s = p['softness']
-        lo = expit((pos - p['min']) / s)
-        hi = expit((p['max'] - pos) / s)
-        f = lo * hi
-        g = np.prod(f, axis=-1)
-        # d f_i / d x_i = f_i * ((1 - lo_i) - (1 - hi_i)) / s
-        dlog = ((1.0 - lo) - (1.0 - hi)) / s
-        return g, g[..., None] * dlog, None
+        g, dg = _soft_box(pos, p['min'], p['max'], p['softness'])
+        return g, dg, None
+    if t == 'in_cylinder':
+        s, ax = p['softness'], p['axis']
+        r = pos - p['base']
+        z = r @ ax
+        radial = r - z[..., None] * ax
+        rho = np.linalg.norm(radial, axis=-1)
+        a1 = expit((p['radius'] - rho) / s)
+        a2 = expit(z / s)
+        a3 = expit((p['height'] - z) / s)
+        g = a1 * a2 * a3
+        # d log g = -(1 - a1)/s d rho + ((1 - a2) - (1 - a3))/s dz
+        dg = g[..., None] * (-((1.0 - a1) / s)[..., None] * radial
+                             / np.maximum(rho, 1e-12)[..., None]
+                             + (((1.0 - a2) - (1.0 - a3)) / s)[..., None] * ax)
+        return g, dg, None
     raise AssertionError(t)
 
 
-def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray):
+def _soft_box(pos: np.ndarray, lo: np.ndarray, hi: np.ndarray, s: float):
+    """Smoothed indicator of an axis-aligned box (..., T) and its gradient (..., T, 3).
+
+    The product over axes of ``sigmoid((x - lo)/s) * sigmoid((hi - x)/s)``.
+    """
+    a = expit((pos - lo) / s)
+    b = expit((hi - pos) / s)
+    g = np.prod(a * b, axis=-1)
+    # d log(a_i b_i) / d x_i = ((1 - a_i) - (1 - b_i)) / s
+    return g, g[..., None] * (((1.0 - a) - (1.0 - b)) / s)
+
+
+def _path_value(spec: FeatureSpec, pos: np.ndarray, grad: bool, temperature: float = 0.0):
+    """Value (B,) of a path type of the frame positions ``pos (B, T, 3)``, and dvalue/dpos.
+
+    The gradient (B, T, 3) is None unless ``grad``. One implementation serves
+    feature evaluation and the planner's gradients. ``temperature > 0`` smooths
+    each of the ``T - 1`` segments of ``path_length`` to
+    ``sqrt(l^2 + (t / (T - 1))^2)``; ``approach_offset`` is smooth already.
+    """
+    p, t = spec.params, spec.type
+    T = pos.shape[-2]
+    dpos = np.zeros(pos.shape) if grad else None
+    if t == 'path_length':
+        ln, u = _norm(np.diff(pos, axis=-2), temperature / (T - 1))
+        if grad:
+            dpos[..., 1:, :] += u
+            dpos[..., :-1, :] -= u
+        return ln.sum(axis=-1), dpos
+    if t == 'approach_offset':
+        # mean squared distance from the line through the end point along the axis, over
+        # the K waypoints next to each chosen end
+        a = p['axis']
+        k = max(1, int(round(p['fraction'] * (T - 1))))
+        ends = {'start': (0,), 'goal': (T - 1,), 'both': (0, T - 1)}[p['ends']]
+        val = np.zeros(pos.shape[:-2])
+        for e in ends:
+            idx = slice(1, 1 + k) if e == 0 else slice(T - 1 - k, T - 1)
+            r = pos[..., idx, :] - pos[..., e:e + 1, :]
+            off = r - (r @ a)[..., None] * a
+            val += np.sum(off * off, axis=(-2, -1))
+            if grad:
+                dpos[..., idx, :] += 2.0 * off
+                dpos[..., e, :] -= 2.0 * off.sum(axis=-2)
+        n = k * len(ends)
+        if grad:
+            dpos /= n
+        return val / n, dpos
+    raise AssertionError(t)
+
+
+def soft_extreme(g: np.ndarray, temperature: float, largest: bool = True):
+    """Log-sum-exp soft maximum (or soft minimum) of ``g (..., T)`` over its last axis.
+
+    Returns the value ``(...,)`` and its gradient ``(..., T)`` (softmax
+    weights: non-negative, summing to one). With temperature ``t > 0`` in
+    the units of ``g``, the soft maximum ``t log sum_i exp(g_i / t)`` lies in
+    ``[max g, max g + t log T]`` and the soft minimum
+    ``-t log sum_i exp(-g_i / t)`` in ``[min g - t log T, min g]``; both are
+    smooth and tend to the exact extreme as ``t -> 0``.
+    """
+    s = g if largest else -g
+    m = s.max(axis=-1, keepdims=True)
+    e = np.exp((s - m) / temperature)
+    z = e.sum(axis=-1, keepdims=True)
+    val = m[..., 0] + temperature * np.log(z[..., 0])
+    return (val if largest else -val), e / z
+
+
+def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray, temperature: float = 0.0):
     """Aggregate g (..., T) -> (...,) with weights dA/dg (..., T).
 
     For ``integral`` also the derivative with respect to positions (..., T, 3).
+    ``temperature > 0`` replaces ``min``/``max`` by their smooth log-sum-exp
+    surrogates (:func:`soft_extreme`); 0 keeps the exact extreme.
     """
     T = g.shape[-1]
     if agg == 'mean':
         return g.mean(axis=-1), np.full(g.shape, 1.0 / T), None
+    if agg in ('min', 'max') and temperature > 0:
+        val, w = soft_extreme(g, temperature, agg == 'max')
+        return val, w, None
     if agg in ('min', 'max'):
         idx = np.argmin(g, axis=-1) if agg == 'min' else np.argmax(g, axis=-1)
         val = np.take_along_axis(g, idx[..., None], axis=-1)[..., 0]
@@ -333,7 +469,7 @@ class FeatureSet:
         self.names = tuple(names)
         self.source = source
         self.frames = tuple(dict.fromkeys(s.frame for s in specs
-                                          if s.type not in ('effort', 'jerk')))
+                                          if s.type not in JOINT_TYPES))
         self.scales = None
         if scales is not None:
             self.scales = self._check_scales(scales)
@@ -392,7 +528,7 @@ class FeatureSet:
         out = np.empty((q.shape[0], self.d))
         T = q.shape[1]
         for j, s in enumerate(self.specs):
-            if s.type in ('effort', 'jerk'):
+            if s.type in JOINT_TYPES:
                 order = 1 if s.type == 'effort' else 3
                 if T <= order:
                     raise ValueError(f'feature {s.name}: needs T > {order} waypoints')
@@ -409,8 +545,8 @@ class FeatureSet:
                     raise ValueError(f'feature {s.name}: user function returned shape {v.shape}, '
                                      f'expected ({q.shape[0]},)')
                 out[:, j] = v
-            elif s.type == 'path_length':
-                out[:, j] = np.linalg.norm(np.diff(pos, axis=1), axis=-1).sum(axis=1)
+            elif s.type in PATH_TYPES:
+                out[:, j] = _path_value(s, pos, grad=False)[0]
             else:
                 g, _, _ = _waypoint_value(s, pos, rot)
                 out[:, j] = _aggregate(s.aggregate, g, pos)[0]
@@ -434,21 +570,29 @@ class FeatureSet:
         """
         return self.value_and_gradient(q)[1]
 
-    def value_and_gradient(self, q: np.ndarray):
+    def value_and_gradient(self, q: np.ndarray, temperatures=None):
         """Compute raw features ``(d,)`` and gradients ``(d, T, n)`` of one trajectory.
 
         One kinematics pass serves both (see :meth:`values_and_gradients`).
         """
         q = np.asarray(q, dtype=np.float64)
-        vals, grads = self.values_and_gradients(q[None])
+        vals, grads = self.values_and_gradients(q[None], temperatures)
         return vals[0], grads[0]
 
-    def values_and_gradients(self, q: np.ndarray):
+    def values_and_gradients(self, q: np.ndarray, temperatures=None):
         """Raw features ``(B, d)`` and gradients ``(B, d, T, n)`` of trajectories ``(B, T, n)``.
 
         Analytic: waypoint values through the frame Jacobians, chained through
         each aggregate (min and max use the subgradient at the extreme
         waypoint); one batched kinematics pass serves every trajectory.
+        ``temperatures (d,)``, each in its feature's units, give smooth
+        surrogates where an entry is > 0, values and gradients alike: a
+        ``min``/``max`` aggregate becomes the log-sum-exp soft extreme
+        (:func:`soft_extreme`), the distance of ``point_distance`` and
+        ``capsule_distance`` becomes ``sqrt(r^2 + t^2)`` and each of the
+        ``T - 1`` segments of ``path_length`` ``sqrt(l^2 + (t / (T - 1))^2)``
+        (no cone point at zero; within ``t`` of the exact value); other
+        features ignore their entry. None: exact features.
         """
         q = np.asarray(q, dtype=np.float64)
         B, T, n = q.shape
@@ -469,7 +613,7 @@ class FeatureSet:
                 for b in range(B):
                     grads[b, j] = gfun(q[b], s.params)
                 continue
-            if s.type in ('effort', 'jerk'):
+            if s.type in JOINT_TYPES:
                 order = 1 if s.type == 'effort' else 3
                 h = 1.0 / (T - 1)
                 D = _diff_matrix(T, order) / h ** order
@@ -480,18 +624,13 @@ class FeatureSet:
             k = poses.index(s.frame)
             pos, rot = poses.positions[:, :, k], poses.rotations[:, :, k]
             Jp, Jr = jp[:, :, k], jr[:, :, k]                 # (B, T, 3, n)
-            if s.type == 'path_length':
-                seg = np.diff(pos, axis=1)
-                ln = np.linalg.norm(seg, axis=-1)
-                vals[:, j] = ln.sum(axis=1)
-                u = seg / np.maximum(ln, 1e-12)[..., None]
-                dpos = np.zeros((B, T, 3))
-                dpos[:, 1:] += u
-                dpos[:, :-1] -= u
+            temp = 0.0 if temperatures is None else float(temperatures[j])
+            if s.type in PATH_TYPES:
+                vals[:, j], dpos = _path_value(s, pos, grad=True, temperature=temp)
                 grads[:, j] = np.einsum('bti,btin->btn', dpos, Jp)
                 continue
-            g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot)
-            vals[:, j], w, dpos_agg = _aggregate(s.aggregate, g, pos)
+            g, dg_dpos, dg_daxis = _waypoint_value(s, pos, rot, temp)
+            vals[:, j], w, dpos_agg = _aggregate(s.aggregate, g, pos, temp)
             total = np.zeros((B, T, n))
             if dg_dpos is not None:
                 total += w[..., None] * np.einsum('bti,btin->btn', dg_dpos, Jp)
@@ -522,7 +661,13 @@ def default_features_path() -> Path:
 
 
 def load_scenario(path=None) -> dict:
-    """Read the ``scenario`` block of a feature YAML (tasks: start/goal pairs)."""
+    """Read the ``scenario`` block of a feature YAML.
+
+    Returns ``tasks`` (name, start, goal) pairs, ``duration`` of a simulated
+    demonstration, and ``example_preference``: the simulated person's weights
+    in feature order, or None when the file gives none. The example preference
+    is a mapping from feature name to weight and must name every feature.
+    """
     path = Path(path) if path else default_features_path()
     doc = yaml.safe_load(path.read_text())
     sc = doc.get('scenario') or {}
@@ -534,4 +679,21 @@ def load_scenario(path=None) -> dict:
         except (KeyError, TypeError):
             raise FeatureConfigError(f'{path}: scenario.tasks[{i}] needs name, start and goal') \
                 from None
-    return {'tasks': out, 'duration': float(sc.get('duration', 3.0))}
+    pref = sc.get('example_preference')
+    weights = None
+    if pref is not None:
+        names = [f.get('name') for f in doc.get('features') or [] if isinstance(f, dict)]
+        if not isinstance(pref, dict) or set(pref) != set(names):
+            raise FeatureConfigError(
+                f'{path}: scenario.example_preference must map every feature {names} to a '
+                f'weight, got {pref!r}')
+        try:
+            weights = np.array([float(pref[n]) for n in names])
+        except (TypeError, ValueError):
+            raise FeatureConfigError(f'{path}: scenario.example_preference weights must be '
+                                     f'numbers, got {pref!r}') from None
+        if not np.all(np.isfinite(weights)) or not np.any(weights):
+            raise FeatureConfigError(f'{path}: scenario.example_preference must be finite '
+                                     'and not all zero')
+    return {'tasks': out, 'duration': float(sc.get('duration', 3.0)),
+            'example_preference': weights}

@@ -153,6 +153,30 @@ class LearnerConfig:
         return hashlib.sha256(json.dumps(d, sort_keys=True).encode()).hexdigest()[:16]
 
 
+def _information(before: Dict[str, ParticlePosterior], records, features, groups) -> dict:
+    """Return what a demonstration was expected to tell and what it told (nats, per model).
+
+    ``expected_gain``: the expected information gain of its task's set under
+    the posterior before it (:func:`pref_learner.guidance.information_gain`);
+    ``information_gain``: the information it gave, the Kullback-Leibler
+    divergence of the reweighted from the previous particles,
+    ``sum_i w'_i log(w'_i / w_i)`` with ``w' ~ w x likelihood`` (whose
+    expectation over the predictive choice is the expected gain).
+    """
+    from .guidance import TaskOptions, information_gain, option_records
+    from .posterior import log_normalise
+    exp_gain, got = {}, {}
+    for m, post in before.items():
+        recs = option_records(features, groups, post.config.n_levels, post.config.bandwidth)
+        opts = TaskOptions('', np.zeros(0), np.zeros(0), features, groups, recs)
+        exp_gain[m] = information_gain(post, opts)
+        ll = post.record_loglik(records[m], post.theta, post.beta, post.level)
+        lw = log_normalise(post.log_weights)
+        new = log_normalise(lw + ll)
+        got[m] = float(np.exp(new) @ (new - lw))
+    return {'expected_gain': exp_gain, 'information_gain': got}
+
+
 @dataclass
 class StepResult:
     """What processing one demonstration produced."""
@@ -168,11 +192,14 @@ class StepResult:
 class Learner:
     """The pipeline (see module docstring)."""
 
-    def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None):
+    def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None,
+                 scales=None):
         """Build the pipeline.
 
         ``on_estimate(StepResult)`` is called as soon as a demonstration has been
         weighed in, before the (slower) rejuvenation moves; the node publishes there.
+        ``scales``: the feature scales to use (d,), instead of the feature file's or a
+        calibration (a state directory's stored scales still take precedence).
         """
         self.config = config
         self.on_estimate = on_estimate
@@ -181,7 +208,9 @@ class Learner:
                                 tool_frame=config.tool_frame, clamp=config.clamp)
         fpath = config.features or str(default_features_path())
         fs = FeatureSet.from_yaml(fpath, self.robot)
-        if fs.scales is None:
+        if scales is not None:
+            fs = fs.with_scales(scales)
+        elif fs.scales is None:
             fs = fs.with_scales(self._calibrate(fs))
         self.features = fs
         if config.mix_planner > 0:
@@ -504,10 +533,23 @@ class Learner:
         the posterior as it stands before this demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        alts, groups = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo,
-                                           weights=self._weight_source)
-        allq = self.condition(np.concatenate([q_demo[None], self.retime(alts)]))
+        alts, groups = self.task_alternatives(q_demo[0], q_demo[-1], rng, demo=q_demo)
+        allq = self.condition(np.concatenate([q_demo[None], alts]))
         return allq, self.features(allq), np.concatenate([[-1], groups])
+
+    def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
+                          demo: Optional[np.ndarray] = None, m: Optional[int] = None):
+        """Draw the alternatives a demonstration from ``start`` to ``goal`` is compared with.
+
+        Returns retimed (not yet conditioned) trajectories ``(M, T, n)`` and
+        their option levels ``(M,)``: the one construction of every choice
+        set (:meth:`choice_set`) and of the sets that score a task before it
+        is demonstrated (:mod:`pref_learner.guidance`, ``demo=None``); ``m``
+        overrides the number of alternatives.
+        """
+        alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m,
+                                           weights=self._weight_source)
+        return self.retime(alts), groups
 
     def process(self, demo: Demonstration) -> StepResult:
         """Learn from one accepted demonstration (stored first, then the posterior).
@@ -578,11 +620,12 @@ class Learner:
         index = len(self._demos)
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats, groups = self.choice_set(q, index)
-        new, infos, rngs, ppc = {}, {}, {}, {}
+        new, infos, rngs, ppc, recs = {}, {}, {}, {}, {}
+        before = dict(self.posteriors)
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
-            rec = post.prepare(feats, 0, groups)
+            rec = recs[m] = post.prepare(feats, 0, groups)
             ppc[m] = post.predictive_pvalue(rec)
             new[m], infos[m] = post.update(rec, rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
@@ -598,6 +641,7 @@ class Learner:
                          time.perf_counter() - t0, diag, paths)
         if self.on_estimate is not None and persist:
             self.on_estimate(res)
+        diag.update(_information(before, recs, feats[1:], groups[1:]))
         for m, post in self.posteriors.items():   # pending rejuvenation moves, same rng
             self.posteriors[m], _ = post.rejuvenate(rngs[m])
         res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,

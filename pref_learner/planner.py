@@ -11,18 +11,41 @@ Minimises over the interior waypoints of ``q : (T, n)`` (endpoints fixed)::
 tail, below); ``A = sum_t |q_{t+1} - 2 q_t + q_{t-1}|^2 (T-1)^3`` is the
 integral of the squared joint acceleration in normalised time; ``B`` is a
 quadratic penalty inside a margin from each joint limit, on top of the hard
-bounds of L-BFGS-B. Gradients are analytic: feature gradients through the
+box on the controls. Gradients are analytic: feature gradients through the
 frame Jacobians, chained through each aggregate
-(:meth:`pref_learner.features.FeatureSet.gradient`); no finite differences.
-scipy ``minimize(method='L-BFGS-B')`` runs from the straight line and from a
-few seeded smooth perturbations of it; the best result is returned.
+(:meth:`pref_learner.features.FeatureSet.values_and_gradients`); no finite
+differences.
+
+Smooth surrogate. ``min``/``max`` aggregates and distances at zero have no
+gradient at their kinks, which stalls a quasi-Newton method. The optimiser
+therefore minimises ``J`` with smooth surrogates of the features, each with
+temperature ``t_j = soft_temperature * scale_j`` in feature j's units
+(:attr:`TrajectoryPlanner.temperatures`; 0.02 of the scale by default, 1.6 mm
+for the shipped operator-zone distance): a min/max aggregate becomes the
+log-sum-exp soft min/max, within ``t_j log T`` of the exact one; the
+Euclidean distance of ``point_distance`` / ``capsule_distance`` and each
+segment of ``path_length`` are rounded off at zero, within ``t_j`` of the
+exact value. The plan's reported cost, reward and features are the exact ones.
+
+Optimiser. The waypoints are the straight line plus a clamped cubic B-spline
+(:func:`spline_basis`) whose controls live in a box that keeps every
+waypoint within the limits. :func:`minimize_box`, a projected quasi-Newton
+method with a dense damped-BFGS Hessian started at the smoothness term's
+Hessian (its constant curvature), runs from the straight line and from
+``restarts`` seeded smooth perturbations of it; the run with the lowest exact
+cost is returned. A run has converged when the infinity norm of the
+projected gradient (respecting the box) is at most ``pg_tol`` times
+``max(1, its value at the start)``; every :class:`PlanResult` reports
+``converged``, ``n_iter`` and ``pg_norm``.
 
 Objective under uncertainty about the preference (``uncertainty_objective``;
 this is uncertainty about what the person wants, not a hazard measure):
 ``mean`` optimises the expected reward over weighted particles (linear in
 theta, so it equals the reward of the weighted mean vector); ``cvar``
 optimises the mean reward over the worst ``alpha`` fraction of the posterior
-mass (conditional value at risk, a smooth lower-quantile criterion).
+mass (conditional value at risk, a lower-quantile criterion; which particles
+form the tail changes with the plan, so this objective is only piecewise
+smooth and its runs converge less often).
 
 Plans are proposals: the bounds keep waypoints within the URDF joint limits
 and :func:`time_parametrize` times them to given speed and acceleration
@@ -37,7 +60,6 @@ from dataclasses import dataclass
 from typing import Optional, Tuple
 
 import numpy as np
-from scipy.optimize import minimize
 
 from .features import FeatureSet
 
@@ -52,8 +74,10 @@ class PlannerConfig:
     restart_scale: float = 0.05       # fraction of joint range, smooth noise
     uncertainty_objective: str = 'mean'   # mean | cvar (over the preference posterior)
     alpha: float = 0.1                # tail fraction for cvar
-    max_iter: int = 200
+    max_iter: int = 500               # cap on optimiser iterations per run
     n_control: int = 16               # B-spline controls incl. the two fixed ends (<= T used)
+    soft_temperature: float = 0.02    # surrogate temperature / feature scale (0: exact features)
+    pg_tol: float = 1e-5              # stop: |projected gradient|_inf <= pg_tol * max(1, start's)
 
     def __post_init__(self):
         if self.n_waypoints < 4:
@@ -69,10 +93,23 @@ class PlannerConfig:
             raise ValueError('restarts must be >= 0 and max_iter >= 1')
         if self.n_control < 4:
             raise ValueError(f'n_control must be >= 4, got {self.n_control}')
+        if not self.soft_temperature >= 0:
+            raise ValueError(f'soft_temperature must be >= 0, got {self.soft_temperature}')
+        if not self.pg_tol > 0:
+            raise ValueError(f'pg_tol must be > 0, got {self.pg_tol}')
 
 
 @dataclass
 class PlanResult:
+    """One plan: waypoints, its exact features, cost and reward, and how the optimiser ended.
+
+    ``cost``, ``reward`` and ``features`` are exact (true min/max aggregates)
+    at ``q``; ``converged``, ``n_iter``, ``n_eval`` and ``pg_norm`` describe
+    the run that produced ``q`` (on the smooth surrogate objective):
+    ``pg_norm`` is the infinity norm of its projected gradient at the end and
+    ``converged`` says that it met the stopping rule (:func:`minimize_box`).
+    """
+
     q: np.ndarray            # (T, n)
     features: np.ndarray     # (d,) scaled
     cost: float
@@ -81,6 +118,143 @@ class PlanResult:
     n_iter: int
     message: str
     time_s: float
+    pg_norm: float = float('nan')
+    n_eval: int = 0
+
+    def summary(self) -> str:
+        """One line for logs and status: convergence, iterations, projected gradient, cost."""
+        state = 'converged' if self.converged else 'NOT converged'
+        return (f'plan {state} after {self.n_iter} iterations ({self.n_eval} evaluations), '
+                f'projected gradient {self.pg_norm:.2e}, cost {self.cost:.4g}, '
+                f'{self.time_s * 1e3:.0f} ms')
+
+
+@dataclass
+class BoxResult:
+    x: np.ndarray
+    fun: float
+    jac: np.ndarray
+    n_iter: int
+    n_eval: int
+    pg_norm: float
+    pg_limit: float
+    converged: bool
+    message: str
+
+
+def projected_gradient(x: np.ndarray, g: np.ndarray, lo: np.ndarray,
+                       hi: np.ndarray) -> np.ndarray:
+    """Projected gradient ``x - P(x - g)`` of a box ``lo <= x <= hi`` (entries may be infinite).
+
+    Zero exactly at the box's first-order stationary points: a component
+    vanishes where the gradient is zero or where it pushes into an active bound.
+    """
+    return x - np.clip(x - g, lo, hi)
+
+
+def _damped_bfgs_update(H: np.ndarray, s: np.ndarray, y: np.ndarray) -> bool:
+    """Update the Hessian approximation ``H`` in place with step ``s`` and gradient change ``y``.
+
+    Powell's damping (Nocedal & Wright, Numerical Optimization, 2nd ed.,
+    Procedure 18.2) keeps ``H`` positive definite where the objective is not
+    convex. Returns False (no update) for a step too small to carry information.
+    """
+    Hs = H @ s
+    sHs = float(s @ Hs)
+    if not sHs > 1e-300:
+        return False
+    sy = float(s @ y)
+    theta = 1.0 if sy >= 0.2 * sHs else 0.8 * sHs / (sHs - sy)
+    r = theta * y + (1.0 - theta) * Hs
+    sr = float(s @ r)
+    if not sr > 1e-12 * sHs:
+        return False
+    H += np.outer(r, r) / sr - np.outer(Hs, Hs) / sHs
+    return True
+
+
+def minimize_box(fun, x0: np.ndarray, lo: np.ndarray, hi: np.ndarray, pg_tol: float,
+                 max_iter: int, hessian0: Optional[np.ndarray] = None,
+                 callback=None) -> BoxResult:
+    """Minimise ``fun(x) -> (value, gradient)`` over the box ``lo <= x <= hi``.
+
+    Projected quasi-Newton method (Bertsekas, "Projected Newton methods for
+    optimization problems with simple constraints", SIAM J. Control Optim.
+    20(2), 1982): variables at a bound whose gradient pushes outward
+    (within ``eps = min(1e-3, |pg|_2)`` of it) take a scaled gradient step,
+    the others a quasi-Newton step with a dense BFGS approximation of the
+    Hessian (damped, so it stays positive definite) started at ``hessian0``
+    (the known constant part of the Hessian makes a good preconditioner;
+    default identity); an Armijo backtracking search runs along the
+    projection ``P(x + a d)`` onto the box, so every iterate is inside it.
+
+    Stopping rule: converged when the projected gradient
+    (:func:`projected_gradient`) satisfies
+    ``|pg(x)|_inf <= pg_tol * max(1, |pg(x0)|_inf)`` (relative to the start,
+    absolute once that is below one). Otherwise the run ends at ``max_iter``
+    iterations or when the line search can make no further progress, with
+    ``converged = False``. ``callback(x, f)`` is called after every iteration.
+    """
+    lo = np.asarray(lo, dtype=np.float64)
+    hi = np.asarray(hi, dtype=np.float64)
+    x = np.clip(np.asarray(x0, dtype=np.float64), lo, hi)
+    H0 = np.eye(x.size) if hessian0 is None else np.array(hessian0, dtype=np.float64)
+    H = H0.copy()
+    f, g = fun(x)
+    n_eval = 1
+    pg = projected_gradient(x, g, lo, hi)
+    pgn = float(np.max(np.abs(pg), initial=0.0))
+    limit = pg_tol * max(1.0, pgn)
+    it, message, fresh = 0, '', True
+    while True:
+        if pgn <= limit:
+            message = 'projected gradient within tolerance'
+            break
+        if it >= max_iter or n_eval >= 4 * max_iter:
+            message = f'iteration cap {max_iter} reached' if it >= max_iter else \
+                f'evaluation cap {4 * max_iter} reached'
+            break
+        eps = min(1e-3, float(np.linalg.norm(pg)))
+        active = ((x <= lo + eps) & (g > 0)) | ((x >= hi - eps) & (g < 0))
+        free = ~active
+        d = np.empty_like(x)
+        d[active] = -g[active] / np.maximum(np.diag(H)[active], 1e-12)
+        if free.any():
+            try:
+                d[free] = -np.linalg.solve(H[np.ix_(free, free)], g[free])
+            except np.linalg.LinAlgError:      # numerically singular: start afresh
+                H[:] = H0
+                d[free] = -np.linalg.solve(H[np.ix_(free, free)], g[free])
+        step = 1.0
+        for _ in range(30):
+            xn = np.clip(x + step * d, lo, hi)
+            dec = float(g @ (xn - x))
+            if dec < 0:
+                fn, gn = fun(xn)
+                n_eval += 1
+                if fn <= f + 1e-4 * dec:
+                    break
+                # minimiser of the quadratic through f, the slope and fn, kept in [0.1, 0.5]
+                curv = fn - f - dec
+                step *= min(0.5, max(0.1, -dec / (2.0 * curv))) if curv > 0 else 0.5
+            else:
+                step *= 0.5
+        else:
+            if fresh:
+                message = 'line search found no decrease'
+                break
+            H[:] = H0              # the curvature pairs misled the direction: start afresh
+            fresh = True
+            continue
+        _damped_bfgs_update(H, xn - x, gn - g)
+        x, f, g = xn, fn, gn
+        fresh = False
+        it += 1
+        pg = projected_gradient(x, g, lo, hi)
+        pgn = float(np.max(np.abs(pg), initial=0.0))
+        if callback is not None:
+            callback(x, f)
+    return BoxResult(x, float(f), g, it, n_eval, pgn, limit, pgn <= limit, message)
 
 
 def spline_basis(n_waypoints: int, n_control: int) -> np.ndarray:
@@ -125,12 +299,25 @@ class TrajectoryPlanner:
         self._D2 = np.diff(np.eye(T), n=2, axis=0)
         self._acc_w = (T - 1) ** 3
         self._basis = spline_basis(T, min(config.n_control, T))
+        #: (d,) surrogate temperature of each min/max feature, in the feature's units
+        self.temperatures = config.soft_temperature * features.scales
+        # Hessian of the smoothness term over the interior controls (one block per joint):
+        # the constant part of the objective's curvature, the optimiser's preconditioner
+        Bi = self._basis[1:-1]
+        D2i = self._D2[:, 1:-1]
+        S = 2.0 * config.smoothness * self._acc_w * (D2i @ Bi).T @ (D2i @ Bi)
+        S += 1e-6 * max(float(np.max(np.diag(S))), 1.0) * np.eye(len(S))
+        self._hessian0 = np.kron(S, np.eye(self.robot.n))
 
     # ------------------------------------------------------------ objective parts
     def smoothness(self, q: np.ndarray) -> Tuple[float, np.ndarray]:
-        a = self._D2 @ q
+        a = q[2:] - 2.0 * q[1:-1] + q[:-2]                    # self._D2 @ q
         val = self._acc_w * float(np.sum(a * a))
-        return val, 2.0 * self._acc_w * (self._D2.T @ a)
+        g = np.zeros(q.shape)                                 # self._D2.T @ a
+        g[2:] += a
+        g[1:-1] -= 2.0 * a
+        g[:-2] += a
+        return val, 2.0 * self._acc_w * g
 
     def barrier(self, q: np.ndarray) -> Tuple[float, np.ndarray]:
         lo = self.robot.lower + self.config.barrier_margin
@@ -155,14 +342,24 @@ class TrajectoryPlanner:
         w = pw[idx] / pw[idx].sum()
         return w @ theta[idx]
 
-    def objective(self, x: np.ndarray, start, goal, theta, pw) -> Tuple[float, np.ndarray]:
+    def objective(self, x: np.ndarray, start, goal, theta, pw,
+                  exact: bool = False) -> Tuple[float, np.ndarray]:
+        """Objective ``J`` and its gradient over the interior waypoints ``x ((T-2) n,)``.
+
+        By default on the smooth surrogate (min/max aggregates replaced by
+        log-sum-exp at :attr:`temperatures`); ``exact`` uses the true
+        aggregates (subgradient at the extreme waypoint).
+        """
         n = self.robot.n
-        q = np.vstack([start, x.reshape(self.T - 2, n), goal])
-        raw, g_raw = self.features.value_and_gradient(q)          # (d,), (d, T, n)
+        q = np.empty((self.T, n))
+        q[0], q[-1] = start, goal
+        q[1:-1] = x.reshape(self.T - 2, n)
+        raw, g_raw = self.features.value_and_gradient(
+            q, None if exact else self.temperatures)            # (d,), (d, T, n)
         phi = raw / self.features.scales
         direction = self._reward_direction(phi, theta, pw)
         reward = float(direction @ phi)
-        g_reward = np.einsum('d,dtn->tn', direction / self.features.scales, g_raw)
+        g_reward = np.tensordot(direction / self.features.scales, g_raw, axes=1)
         s_val, s_grad = self.smoothness(q)
         b_val, b_grad = self.barrier(q)
         c = self.config
@@ -171,14 +368,7 @@ class TrajectoryPlanner:
         return val, grad[1:-1].ravel()
 
     # ------------------------------------------------------------ planning
-    def plan(self, weights, start, goal, rng: Optional[np.random.Generator] = None,
-             particle_weights=None) -> PlanResult:
-        """Plan from ``start`` to ``goal``.
-
-        For ``weights (d,)``, or particles ``(P, d)`` with
-        ``particle_weights (P,)``.
-        """
-        t0 = time.perf_counter()
+    def _check_request(self, weights, start, goal, particle_weights):
         d = self.features.d
         w = np.asarray(weights, dtype=np.float64)
         pw = None
@@ -197,46 +387,70 @@ class TrajectoryPlanner:
         if start.shape != (self.robot.n,) or goal.shape != (self.robot.n,):
             raise ValueError(f'start and goal must each be one configuration of '
                              f'{self.robot.n} joints')
-        rng = rng if rng is not None else np.random.default_rng(0)
-        n = self.robot.n
+        return w, pw, start, goal
+
+    def control_problem(self, start, goal):
+        """Straight line ``(T, n)``, interior basis ``(T, K-2)`` and control box ``(K-2, n)`` x 2.
+
+        The box on each control keeps line + B c inside the limits at every
+        waypoint of its support (B-spline convex-hull property); continuous
+        joints stay within half a turn of the straight line (a reward that
+        grows with motion, effort or path length, would otherwise be unbounded).
+        """
         line = start + np.linspace(0, 1, self.T)[:, None] * (goal - start)
-        B = self._basis                                   # (T, K - 2) interior controls
-        kc = B.shape[1]
-        # box bounds on each control that keep line + B c inside the limits at every
-        # waypoint of its support (B-spline convex-hull property)
-        # continuous joints stay within half a turn of the straight line: a reward that
-        # grows with motion (effort, path length) would otherwise be unbounded
+        B = self._basis
         lo_t = np.where(np.isfinite(self.robot.lower), self.robot.lower - line, -math.pi)
         hi_t = np.where(np.isfinite(self.robot.upper), self.robot.upper - line, math.pi)
         support = B > 0
-        c_lo = np.array([lo_t[support[:, k]].max(axis=0) for k in range(kc)])   # (K-2, n)
-        c_hi = np.array([hi_t[support[:, k]].min(axis=0) for k in range(kc)])
-        bounds = [(None if not np.isfinite(a) else a, None if not np.isfinite(b) else b)
-                  for a, b in zip(c_lo.ravel(), c_hi.ravel())]
+        c_lo = np.array([lo_t[support[:, k]].max(axis=0) for k in range(B.shape[1])])
+        c_hi = np.array([hi_t[support[:, k]].min(axis=0) for k in range(B.shape[1])])
+        return line, B, c_lo, c_hi
+
+    def plan(self, weights, start, goal, rng: Optional[np.random.Generator] = None,
+             particle_weights=None, callback=None) -> PlanResult:
+        """Plan from ``start`` to ``goal``.
+
+        For ``weights (d,)``, or particles ``(P, d)`` with
+        ``particle_weights (P,)``. Each run (the straight line, then
+        ``restarts`` seeded perturbations) minimises the surrogate objective
+        until the projected-gradient rule holds (:func:`minimize_box`); the
+        run with the lowest exact cost is returned, with its convergence.
+        ``callback(q)`` receives the waypoints after every iteration.
+        """
+        t0 = time.perf_counter()
+        w, pw, start, goal = self._check_request(weights, start, goal, particle_weights)
+        rng = rng if rng is not None else np.random.default_rng(0)
+        n = self.robot.n
+        line, B, c_lo, c_hi = self.control_problem(start, goal)
+        kc = B.shape[1]
         span = np.where(np.isfinite(self.robot.upper - self.robot.lower),
                         self.robot.upper - self.robot.lower, 2 * math.pi)
         inits = [np.zeros((kc, n))]
         for _ in range(self.config.restarts):
-            c0 = rng.standard_normal((kc, n)) * self.config.restart_scale * span
-            inits.append(np.clip(c0, np.nan_to_num(c_lo, neginf=-1e9),
-                                 np.nan_to_num(c_hi, posinf=1e9)))
+            inits.append(rng.standard_normal((kc, n)) * self.config.restart_scale * span)
+        Bi = B[1:-1]
 
         def fun(c):
-            x = line[1:-1] + B[1:-1] @ c.reshape(kc, n)
+            x = line[1:-1] + Bi @ c.reshape(kc, n)
             val, g = self.objective(x.ravel(), start, goal, w, pw)
-            return val, (B[1:-1].T @ g.reshape(self.T - 2, n)).ravel()
+            return val, (Bi.T @ g.reshape(self.T - 2, n)).ravel()
+        cb = None if callback is None else \
+            (lambda c, f: callback(line + B @ c.reshape(kc, n)))
         best = None
         for init in inits:
-            res = minimize(fun, init.ravel(), jac=True, method='L-BFGS-B', bounds=bounds,
-                           options={'maxiter': self.config.max_iter})
-            if best is None or res.fun < best.fun:
-                best = res
-        q = line + B @ best.x.reshape(kc, n)
-        q[0], q[-1] = start, goal
+            res = minimize_box(fun, init.ravel(), c_lo.ravel(), c_hi.ravel(),
+                               self.config.pg_tol, self.config.max_iter, self._hessian0, cb)
+            q = line + B @ res.x.reshape(kc, n)
+            q[0], q[-1] = start, goal
+            cost = self.objective(q[1:-1].ravel(), start, goal, w, pw, exact=True)[0]
+            if best is None or cost < best[0]:
+                best = (cost, q, res)
+        cost, q, res = best
         phi = self.features(q)
         direction = self._reward_direction(phi, w, pw)
-        return PlanResult(q, phi, float(best.fun), float(direction @ phi), bool(best.success),
-                          int(best.nit), str(best.message), time.perf_counter() - t0)
+        return PlanResult(q, phi, float(cost), float(direction @ phi), res.converged,
+                          res.n_iter, res.message, time.perf_counter() - t0, res.pg_norm,
+                          res.n_eval)
 
 
 def time_parametrize(q: np.ndarray, v_max: np.ndarray, a_max: np.ndarray) -> np.ndarray:
@@ -294,19 +508,129 @@ def planner_alternatives(planner: TrajectoryPlanner, start, goal, weights: np.nd
     return np.stack([_plan_one(j) for j in jobs])
 
 
-def plan_benchmark(quick: bool = False) -> dict:
-    """``plan_ms_median``: one 64-waypoint plan, shipped arm, demo features, one restart."""
+def _traced_plan(planner: TrajectoryPlanner, w, start, goal) -> Tuple[PlanResult, np.ndarray]:
+    """Plan once; trace ``(wall s, iteration, exact cost)`` per iteration (tracing not timed)."""
+    trace, excluded = [], [0.0]
+    t0 = time.perf_counter()
+
+    def record(q):
+        t = time.perf_counter()
+        cost = planner.objective(q[1:-1].ravel(), start, goal, w, None, exact=True)[0]
+        trace.append((t - t0 - excluded[0], len(trace), cost))
+        excluded[0] += time.perf_counter() - t
+    q0 = start + np.linspace(0, 1, planner.T)[:, None] * (goal - start)
+    trace.append((0.0, 0, planner.objective(q0[1:-1].ravel(), start, goal, w, None,
+                                            exact=True)[0]))
+    excluded[0] += time.perf_counter() - t0
+    res = planner.plan(w, start, goal, callback=record)
+    return res, np.array(trace)
+
+
+def raw_waypoint_lbfgsb(planner: TrajectoryPlanner, w, start, goal, target: float,
+                        max_iter: int) -> np.ndarray:
+    """The peer: scipy L-BFGS-B on the raw interior waypoints, exact objective, until ``target``.
+
+    Starts from the straight line with the joint limits as bounds (continuous
+    joints within half a turn of the line) and scipy's own stopping tests off,
+    so it runs until its exact cost is at most ``target``, ``max_iter``
+    iterations or a failed line search. Returns the trace
+    ``(wall s, iteration, exact cost)``, one row per iteration.
+    """
+    from scipy.optimize import Bounds, minimize
+    line = start + np.linspace(0, 1, planner.T)[:, None] * (goal - start)
+    lo = np.where(np.isfinite(planner.robot.lower), planner.robot.lower, line - math.pi)
+    hi = np.where(np.isfinite(planner.robot.upper), planner.robot.upper, line + math.pi)
+    x0 = line[1:-1].ravel()
+    trace = [(0.0, 0, planner.objective(x0, start, goal, w, None, exact=True)[0])]
+    t0 = time.perf_counter()
+
+    def stop(intermediate_result):
+        trace.append((time.perf_counter() - t0, len(trace), float(intermediate_result.fun)))
+        if intermediate_result.fun <= target:
+            raise StopIteration
+    minimize(lambda x: planner.objective(x, start, goal, w, None, exact=True), x0, jac=True,
+             method='L-BFGS-B', bounds=Bounds(lo[1:-1].ravel(), hi[1:-1].ravel()),
+             callback=stop, options={'maxiter': max_iter, 'maxfun': 20 * max_iter,
+                                     'ftol': 0.0, 'gtol': 0.0})
+    return np.array(trace)
+
+
+def _convergence_figure(ours: np.ndarray, peer: np.ndarray, path) -> None:
+    import matplotlib
+    matplotlib.use('Agg')
+    import matplotlib.pyplot as plt
+    fig, axes = plt.subplots(1, 2, figsize=(10, 4))
+    for ax, col, label in ((axes[0], 0, 'wall time (ms)'), (axes[1], 1, 'iteration')):
+        scale = 1e3 if col == 0 else 1.0
+        ax.plot(ours[:, col] * scale, ours[:, 2], label='B-spline controls, smooth surrogate, '
+                'projected quasi-Newton')
+        ax.plot(peer[:, col] * scale, peer[:, 2], label='L-BFGS-B on raw waypoints, exact')
+        ax.axhline(ours[-1, 2], color='grey', lw=0.8, ls='--')
+        ax.set_xscale('symlog', linthresh=1.0)
+        ax.set_xlim(left=0.0)
+        ax.set_xlabel(label)
+        ax.set_ylabel('exact cost J')
+        lo = min(ours[:, 2].min(), peer[:, 2].min())
+        ax.set_ylim(lo - 0.05 * abs(lo) - 0.1, max(ours[0, 2], peer[0, 2]) + 0.1)
+    axes[0].legend(fontsize=8)
+    fig.suptitle('one 64-waypoint plan, shipped arm; dashed: final cost of ours')
+    fig.tight_layout()
+    fig.savefig(path, dpi=90)
+    plt.close(fig)
+
+
+def plan_benchmark(quick: bool = False, out_dir=None) -> dict:
+    """Plan figures: one 64-waypoint plan, shipped arm and features, no restart.
+
+    ``plan_ms_median``, ``plan_converged_fraction`` (projected-gradient rule
+    met), iterations and evaluations over seeded random weights and the
+    scenario's tasks; then, on the first few of the same problems, the peer
+    (:func:`raw_waypoint_lbfgsb`) run until it reaches our final exact cost:
+    its time and iterations to get there, the fraction that did, and the
+    median ratio of its time to ours (its whole run's time where it never
+    got there: a lower bound). With ``out_dir``, ``plan_convergence.png``
+    there shows exact cost against wall time and iterations for both on the
+    first problem.
+    """
+    from pathlib import Path
+
     from .learner import Learner, LearnerConfig
     L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
     planner = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
     tasks = L.tasks()
     rng = np.random.default_rng(0)
-    times, iters = [], []
+    problems, times, iters, evals, conv = [], [], [], [], []
     for k in range(4 if quick else 10):
         w = rng.standard_normal(L.features.d)
         _, s, g = tasks[k % len(tasks)]
         r = planner.plan(w, s, g, rng)
+        problems.append((w, s, g))
         times.append(r.time_s)
         iters.append(r.n_iter)
-    return {'plan_ms_median': float(np.median(times) * 1e3),
-            'plan_iterations_median': float(np.median(iters))}
+        evals.append(r.n_eval)
+        conv.append(r.converged)
+    out = {'plan_ms_median': float(np.median(times) * 1e3),
+           'plan_converged_fraction': float(np.mean(conv)),
+           'plan_iterations_median': float(np.median(iters)),
+           'plan_evaluations_median': float(np.median(evals))}
+    peer_ms, peer_it, reached, ratio = [], [], [], []
+    for i, (w, s, g) in enumerate(problems[:1 if quick else 3]):
+        res, ours = _traced_plan(planner, w, s, g)
+        peer = raw_waypoint_lbfgsb(planner, w, s, g, res.cost, 1000 if quick else 3000)
+        ok = bool(peer[-1, 2] <= res.cost)
+        reached.append(ok)
+        if ok:
+            peer_ms.append(peer[-1, 0] * 1e3)
+            peer_it.append(peer[-1, 1])
+        ratio.append(peer[-1, 0] / ours[-1, 0])
+        if i == 0 and out_dir is not None:
+            Path(out_dir).mkdir(parents=True, exist_ok=True)
+            _convergence_figure(ours, peer, Path(out_dir) / 'plan_convergence.png')
+    nan = float('nan')
+    out.update({
+        'plan_raw_lbfgsb_reached_fraction': float(np.mean(reached)),
+        'plan_raw_lbfgsb_ms_to_equal_cost_median': float(np.median(peer_ms)) if peer_ms else nan,
+        'plan_raw_lbfgsb_iterations_to_equal_cost_median':
+            float(np.median(peer_it)) if peer_it else nan,
+        'plan_speedup_vs_raw_lbfgsb': float(np.median(ratio))})
+    return out

@@ -5,8 +5,10 @@
 Plots: each weight's posterior mean and 90% band after each demonstration;
 final marginals per feature; for each demonstration its place in its
 alternative set's feature density (the dense/sparse diagnostic); Boltzmann
-and LESS side by side when both ran. Tables: final estimates and rejected
-demonstrations with their reasons.
+and LESS side by side when both ran. Tables: final estimates, what is still
+unknown (the posterior's weakest directions in words), each demonstration's
+expected and realised information, and rejected demonstrations with their
+reasons.
 """
 
 from __future__ import annotations
@@ -25,6 +27,11 @@ from .safety import CAUTION
 from .store import StateStore
 
 COLOURS = {'boltzmann': '#1f77b4', 'less': '#d62728'}
+
+
+#: Largest pooled within-set |correlation| at which two features' weights are
+#: taken as separable (the shipped scenario is designed to stay below it).
+SEPARABLE_R = 0.6
 
 
 def _plt():
@@ -179,6 +186,19 @@ def estimate_status_values(summary, option_labels, diagnostics) -> Dict[str, str
     return out
 
 
+def separation_note(names, sets) -> str:
+    """One sentence on how well a session's choice sets separate the features."""
+    from .alternatives import pooled_within_set_correlation, strongest_pair
+    if not sets:
+        return 'No choice sets yet: nothing to say about how well features are told apart.'
+    r, a, b = strongest_pair(pooled_within_set_correlation(sets), names)
+    verdict = ('every pair can be told apart' if r <= SEPARABLE_R else
+               f'the weights of {a} and {b} are hard to tell apart: demonstrate tasks where '
+               'they differ')
+    return (f'Feature separation in this session\'s choice sets: largest within-set |r| '
+            f'{r:.2f} ({a}, {b}); {verdict} (|r| <= {SEPARABLE_R}).')
+
+
 def _table(names, summaries: Dict[str, dict]) -> str:
     head = '<tr><th>feature</th>' + ''.join(
         f'<th>{m} mean</th><th>{m} std</th><th>{m} 5%</th><th>{m} 95%</th>'
@@ -223,6 +243,10 @@ def write_report(state_dir, out_dir) -> Path:
     def region(dg):
         return 'sparse' if dg['sparse'] else ('dense' if dg['dense'] else 'typical')
 
+    def gained(dg):
+        e, g = dg.get('expected_gain') or {}, dg.get('information_gain') or {}
+        return '; '.join(f'{m} {e[m]:.3f} / {g[m]:.3f}' for m in e if m in g) or 'n/a'
+
     def check(dg):
         p = dg.get('predictive_pvalue') or {}
         vals = ', '.join(f'{m} {v:.3f}' for m, v in p.items())
@@ -230,11 +254,15 @@ def write_report(state_dir, out_dir) -> Path:
     diag_rows = ''.join(
         f'<tr><td>{h["index"] + 1}</td><td>{h["diagnostics"]["relative_density"]:.3g}</td>'
         f'<td>{region(h["diagnostics"])}</td><td>{html.escape(check(h["diagnostics"]))}</td>'
-        '</tr>' for h in st['history'])
+        f'<td>{html.escape(gained(h["diagnostics"]))}</td></tr>' for h in st['history'])
     notes = estimate_note_lines({m: p.summary() for m, p in posts.items()},
                                 st['manifest'].get('option_models') or [],
                                 [h['diagnostics'] for h in st['history']])
     notes_html = ''.join(f'<li>{html.escape(x)}</li>' for x in notes)
+    sep_html = separation_note(names, [r.features for r in first.records])
+    from .guidance import unknown_lines
+    unknown_html = ''.join(f'<li>{html.escape(m)}: {html.escape(x)}</li>'
+                           for m, p in posts.items() for x in unknown_lines(p.summary(), names))
     meta = {m: {'ess': f'{s["ess"]:.0f}', 'concentration': f'{s["concentration"]:.4f}',
                 'demonstrations': s['n_demonstrations']} for m, s in sums.items()}
     imgs = ''.join(f'<h2>{html.escape(t)}</h2><img src="{f}" alt="{html.escape(t)}">'
@@ -255,10 +283,13 @@ Demonstrations: {first.summary().n_demonstrations}; rejected: {len(rej)}.</p>
 {_table(names, sums)}
 <h2>Rationality, option model and checks</h2>
 <ul id="notes">{notes_html}</ul>
+<p id="separation">{html.escape(sep_html)}</p>
+<h2>What is still unknown</h2>
+<ul id="unknown">{unknown_html}</ul>
 {imgs}
 <h2>Demonstrations in their sets</h2>
 <table id="density"><tr><th>demonstration</th><th>density / median</th><th>region</th>
-<th>predictive p-value</th></tr>
+<th>predictive p-value</th><th>information, nats: expected / gained</th></tr>
 {diag_rows}</table>
 <h2>Rejected demonstrations</h2>
 <table id="rejected"><tr><th>#</th><th>reason</th><th>detail</th></tr>{rej_rows}</table>

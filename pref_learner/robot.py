@@ -76,6 +76,13 @@ def _rotate(r: np.ndarray, v: np.ndarray) -> np.ndarray:
     return out
 
 
+def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``np.cross(a, b)`` over the last axis (length 3), without its per-call overhead."""
+    return np.stack([a[..., 1] * b[..., 2] - a[..., 2] * b[..., 1],
+                     a[..., 2] * b[..., 0] - a[..., 0] * b[..., 2],
+                     a[..., 0] * b[..., 1] - a[..., 1] * b[..., 0]], axis=-1)
+
+
 def _skew(a: np.ndarray) -> np.ndarray:
     return np.array([[0, -a[2], a[1]], [a[2], 0, -a[0]], [-a[1], a[0], 0]])
 
@@ -345,7 +352,7 @@ class RobotModel:
                         if self._kinds[anc] == 'prismatic':
                             jp[:, k, :, iq] = w
                         else:
-                            jp[:, k, :, iq] = np.cross(w, fpos[:, k] - origin_w[anc])
+                            jp[:, k, :, iq] = _cross(w, fpos[:, k] - origin_w[anc])
                             jr[:, k, :, iq] = w
                     anc = model.parents[anc]
         out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),

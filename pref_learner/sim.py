@@ -83,11 +83,15 @@ class SimulatedTeacher:
                                             ascent_steps=config.ascent_steps),
             n_features=learner.features.d, ascent=learner.reward_gradient)
 
-    def choose(self, index: int) -> Tuple[str, np.ndarray]:
-        """Pick the path (T, n) the person demonstrates as number ``index``."""
+    def choose(self, index: int, task=None) -> Tuple[str, np.ndarray]:
+        """Pick the path (T, n) the person demonstrates as number ``index``.
+
+        ``task`` ``(name, start, goal)``: the task to demonstrate (a proposed
+        one); default the person's tasks in turn.
+        """
         c = self.config
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
-        name, start, goal = self.tasks[index % len(self.tasks)]
+        name, start, goal = self.tasks[index % len(self.tasks)] if task is None else task
         cand, _ = self.sampler.sample(start, goal, rng)
         cand = self.learner.retime(np.concatenate([self.sampler.straight(start, goal)[None],
                                                    cand]))
@@ -97,13 +101,13 @@ class SimulatedTeacher:
         p = choice_probabilities(feats, self.theta, c.beta, c.model)
         return name, cand[int(rng.choice(len(cand), p=p))]
 
-    def stream(self, index: int, t0_ns: int = 0):
-        """Play demonstration ``index`` as samples.
+    def stream(self, index: int, t0_ns: int = 0, task=None):
+        """Play demonstration ``index`` (of ``task``, see :meth:`choose`) as samples.
 
         Returns stamps_ns (S,) and q (S, n), rests included.
         """
         c = self.config
-        _, path = self.choose(index)
+        _, path = self.choose(index, task)
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index, 7]))
         dt = 1.0 / c.rate
         n_rest = int(round(c.rest * c.rate))
@@ -121,16 +125,21 @@ class SimulatedTeacher:
     def feed_session(self, learner, n: int, t0_ns: int = 10**18) -> List[object]:
         """Teach ``learner`` n demonstrations directly (no ROS), via the teaching signal."""
         out = []
-        names = learner.robot.joint_names
         t = t0_ns
         for k in range(n):
-            stamps, q = self.stream(k, t)
-            out += learner.set_teaching(True)
-            for st, qi in zip(stamps, q):
-                out += learner.feed(int(st), names, qi)
-            out += learner.set_teaching(False)
-            t = int(stamps[-1]) + 10**9
+            res, t = self.feed_one(learner, k, t)
+            out += res
         return out
+
+    def feed_one(self, learner, index: int, t0_ns: int, task=None):
+        """Teach demonstration ``index`` (of ``task``) directly; returns (results, next t0)."""
+        names = learner.robot.joint_names
+        stamps, q = self.stream(index, t0_ns, task)
+        out = learner.set_teaching(True)
+        for st, qi in zip(stamps, q):
+            out += learner.feed(int(st), names, qi)
+        out += learner.set_teaching(False)
+        return out, int(stamps[-1]) + 10**9
 
     def write_bag(self, path, n: int, t0_ns: int = 10**18, joint_names=None,
                   joint_topic: str = '/joint_states',
@@ -164,8 +173,8 @@ def write_simulated_session(path, truth: Sequence[float], n_demonstrations: int,
     ``kind`` ``state_dir``: the demonstrations are taught to a learner that only
     records them (one particle, one alternative: the stored posterior is not
     meant to be used); ``bag``: the joint states and teaching signals, as a node
-    records them. ``learner``: a learner giving robot and features (default:
-    the shipped arm and scenario).
+    records them. ``learner``: a learner giving robot, features and their scales
+    (the person chooses by them; default: the shipped arm and scenario).
     """
     from .learner import Learner, LearnerConfig
     rec_cfg = dict(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,))
@@ -174,7 +183,8 @@ def write_simulated_session(path, truth: Sequence[float], n_demonstrations: int,
             rec_cfg.update(urdf=learner.config.urdf, features=learner.config.features,
                            joint_names=learner.config.joint_names,
                            tool_frame=learner.config.tool_frame)
-        rec = Learner(LearnerConfig(state_dir=str(path), **rec_cfg))
+        rec = Learner(LearnerConfig(state_dir=str(path), **rec_cfg),
+                      scales=None if learner is None else learner.features.scales)
         SimulatedTeacher(rec, truth, person).feed_session(rec, n_demonstrations)
         rec.save()
         return Path(path)

@@ -21,8 +21,8 @@ processes (``spawn``; one BLAS thread each: ``OPENBLAS_NUM_THREADS=1``, also
 with one worker, so that a result never depends on the parent's threads);
 :class:`DaskScheduler` sends them to an existing Dask distributed scheduler
 (its nannies set one BLAS thread by default). Results come back in input
-order; a bar on the terminal counts finished tasks. The calibration studies
-of :mod:`validate` run through the same :func:`run_tasks`.
+order; a bar on the terminal counts finished tasks. The calibration and
+guided-teaching studies of :mod:`validate` run through the same :func:`run_tasks`.
 
 Population (per model, over the participants that were analysed): the mean
 direction of the unit weight vectors, its mean resultant length (Mardia &
@@ -47,7 +47,7 @@ import math
 import os
 import time
 from contextlib import contextmanager
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Callable, Dict, List, Optional, Sequence, Tuple
 
@@ -539,6 +539,11 @@ def _worker_info() -> dict:
             'version': __version__}
 
 
+#: this process's feature scales per learner settings: a calibration is deterministic, so
+#: reusing it saves time and changes no result
+_SCALES: Dict[str, np.ndarray] = {}
+
+
 def analyse_participant(task: ParticipantTask) -> dict:
     """Analyse one participant's session: estimates, comparison, demonstrations.
 
@@ -555,7 +560,10 @@ def analyse_participant(task: ParticipantTask) -> dict:
         if kind == 'unknown':
             raise _Failed('not a session: neither a state directory (manifest.json) nor a '
                           'rosbag2 bag (metadata.yaml)')
-        L = Learner(LearnerConfig(model='both', seed=task.seed, **task.learner))
+        cfg = LearnerConfig(model='both', seed=task.seed, **task.learner)
+        key = replace(cfg, seed=0).learning_hash()
+        L = Learner(cfg, scales=_SCALES.get(key))
+        _SCALES.setdefault(key, L.features.scales)
         if kind == 'state_dir':
             _replay_state_dir(Path(task.path), L, notes, rows)
         else:

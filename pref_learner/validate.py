@@ -14,7 +14,11 @@ smaller ones still). The studies:
 3. simulated people on the shipped arm -- cosine to the truth and planner
    regret under the true weights, for LESS and Boltzmann people;
 4. robustness to the alternative set -- the spread of each model's estimate
-   when the same demonstrations are compared with 10 independently drawn sets.
+   when the same demonstrations are compared with 10 independently drawn sets;
+5. calibration -- coverage and cosine for people who are not the learner's twin,
+   and a simulation-based calibration of the sampler;
+6. guidance -- teaching the task of largest expected information gain against
+   teaching the tasks in turn, paired people and seeds.
 """
 
 from __future__ import annotations
@@ -42,6 +46,27 @@ def _plt():
 
 
 # ---------------------------------------------------------------- study 1
+def scenario_correlation(learner, m: int = 300, seed: int = 0) -> dict:
+    """How well the scenario's choice sets separate the features.
+
+    Draws a choice set of ``m`` alternatives for every task of the learner's
+    scenario, exactly as a demonstration of that task would get (sampler,
+    re-timing, conditioning, fixed scales), and returns the pooled within-set
+    correlation matrix, its largest absolute off-diagonal entry
+    (``feature_max_abs_correlation``) and that pair of features.
+    """
+    from .alternatives import pooled_within_set_correlation, strongest_pair
+    rng = np.random.default_rng(seed)
+    sets = []
+    for _, start, goal in learner.tasks():
+        alts, _ = learner.sampler.sample(start, goal, rng, m=m)
+        sets.append(learner.features(learner.condition(learner.retime(alts))))
+    corr = pooled_within_set_correlation(sets)
+    r, a, b = strongest_pair(corr, learner.names)
+    return {'names': list(learner.names), 'correlation': corr.tolist(), 'n_tasks': len(sets),
+            'feature_max_abs_correlation': r, 'pair': [a, b]}
+
+
 def study_duplicates(k_max: int = 8, jitter: float = 1e-3, seed: int = 0) -> dict:
     rng = np.random.default_rng(seed)
     theta = np.array([1.0, 1.0]) / math.sqrt(2.0)
@@ -164,9 +189,10 @@ def study_arm_people(n_truths=8, n_demos=10, n_seeds=3, n_particles=2000, n_alte
 
 def study_set_robustness(n_sets=10, n_demos=8, n_particles=2000, n_alternatives=300,
                          seed=0) -> dict:
+    from .features import load_scenario
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
-    truth = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+    truth = load_scenario()['example_preference']
     # only records the demonstrations (one alternative, one option level)
     rec = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,)))
     teacher = SimulatedTeacher(rec, truth, TeacherConfig(model='less', seed=seed + 7))
@@ -330,6 +356,106 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
             'n_runs': n_runs, 'n_draws': n_draws}
 
 
+# ---------------------------------------------------------------- study 6: guided teaching
+#: learner sizes of the guidance study (smaller than the node's 4,000 / 500 so that 48
+#: sessions of 10 demonstrations take a few minutes on two cores)
+GUIDANCE_SIZES = dict(n_particles=1000, n_alternatives=200)
+
+
+def study_tasks(learner) -> list:
+    """Return the tasks of the guidance study: the scenario's tasks, each in both directions."""
+    tasks = list(learner.tasks())
+    return tasks + [(f'{n} (reversed)', g, s) for n, s, g in tasks]
+
+
+def _cos90(cosines, cap: int) -> int:
+    """Return the demonstrations needed to reach cosine 0.9 (``cap`` when never reached)."""
+    for k, c in enumerate(cosines):
+        if c >= 0.9:
+            return k + 1
+    return cap
+
+
+def _guided_session(job) -> dict:
+    """One person taught round-robin or guided (paired: same truth, person and seeds)."""
+    from .guidance import TaskGuide
+    from .learner import Learner, LearnerConfig, StepResult
+    from .sim import SimulatedTeacher, TeacherConfig
+    truth, variant, beta, seed, n_demos, n_particles, n_alternatives, guided = job
+    L = Learner(LearnerConfig(model='less', seed=seed, n_particles=n_particles,
+                              n_alternatives=n_alternatives))
+    person = SimulatedTeacher(L, truth, TeacherConfig(model='less', beta=beta, seed=seed + 1000,
+                                                      **PERSON_VARIANTS[variant]))
+    tasks = study_tasks(L)
+    guide = TaskGuide(L)
+    cos, chosen, gains = [], [], []
+    t = 10**18
+    for k in range(n_demos):
+        if guided:
+            best = guide.propose(tasks)
+            task = (best.name, best.start, best.goal)
+            gains.append(best.gain)
+        else:
+            task = tasks[k % len(tasks)]
+        res, t = person.feed_one(L, k, t, task)
+        if not any(isinstance(r, StepResult) for r in res):
+            raise RuntimeError(f'demonstration {k} of {task[0]} was not learned: {res}')
+        chosen.append(task[0])
+        cos.append(float(L.posteriors['less'].mean_direction() @ truth))
+    return {'variant': variant, 'person_beta': beta, 'guided': guided, 'cosine': cos,
+            'tasks': chosen, 'expected_gain': gains, 'demos_to_cos90': _cos90(cos, n_demos)}
+
+
+def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300, seed=0,
+                   n_jobs=1, scheduler: Optional[str] = None) -> dict:
+    """Guided against round-robin teaching, paired: the same people, truths and seeds.
+
+    Truths uniform on the sphere (as the calibration study); truth i meets the
+    person ``matched`` (beta 5) when i is even, else ``MISMATCHED[(i // 2) % 3]``
+    with beta ``PERSON_BETAS[(i // 6) % 3]``, so the person is not the learner's
+    twin. Round-robin demonstrates :func:`study_tasks` in turn; guided, the
+    task of largest expected information gain among the same tasks. Figures:
+    demonstrations to reach cosine 0.9 (median; never reached counts as
+    ``n_demos``), cosine after 5 and after ``n_demos``.
+    """
+    from .learner import Learner, LearnerConfig
+    d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
+    truths = _random_truths(n_truths, d, 7919 + seed)
+    jobs = []
+    for i, t in enumerate(truths):
+        if i % 2 == 0:
+            variant, beta = 'matched', 5.0
+        else:
+            variant, beta = MISMATCHED[(i // 2) % 3], PERSON_BETAS[(i // 6) % 3]
+        for guided in (False, True):
+            jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
+                         n_alternatives, guided))
+    runs = _run_jobs(_guided_session, jobs, n_jobs, 'guided against round-robin', scheduler)
+    out = {'n_demos': n_demos, 'n_truths': n_truths}
+    for arm, flag in (('round_robin', False), ('guided', True)):
+        rs = [r for r in runs if r['guided'] is flag]
+        cos = np.array([r['cosine'] for r in rs])
+        k5 = min(5, n_demos) - 1
+        need = [r['demos_to_cos90'] for r in rs]
+        out[arm] = {'demos_to_cos90_median': float(np.median(need)),
+                    'cosine_after5_mean': float(cos[:, k5].mean()),
+                    'cosine_final_mean': float(cos[:, -1].mean()),
+                    'cosine_mean_by_demo': cos.mean(0).tolist(), 'runs': rs}
+    rr, gd = out['round_robin'], out['guided']
+    out['figures'] = {
+        'guided_demos_to_cos90_ratio': gd['demos_to_cos90_median']
+        / rr['demos_to_cos90_median'],
+        'guided_cosine_after5_gain': gd['cosine_after5_mean'] - rr['cosine_after5_mean'],
+        'guided_cosine_final_gain': gd['cosine_final_mean'] - rr['cosine_final_mean'],
+        'guided_demos_to_cos90_median': gd['demos_to_cos90_median'],
+        'round_robin_demos_to_cos90_median': rr['demos_to_cos90_median'],
+        'guided_cosine_after5_mean': gd['cosine_after5_mean'],
+        'round_robin_cosine_after5_mean': rr['cosine_after5_mean'],
+        f'guided_cosine_after{n_demos}_mean': gd['cosine_final_mean'],
+        f'round_robin_cosine_after{n_demos}_mean': rr['cosine_final_mean']}
+    return out
+
+
 # ---------------------------------------------------------------- plots and runner
 def _plot_duplicates(r, path):
     plt = _plt()
@@ -377,7 +503,8 @@ def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
 
 
 def run_studies(quick: bool = False, out_dir: Optional[str] = None,
-                n_jobs: int = 1, scheduler: Optional[str] = None) -> Dict[str, object]:
+                n_jobs: int = 1, guidance: bool = True,
+                scheduler: Optional[str] = None) -> Dict[str, object]:
     t0 = time.time()
     sizes = dict(n_truths=2, n_seeds=1, n_demos=6, n_particles=1000, n_alternatives=200) \
         if quick else dict(n_truths=8, n_seeds=3, n_demos=10, n_particles=2000,
@@ -393,6 +520,9 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
                               n_alternatives=sizes['n_alternatives'], n_jobs=n_jobs,
                               scheduler=scheduler)
     sbc = study_sbc(n_runs=60 if quick else 200)
+    guide = study_guidance(n_truths=4 if quick else 24, n_demos=10, n_jobs=n_jobs,
+                           scheduler=scheduler, **GUIDANCE_SIZES) \
+        if guidance else {'figures': {}}
     figures = {
         'dup_share_less_k8': dup['share_lone']['less'][-1],
         'dup_share_boltzmann_k8': dup['share_lone']['boltzmann'][-1],
@@ -417,15 +547,18 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
             if 'regret' in arm[person][m]:
                 figures[f'arm_regret_{m}_on_{person}_people'] = arm[person][m]['regret']['mean']
     figures.update(calibration_figures(calib, sbc))
+    figures.update(guide['figures'])
     figures['validate_wall_s'] = time.time() - t0
     result = {'quick': quick, 'figures': figures, 'duplicates': dup, 'dense_sparse': ds,
-              'arm_people': arm, 'set_robustness': rob, 'calibration': calib, 'sbc': sbc}
+              'arm_people': arm, 'set_robustness': rob, 'calibration': calib, 'sbc': sbc,
+              'guidance': guide}
     if out_dir:
         out = Path(out_dir)
         out.mkdir(parents=True, exist_ok=True)
         (out / 'validation.json').write_text(json.dumps(result, indent=1))
         for name, part in (('duplicates', dup), ('dense_sparse', ds), ('arm_people', arm),
-                           ('set_robustness', rob), ('calibration', calib), ('sbc', sbc)):
+                           ('set_robustness', rob), ('calibration', calib), ('sbc', sbc),
+                           ('guidance', guide)):
             (out / f'{name}.json').write_text(json.dumps(part, indent=1))
         _plot_duplicates(dup, out / 'duplicates.png')
         _plot_bars({'dense entropy': {m: ds['dense'][m]['entropy'] for m in MODELS},

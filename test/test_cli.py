@@ -75,9 +75,9 @@ def test_demo_learns_and_records(demo_run):
     # does not know); quality over many people is the calibration study's (bench calib_*)
     assert res['cosine']['less'] >= 0.8
     assert 'rationality (beta), less' in r.stdout and 'posterior predictive check' in r.stdout
-    assert 'tube_height' in r.stdout and 'session bag' in r.stdout
+    assert 'heat_zone_travel' in r.stdout and 'session bag' in r.stdout
     # the caution on the screen with the weights table, and at the learner node's start
-    table = r.stdout.index('tube_height')
+    table = r.stdout.index('heat_zone_travel')
     assert 0 <= r.stdout.rfind(CAUTION, 0, table)
     assert f'[pref_learner]: {CAUTION}' in r.stderr
 
@@ -129,3 +129,35 @@ def test_report_from_a_bag(demo_run, tmp_path):
     assert r.returncode == 0, r.stderr
     html = (tmp_path / 'rep' / 'report.html').read_text()
     assert 'boltzmann mean' in html and 'less mean' in html
+
+
+def test_guided_demo_demonstrates_the_proposed_tasks(tmp_path):
+    from pref_learner.demonstrations import Demonstration
+    from pref_learner.learner import Learner, LearnerConfig
+    from pref_learner.store import StateStore
+    r = run(['demo', '--guided', '--out', str(tmp_path), '--model', 'less', '--particles',
+             '500', '--alternatives', '80', '--demonstrations', '3'])
+    assert r.returncode == 0, r.stderr[-2000:]
+    lines = r.stdout.splitlines()
+    scenario = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).tasks()
+    tasks = {n: (s, g) for n, s, g in scenario}
+    # the proposal in force when each demonstration began: the last one printed before
+    # the line that reports that demonstration
+    used, last = [], None
+    for line in lines:
+        if line.startswith('next task proposed: '):
+            last = line[len('next task proposed: '):].split(' (')[0]
+        elif line.startswith('after demonstration '):
+            used.append(last)
+    assert len(used) == 3 and all(u in tasks for u in used), r.stdout
+    res = json.loads((tmp_path / 'demo_result.json').read_text())
+    assert res['guided'] and len(res['information_gain']) == 3
+    store = StateStore(res['state_dir'])
+    for name, path in zip(used, store.demo_paths()):
+        q = Demonstration.from_arrays(store.read_demo(path)).q
+        # the person held still at the proposed start and goal (sensor noise 5e-4 rad)
+        np.testing.assert_allclose(q[0], tasks[name][0], atol=0.01)
+        np.testing.assert_allclose(q[-1], tasks[name][1], atol=0.01)
+    assert 'information gained per demonstration, less (nats): ' in r.stdout
+    assert 'still unknown, less: ' in r.stdout
+    assert r.stdout.rfind(CAUTION, 0, r.stdout.index('still unknown')) >= 0

@@ -27,9 +27,10 @@ from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.common import joint_state
 from pref_learner.ros.learner_node import LearnerNode
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 from ros_util import ros_context, spin_until, spinning, teaching_publishers
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 SMALL = dict(n_particles=800, n_alternatives=150)
 GARBAGE_S, GARBAGE_HZ = 21.0, 1200.0
 N_DURING = 5                       # demonstrations taught during the flood

@@ -64,6 +64,45 @@ def test_height_point_capsule_box_by_hand(gantry):
     assert box.raw(q)[0] == pytest.approx(2.0 / 3.0, abs=1e-6)
 
 
+def test_in_cylinder_by_hand(gantry):
+    # Geometry by hand (common practice): a cylinder of radius 0.5 and height 1 standing
+    # on the origin; with a tiny softness the value is the plain indicator.
+    cyl = {'base': [0, 0, 0], 'radius': 0.5, 'height': 1.0, 'softness': 1e-5}
+    f = _one(gantry, 'in_cylinder', cyl, 'mean')
+    assert f.raw(np.array([[0.3, 0.0, 0.5], [0.6, 0.0, 0.5]]))[0] == pytest.approx(0.5)
+    assert f.raw(np.array([[0.0, 0.0, 1.2], [0.0, 0.3, -0.1]]))[0] == pytest.approx(0.0)
+    assert f.raw(np.array([[0.2, -0.2, 0.9], [0.0, 0.0, 0.01]]))[0] == pytest.approx(1.0)
+    # a lying cylinder (axis x, from x = 0 to 1): inside at x 0.5 and 0.1 off axis
+    lying = dict(cyl, axis=[2, 0, 0], radius=0.2)
+    f = _one(gantry, 'in_cylinder', lying, 'mean')
+    q = np.array([[0.5, 0.1, 0.0], [0.5, 0.0, 0.3], [-0.1, 0.0, 0.0], [0.9, 0.0, -0.15]])
+    assert f.raw(q)[0] == pytest.approx(0.5)
+    # metres travelled inside: a straight pass through the middle crosses one diameter
+    line = np.stack([np.linspace(-1, 1, 2001), np.zeros(2001), np.full(2001, 0.5)], 1)
+    f = _one(gantry, 'in_cylinder', cyl, 'integral')
+    assert f.raw(line)[0] == pytest.approx(1.0, abs=2e-3)
+
+
+def test_approach_offset_by_hand(gantry):
+    # Hand computation (common practice geometry): a straight horizontal move along x
+    # with 0.1 m steps, T = 11, fraction 0.2 -> 2 waypoints beside each end, lying
+    # 0.1 and 0.2 m off the vertical through the end: mean of 0.01 and 0.04 = 0.025.
+    x = np.linspace(0, 1, 11)
+    flat = np.stack([x, np.zeros(11), np.zeros(11)], 1)
+    f = _one(gantry, 'approach_offset', {'fraction': 0.2})
+    assert f.raw(flat)[0] == pytest.approx(0.025)
+    # lifting straight up out of the start and lowering straight into the goal: 0
+    z = np.concatenate([[0, 0.1, 0.2], np.full(5, 0.3), [0.2, 0.1, 0]])
+    xs = np.concatenate([[0, 0, 0], np.linspace(0.1, 0.9, 5), [1, 1, 1]])
+    lift = np.stack([xs, np.zeros(11), z], 1)
+    assert f.raw(lift)[0] == pytest.approx(0.0, abs=1e-15)
+    # only the goal end: the flat path's goal side alone, with the offset measured
+    # square to a horizontal axis (y): the x offsets count in full, z none
+    g = _one(gantry, 'approach_offset', {'fraction': 0.2, 'ends': 'goal', 'axis': [0, 1, 0]})
+    assert g.raw(flat)[0] == pytest.approx(0.025)
+    assert g.raw(flat[:, [1, 0, 2]])[0] == pytest.approx(0.0, abs=1e-15)
+
+
 def test_integral_aggregate_by_hand(gantry):
     # A straight 2 m path at constant height 0.5 above the plane: integral = 1.0 m^2.
     q = np.stack([np.linspace(0, 2, 11), np.zeros(11), np.full(11, 0.5)], 1)
@@ -122,7 +161,7 @@ def test_minimum_jerk_profile(gantry):
 def test_batch_equals_single_and_shipped_set():
     robot = RobotModel.default()
     fs = FeatureSet.from_yaml(default_features_path(), robot)
-    assert fs.d == 6 and fs.names[0] == 'tube_height'
+    assert fs.d == 6 and fs.names[0] == 'heat_zone_travel'
     rng = np.random.default_rng(3)
     qs = robot.random_configurations(5 * 16, rng, margin=0.1).reshape(5, 16, 7)
     batch = fs.raw(qs)
@@ -138,13 +177,20 @@ def test_feature_gradients_against_finite_differences():
     # feature of the shipped set, random smooth trajectories, relative error < 1e-5.
     robot = RobotModel.default()
     fs = FeatureSet.from_yaml(default_features_path(), robot)
-    fs = FeatureSet(robot, [s if s.aggregate != 'min' else
+    fs = FeatureSet(robot, [s if s.aggregate not in ('min', 'max') else
                             type(s)(s.name, s.type, s.frame, 'mean', s.params)
                             for s in fs.specs])  # min/max have subgradients only
     extra = FeatureSet.from_yaml({'features': [
         {'name': 'jerk', 'type': 'jerk'},
+        {'name': 'effort', 'type': 'effort'},
+        {'name': 'length', 'type': 'path_length'},
         {'name': 'box', 'type': 'in_box', 'params': {'min': [0, -1, 0], 'max': [1, 1, 1],
                                                      'softness': 0.2}},
+        {'name': 'cyl', 'type': 'in_cylinder', 'aggregate': 'integral',
+         'params': {'base': [0.2, 0.1, 0.0], 'axis': [0.3, 0.0, 1.0], 'radius': 0.3,
+                    'height': 0.8, 'softness': 0.1}},
+        {'name': 'goal_offset', 'type': 'approach_offset', 'frame': 'link_5',
+         'params': {'axis': [1, 1, 0], 'fraction': 0.4, 'ends': 'goal'}},
         {'name': 'h_int', 'type': 'height', 'aggregate': 'integral'}]}, robot)
     rng = np.random.default_rng(4)
     T = 8
@@ -173,6 +219,15 @@ def test_feature_gradients_against_finite_differences():
     ({'name': 'a', 'type': 'height', 'params': {'normal': 'up'}}, 'normal'),
     ({'name': 'A b', 'type': 'height'}, 'name must match'),
     ({'name': 'a', 'type': 'tilt', 'params': {'axis': 'w'}}, 'axis'),
+    ({'name': 'a', 'type': 'in_cylinder', 'params': {'base': [0, 0, 0], 'radius': 0.1}},
+     'height must be a number > 0'),
+    ({'name': 'a', 'type': 'in_cylinder',
+      'params': {'base': [0, 0, 0], 'radius': 0.1, 'height': 1, 'axis': [0, 0, 0]}},
+     'axis must be non-zero'),
+    ({'name': 'a', 'type': 'approach_offset', 'params': {'fraction': 0.7}}, r'\(0, 0.5\]'),
+    ({'name': 'a', 'type': 'approach_offset', 'params': {'ends': 'middle'}},
+     'start, goal or both'),
+    ({'name': 'a', 'type': 'approach_offset', 'aggregate': 'mean'}, 'takes no aggregate'),
     ({'name': 'a', 'type': 'nosuchmodule_xyz:f'}, "module 'nosuchmodule_xyz', which is not "
      'allowed'),
     ({'name': 'a', 'type': 'allowed_but_missing_xyz:f'}, 'cannot be imported'),

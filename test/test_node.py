@@ -13,10 +13,11 @@ from std_srvs.srv import Trigger
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.learner_node import LearnerNode
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 from ros_util import (LATCHED, publish_stream, ros_context, spin_until, spinning,
                       teaching_publishers)
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 TRUE = TRUE / np.linalg.norm(TRUE)
 SMALL = dict(n_particles=2000, n_alternatives=300)
 
@@ -165,7 +166,7 @@ def test_parameters_refused_with_reason():
         while node.learner.recorder.config.dwell != 0.8 and time.time() < deadline:
             time.sleep(0.02)                          # applied by the worker thread
         assert node.learner.recorder.config.dwell == 0.8
-        assert list(node.get_parameter('feature_names').value)[0] == 'tube_height'
+        assert list(node.get_parameter('feature_names').value)[0] == 'heat_zone_travel'
         node.destroy_node()
     with ros_context() as (ctx, ex):
         with pytest.raises(Exception, match='allowed'):

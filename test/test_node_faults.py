@@ -16,10 +16,11 @@ from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.common import publish_paced
 from pref_learner.ros.learner_node import LearnerNode
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 from ros_util import publish_stream, ros_context, spin_until, spinning, teaching_publishers
 from test_storage_faults import Disk
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 SMALL = dict(n_particles=400, n_alternatives=80)
 
 

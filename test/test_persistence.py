@@ -17,10 +17,11 @@ from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.posterior import ParticlePosterior
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
 from pref_learner.ros.common import publish_paced
+from pref_learner.features import load_scenario
 from ros_util import (LATCHED, follow_status, publish_stream, ros_context, spin_until,
                       teaching_publishers)
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 SMALL = dict(n_particles=800, n_alternatives=150)
 
 

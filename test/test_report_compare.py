@@ -15,8 +15,9 @@ from pref_learner.posterior import ParticlePosterior
 from pref_learner.report import write_report
 from pref_learner.safety import CAUTION
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 
 
 @pytest.fixture(scope='module')
@@ -156,3 +157,24 @@ def test_compare_draws_each_set_with_its_stored_seed_index(state, tmp_path):
     q = prepare(demos[0], L.prepare_config, L.robot)
     np.testing.assert_array_equal(records[0][0], L.choice_set(q, 1)[1])
     assert not np.array_equal(records[0][0], L.choice_set(q, 0)[1])
+
+
+def test_report_shows_information_per_demonstration_and_what_is_unknown(state, tmp_path):
+    from pref_learner.guidance import unknown_lines
+    from pref_learner.store import StateStore
+    text = write_report(state, tmp_path / 'rep2').read_text()
+    hist = StateStore(state).read_history()
+    table = re.search(r'<table id="density">(.*?)</table>', text, re.S).group(1)
+    for h in hist:
+        dg = h['diagnostics']
+        for m in ('boltzmann', 'less'):
+            e, g = dg['expected_gain'][m], dg['information_gain'][m]
+            # Cover & Thomas, ch. 2: both are non-negative, the expectation at most log K
+            assert 0.0 <= e <= np.log(150) and g >= 0.0
+            assert f'{m} {e:.3f} / {g:.3f}' in table
+    names = list(Learner(LearnerConfig(n_particles=1, n_alternatives=1)).names)
+    unknown = re.search(r'<ul id="unknown">(.*?)</ul>', text, re.S).group(1)
+    for m in ('boltzmann', 'less'):
+        s = ParticlePosterior.load(state / f'posterior_{m}').summary()
+        for line in unknown_lines(s, names):
+            assert html.escape(f'{m}: {line}') in unknown

@@ -20,8 +20,9 @@ from pref_learner import store as store_mod
 from pref_learner.demonstrations import Demonstration, prepare
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
+from pref_learner.features import load_scenario
 
-TRUE = np.array([0.3, 0.5, 0.3, -0.6, -0.2, -0.4])
+TRUE = load_scenario()['example_preference']  # the demo's person (shipped scenario)
 SMALL = dict(n_particles=600, n_alternatives=120)
 
 

@@ -44,8 +44,9 @@ def folder(tmp_path_factory):
     v = truths[0]
     people = {f'p{i:02d}': (t, 'A' if t @ v > 0 else 'B') for i, t in enumerate(truths)}
     # the same person as p03's bag, stored as a state directory
+    base = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1))
     write_simulated_session(sessions / 'p03_state', truths[3], N_DEMOS,
-                            TeacherConfig(seed=103, beta=10.0), kind='state_dir')
+                            TeacherConfig(seed=103, beta=10.0), kind='state_dir', learner=base)
     people['p03_state'] = (truths[3], people['p03'][1])
     # a bag whose data were damaged on disk
     shutil.copytree(sessions / 'p03', sessions / 'z_corrupt_bag')
@@ -54,13 +55,13 @@ def folder(tmp_path_factory):
         f.write_bytes(data[:64] + b'\x00' * 4096 + data[len(data) // 2:])
     # a session where the only demonstration was rejected (one sample)
     e = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1,
-                              state_dir=str(sessions / 'z_empty')))
+                              state_dir=str(sessions / 'z_empty')), scales=base.features.scales)
     e.set_teaching(True)
     e.feed(1, e.robot.joint_names, np.zeros(e.robot.n))
     e.set_teaching(False)
     e.save()
     # another robot's joint names
-    SimulatedTeacher(e, v, TeacherConfig(seed=5)).write_bag(
+    SimulatedTeacher(base, v, TeacherConfig(seed=5)).write_bag(
         sessions / 'z_other_robot', 2, joint_names=[f'other_{j}' for j in range(e.robot.n)])
     # a state directory whose stored demonstrations name another robot's joints
     from pref_learner.store import npz_bytes, read_npz

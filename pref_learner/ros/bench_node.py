@@ -11,8 +11,6 @@ from typing import Dict
 
 import numpy as np
 
-TRUE = (0.3, 0.5, 0.3, -0.6, -0.2, -0.4)
-
 
 def _rss_mb(pid: int) -> float:
     with open(f'/proc/{pid}/status') as f:
@@ -42,6 +40,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     from std_msgs.msg import Bool, Float64MultiArray
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
+    from ..features import load_scenario
     from ..learner import Learner, LearnerConfig
     from .common import publish_paced
     from ..sim import SimulatedTeacher, TeacherConfig
@@ -56,7 +55,8 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                             env=env)
     latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.TRANSIENT_LOCAL)
-    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)), TRUE,
+    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                               load_scenario()['example_preference'],
                                TeacherConfig())
     names = list(teacher.learner.robot.joint_names)
     try:

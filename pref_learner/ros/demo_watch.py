@@ -17,7 +17,7 @@ def watch_session(n_demonstrations, truth, learner):
     from std_msgs.msg import Bool
     qos = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                      durability=DurabilityPolicy.TRANSIENT_LOCAL)
-    state = {'n': 0, 'status': {}, 'demo_on': None}
+    state = {'n': 0, 'status': {}, 'demo_on': None, 'proposal': None}
     deadline = time.time() + 60 + n_demonstrations * 20
     with rclpy.init():
         node = rclpy.create_node('pref_learner_demo_watch')
@@ -62,6 +62,14 @@ def watch_session(n_demonstrations, truth, learner):
                     parts.append(f'{m}: cos {w @ truth:+.2f}, concentration '
                                  f'{float(v["concentration"]):.3f}, ESS {float(v["ess"]):.0f}')
                 print(f'after demonstration {done}: ' + '; '.join(parts), flush=True)
+            first = next(iter(state['status'].values()), {})
+            proposal = (first.get('next_task', ''), first.get('next_task_gain', ''))
+            if proposal[0] and proposal != state['proposal'] and done < n_demonstrations:
+                state['proposal'] = proposal
+                if bar is not None:
+                    bar.clear()
+                print(f'next task proposed: {proposal[0]} (expected information gain '
+                      f'{float(proposal[1]):.3f} nats)', flush=True)
             if done >= n_demonstrations:
                 break
         if bar is not None:

@@ -16,7 +16,10 @@ Threads and who owns what:
   with ``TypeName: message``;
 - the worker thread owns the :class:`Learner`, handles both queues in arrival
   order, publishes, and after changing anything builds an immutable
-  :class:`StatusSnapshot` that the timer only reads.
+  :class:`StatusSnapshot` that the timer only reads. After each estimate is
+  published it scores the candidate tasks (the scenario's and those given on
+  ``~/candidate_tasks``) and publishes the most informative one latched
+  (:mod:`pref_learner.guidance`); the estimate never waits for it.
 """
 
 from __future__ import annotations
@@ -38,12 +41,13 @@ from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityP
 from rclpy.qos_overriding_options import QoSOverridingOptions
 from rclpy.serialization import deserialize_message
 from sensor_msgs.msg import JointState
-from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension
+from std_msgs.msg import Bool, Float64, Float64MultiArray, MultiArrayDimension
 from std_srvs.srv import Trigger
-from trajectory_msgs.msg import JointTrajectory
+from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
 from ..bags import estimate_arrays
+from ..guidance import TaskGuide, unknown_lines
 from ..learner import Learner, LearnerConfig, StepResult
 from ..report import estimate_status_values
 from .common import QueueWorker
@@ -120,6 +124,8 @@ _PARAMS = {
                        (0.0, 1e9), False),
 }
 _RUNTIME = {k for k, v in _PARAMS.items() if not v[2]}
+#: user-supplied candidate tasks kept at most (the oldest goes first)
+MAX_USER_TASKS = 32
 
 
 @dataclass(frozen=True)
@@ -168,6 +174,18 @@ class LearnerNode(Node):
         self._declare_parameters()
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
+        self._guide = TaskGuide(self.learner)
+        self._scenario_tasks = []
+        for name, start, goal in self.learner.tasks():
+            try:
+                for q in (start, goal):
+                    self.learner.robot.check_configurations(q, f'scenario task {name}')
+                self._scenario_tasks.append((name, start, goal))
+            except ValueError as exc:
+                self.get_logger().warning(f'{exc}; not proposed')
+        self._user_tasks = collections.OrderedDict()   # name -> (start, goal), worker only
+        self._proposal = None
+        self._proposal_ms = float('nan')
         self.learner.recorder.set_max_skew(self.get_parameter('max_stamp_skew').value)
         for m in self.learner.messages:
             if m in getattr(self.learner, 'quarantined', ()):
@@ -189,6 +207,7 @@ class LearnerNode(Node):
         self._publish_estimates()
         self._note_storage()
         self._worker.start()
+        self._worker.put_control(('propose',))         # what to teach first, at the prior
         self._start_services()
         period = self.get_parameter('publish_period').value
         self.create_timer(period, self._republish)
@@ -275,6 +294,7 @@ class LearnerNode(Node):
             qos_overriding_options=QoSOverridingOptions.with_default_policies())
         self.create_subscription(Bool, '~/teaching', self._on_teaching, 10)
         self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10)
+        self.create_subscription(JointTrajectory, '~/candidate_tasks', self._on_candidate, 10)
         self._pubs = {}
         prefixes = [''] if len(self.config.models) == 1 else [f'{m}/' for m in self.config.models]
         for m, pre in zip(self.config.models, prefixes):
@@ -284,6 +304,10 @@ class LearnerNode(Node):
         self._status_pub = self.create_publisher(DiagnosticArray, '~/status', ESTIMATE_QOS)
         self._diag_pub = self.create_publisher(DiagnosticArray, '/diagnostics', 10)
         self._marker_pub = self.create_publisher(MarkerArray, '~/markers', ESTIMATE_QOS)
+        self._next_pub = self.create_publisher(JointTrajectory, '~/next_task', ESTIMATE_QOS)
+        self._gain_pub = self.create_publisher(Float64, '~/next_task_gain', ESTIMATE_QOS)
+        self._next_markers_pub = self.create_publisher(MarkerArray, '~/next_task_markers',
+                                                       ESTIMATE_QOS)
 
     def _start_services(self):
         """Serve the Trigger services from a private node spun on its own thread.
@@ -342,6 +366,9 @@ class LearnerNode(Node):
 
     def _on_trajectory(self, msg: JointTrajectory):
         self._enqueue(('traj', self._now(), msg))
+
+    def _on_candidate(self, msg: JointTrajectory):
+        self._worker.put_control(('task', msg))
 
     def _on_service(self, kind, resp):
         """Queue the request and wait for the worker's answer (on the service thread)."""
@@ -436,6 +463,11 @@ class LearnerNode(Node):
                 self._warn('internal_error', f'service {what}: {box["message"]}')
             finally:
                 done.set()
+        elif kind == 'task':
+            if self._add_user_task(item[1]):
+                self._propose()
+        elif kind == 'propose':
+            self._propose()
         elif kind == 'config':
             self._apply_runtime(item[1])
         elif kind == 'skew':
@@ -493,6 +525,7 @@ class LearnerNode(Node):
         if what == 'reset':
             where = L.reset()
             self._publish_estimates()
+            self._propose()
             return True, f'reset; previous state archived in {where}' if where else 'reset'
         if what == 'save':
             if L.store is None:
@@ -505,6 +538,7 @@ class LearnerNode(Node):
             if not L.discard_last():
                 return False, 'no demonstration to discard'
             self._publish_estimates()
+            self._propose()
             return True, f'discarded; {L.n_demonstrations} demonstrations remain'
         return False, f'unknown request {what}'
 
@@ -551,8 +585,10 @@ class LearnerNode(Node):
         self._publish_estimates()
 
     def _results(self, results):
+        learned = False
         for r in results:
             if isinstance(r, StepResult):
+                learned = True
                 self._latency = r.latency_s
                 self.counters['accepted'] += 1
                 self._publish_estimates()
@@ -564,6 +600,103 @@ class LearnerNode(Node):
             else:
                 self.counters['rejected'] += 1
                 self.last_warning = f'{r.reason}: {r.detail}'
+        if learned:              # after the estimates are out: they never wait for this
+            self._propose()
+
+    # ------------------------------------------------------------ what to teach next
+    def _add_user_task(self, msg: JointTrajectory) -> bool:
+        """Take a candidate task (two points: start, goal); no points clears the user's tasks.
+
+        The message has no name field: ``header.frame_id`` names the task
+        (``user_<k>`` when empty); a name given again replaces its task.
+        """
+        if not msg.points:
+            self._user_tasks.clear()
+            return True
+        try:
+            if len(msg.points) != 2:
+                raise ValueError(f'needs exactly 2 points (start, goal), got {len(msg.points)}')
+            names = list(msg.joint_names)
+            missing = [j for j in self.learner.robot.joint_names if j not in names]
+            if missing:
+                raise ValueError(f'lacks joints {missing}')
+            idx = [names.index(j) for j in self.learner.robot.joint_names]
+            ends = []
+            for p in msg.points:
+                if len(p.positions) != len(names):
+                    raise ValueError(f'a point has {len(p.positions)} positions for '
+                                     f'{len(names)} joint names')
+                q = np.array([p.positions[i] for i in idx], dtype=np.float64)
+                ends.append(self.learner.robot.check_configurations(q, 'task'))
+        except ValueError as exc:
+            self._warn('bad_task', f'~/candidate_tasks refused: {exc}')
+            return False
+        name = msg.header.frame_id.strip() or f'user_{self.counters["user_tasks"] + 1}'
+        self.counters['user_tasks'] += 1
+        self._user_tasks.pop(name, None)
+        self._user_tasks[name] = (ends[0], ends[1])
+        while len(self._user_tasks) > MAX_USER_TASKS:
+            self._user_tasks.popitem(last=False)
+        return True
+
+    def _candidates(self):
+        return self._scenario_tasks + [(n, s, g) for n, (s, g) in self._user_tasks.items()]
+
+    def _propose(self):
+        """Score the candidate tasks and publish the most informative one (worker thread)."""
+        t = time.perf_counter()
+        best = self._guide.propose(self._candidates())
+        self._proposal_ms = (time.perf_counter() - t) * 1e3
+        self._proposal = best
+        if best is None:
+            return
+        robot = self.learner.robot
+        msg = JointTrajectory()
+        msg.header.stamp = self.get_clock().now().to_msg()
+        msg.header.frame_id = best.name
+        msg.joint_names = list(robot.joint_names)
+        for k, q in enumerate((best.start, best.goal)):
+            pt = JointTrajectoryPoint()
+            pt.positions = [float(x) for x in q]
+            pt.time_from_start.sec = 3 * k
+            msg.points.append(pt)
+        self._next_pub.publish(msg)
+        self._gain_pub.publish(Float64(data=float(best.gain)))
+        tool = robot.frame_poses(np.stack([best.start, best.goal]),
+                                 [robot.tool_frame]).positions[:, 0]
+        self._next_markers_pub.publish(self._task_markers(best, tool))
+        self._status_dirty = True
+
+    def _task_markers(self, best, tool) -> MarkerArray:
+        """Spheres at the tool's start (green) and goal (red), an arrow and a label."""
+        from geometry_msgs.msg import Point
+        arr = MarkerArray()
+        pts = [Point(x=float(p[0]), y=float(p[1]), z=float(p[2])) for p in tool]
+        for i, (kind, colour) in enumerate(((Marker.SPHERE, (0.1, 0.8, 0.2)),
+                                            (Marker.SPHERE, (0.9, 0.2, 0.1)),
+                                            (Marker.ARROW, (0.2, 0.4, 0.9)),
+                                            (Marker.TEXT_VIEW_FACING, (1.0, 1.0, 1.0)))):
+            mk = Marker()
+            mk.header.frame_id = self.learner.robot.root_link
+            mk.ns = 'next_task'
+            mk.id = i
+            mk.type = kind
+            mk.action = Marker.ADD
+            mk.pose.orientation.w = 1.0
+            mk.color.r, mk.color.g, mk.color.b = colour
+            mk.color.a = 1.0
+            if kind == Marker.SPHERE:
+                mk.pose.position = pts[i]
+                mk.scale.x = mk.scale.y = mk.scale.z = 0.05
+            elif kind == Marker.ARROW:
+                mk.points = pts
+                mk.scale.x, mk.scale.y, mk.scale.z = 0.01, 0.025, 0.03
+            else:
+                mk.pose.position = Point(x=pts[0].x, y=pts[0].y, z=pts[0].z + 0.08)
+                mk.scale.z = 0.04
+                mk.text = f'next: {best.name} ({best.gain:.2f} nats)'
+            arr.markers.append(mk)
+        return arr
 
     # ------------------------------------------------------------ publishing
     def _publish_estimates(self):
@@ -611,6 +744,15 @@ class LearnerNode(Node):
             ('pending_writes', str(len(L.store.pending) if L.store else 0)),
             ('quarantined', str(len(quarantined))),
             ('feature_names', json.dumps(list(L.names)))]
+        best = self._proposal
+        common += [('next_task', best.name if best else ''),
+                   ('next_task_gain', f'{best.gain:.4f}' if best else 'nan'),
+                   ('next_task_start', json.dumps(np.round(best.start, 4).tolist())
+                    if best else '[]'),
+                   ('next_task_goal', json.dumps(np.round(best.goal, 4).tolist())
+                    if best else '[]'),
+                   ('next_task_ms', f'{self._proposal_ms:.1f}'),
+                   ('candidate_tasks', json.dumps([t[0] for t in self._candidates()]))]
         common += [(f'samples_{k}', str(rc.get(k, 0))) for k in _SAMPLE_COUNTERS]
         common += [(f'node_{k}', str(v)) for k, v in sorted(self.counters.items())]
         models = []
@@ -619,7 +761,11 @@ class LearnerNode(Node):
             values = [('model', m), ('ess', f'{s.ess:.1f}'),
                       ('concentration', f'{s.concentration:.4f}'),
                       ('demonstrations', str(s.n_demonstrations)),
-                      ('weights', json.dumps(np.round(s.mean, 6).tolist()))]
+                      ('weights', json.dumps(np.round(s.mean, 6).tolist())),
+                      ('weights_ci90_low', json.dumps(np.round(s.ci_low, 4).tolist())),
+                      ('weights_ci90_high', json.dumps(np.round(s.ci_high, 4).tolist())),
+                      ('weights_std', json.dumps(np.round(s.std, 4).tolist())),
+                      ('unknown', json.dumps(unknown_lines(s, L.names)))]
             values += list(estimate_status_values(s, L.option_labels(), diagnostics).items())
             models.append((m, tuple(values + common)))
         msg = f'{L.n_demonstrations} demonstrations' + (f'; {text}' if text else '')

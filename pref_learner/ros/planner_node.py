@@ -3,7 +3,10 @@
 """ROS 2 planner node: turns the learner's current estimate into proposed trajectories.
 
 ``~/trajectory`` is an unchecked proposal timed to the URDF velocity limits: never
-wire it to a controller without the controller stack's own checks.
+wire it to a controller without the controller stack's own checks. Every plan is
+logged with its convergence (iterations, projected-gradient norm, cost, time); a
+plan that did not meet the stopping rule is logged as a warning and counted
+(``plans_not_converged``).
 """
 
 from __future__ import annotations
@@ -67,6 +70,7 @@ class PlannerNode(Node):
         self.particles = None
         self.counters = collections.Counter()
         self.last_warning = ''
+        self.last_plan = None          # PlanResult of the last published trajectory
         self.create_subscription(Float64MultiArray, g('weights_topic'), self._on_weights, LATCHED)
         self.create_subscription(Float64MultiArray, g('particles_topic'), self._on_particles,
                                  LATCHED)
@@ -140,6 +144,12 @@ class PlannerNode(Node):
             p.time_from_start = Duration(sec=int(ti), nanosec=int((ti % 1.0) * 1e9))
             out.points.append(p)
         self.traj_pub.publish(out)
+        self.last_plan = res
+        if res.converged:
+            self.get_logger().info(res.summary())
+        else:
+            self._warn('plans_not_converged', f'{res.summary()} ({res.message}); published '
+                       'anyway: the proposal is feasible but not locally optimal')
         mk = Marker()
         mk.header.frame_id = self.robot.root_link
         mk.ns = 'plan'

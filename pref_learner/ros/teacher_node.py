@@ -20,6 +20,7 @@ from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
 
+from ..features import load_scenario
 from ..learner import Learner, LearnerConfig
 from ..safety import allow_network_requested, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
@@ -32,7 +33,8 @@ class TeacherNode(Node):
     def __init__(self, **kwargs):
         super().__init__('simulated_teacher', **kwargs)
         p = {
-            'true_weights': ([0.3, 0.5, 0.3, -0.6, -0.2, -0.4], 'the person\'s true weights'),
+            'true_weights': ([0.0], 'the person\'s true weights in feature order; all zero: '
+                             'the feature file\'s scenario.example_preference'),
             'model': ('less', 'how the person chooses: boltzmann or less'),
             'beta': (5.0, 'the person\'s rationality'),
             'n_demonstrations': (8, 'demonstrations to give'),
@@ -47,6 +49,11 @@ class TeacherNode(Node):
             'features': ('', 'feature YAML (as the learner)'),
             'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
             'allow_network': (False, 'publish even when DDS discovery reaches other machines'),
+            'follow_proposals': (False, 'demonstrate the task the learner proposes on '
+                                 'proposal_topic (waits up to proposal_timeout for a new one '
+                                 'after each demonstration)'),
+            'proposal_topic': ('/pref_learner/next_task', 'the learner\'s proposed next task'),
+            'proposal_timeout': (30.0, 'longest wait for a new proposal, s'),
         }
         declare_read_only(self, p)
         declare_feature_modules(self)
@@ -57,8 +64,14 @@ class TeacherNode(Node):
         self.learner = Learner(LearnerConfig(features=g('features'), n_particles=1,
                                              n_alternatives=1,
                                              calibration_seed=g('calibration_seed')))
+        truth = np.asarray(g('true_weights'), dtype=np.float64)
+        if not np.any(truth):
+            truth = load_scenario(g('features') or None)['example_preference']
+            if truth is None:
+                raise ValueError('true_weights not given and the feature file has no '
+                                 'scenario.example_preference')
         self.teacher = SimulatedTeacher(
-            self.learner, g('true_weights'),
+            self.learner, truth,
             TeacherConfig(model=g('model'), beta=g('beta'), seed=g('seed'), rate=g('rate'),
                           duration=g('duration')))
         self.js_pub = self.create_publisher(
@@ -67,13 +80,39 @@ class TeacherNode(Node):
         self.teach_pub = self.create_publisher(Bool, g('teaching_topic'), 10)
         self.progress_pub = self.create_publisher(Bool, '~/demonstrating', 10)
         self.finished = threading.Event()
+        self._proposals = []                  # (name, start, goal), appended by the executor
+        self._proposal_seen = threading.Condition()
+        if g('follow_proposals'):
+            from rclpy.qos import DurabilityPolicy
+            from trajectory_msgs.msg import JointTrajectory
+            self.create_subscription(JointTrajectory, g('proposal_topic'), self._on_proposal,
+                                     QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                                                durability=DurabilityPolicy.TRANSIENT_LOCAL))
         self.get_logger().info(f'simulated joint states on {self.js_pub.topic_name} only')
         self._thread = threading.Thread(target=self._play, daemon=True)
         self._thread.start()
 
+    def _on_proposal(self, msg):
+        names = list(msg.joint_names)
+        chain = self.learner.robot.joint_names
+        if len(msg.points) != 2 or any(j not in names for j in chain):
+            return
+        idx = [names.index(j) for j in chain]
+        ends = [np.array([p.positions[i] for i in idx]) for p in msg.points]
+        with self._proposal_seen:
+            self._proposals.append((msg.header.frame_id, ends[0], ends[1]))
+            self._proposal_seen.notify_all()
+
+    def _next_task(self, seen: int, timeout: float):
+        """Wait for a proposal after the first ``seen`` ones (or take the latest one)."""
+        with self._proposal_seen:
+            self._proposal_seen.wait_for(lambda: len(self._proposals) > seen, timeout)
+            return (self._proposals[-1] if self._proposals else None), len(self._proposals)
+
     def _play(self):
         g = lambda k: self.get_parameter(k).value  # noqa: E731
         time.sleep(g('start_delay'))
+        seen = 0
         names = list(self.learner.robot.joint_names) + ['finger_left_joint', 'finger_right_joint']
         period = 1.0 / g('rate')
         for k in range(g('n_demonstrations')):
@@ -81,7 +120,10 @@ class TeacherNode(Node):
                 return
             # stamped at the simulated person's sample times, so a stall of this process
             # under load delays samples but never opens a gap between their stamps
-            stamps, q = self.teacher.stream(k, self.get_clock().now().nanoseconds)
+            task = None
+            if g('follow_proposals'):
+                task, seen = self._next_task(seen, g('proposal_timeout'))
+            stamps, q = self.teacher.stream(k, self.get_clock().now().nanoseconds, task)
             self.teach_pub.publish(Bool(data=True))
             self.progress_pub.publish(Bool(data=True))
             t_next = time.perf_counter()
@@ -95,7 +137,8 @@ class TeacherNode(Node):
             time.sleep(g('release_delay'))
             self.teach_pub.publish(Bool(data=False))
             self.progress_pub.publish(Bool(data=False))
-            self.get_logger().info(f'demonstration {k + 1} given')
+            self.get_logger().info(f'demonstration {k + 1} given'
+                                   + (f' ({task[0]}, as proposed)' if task else ''))
             time.sleep(g('pause'))
         self.finished.set()
 
