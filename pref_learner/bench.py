@@ -219,7 +219,7 @@ def study_benchmark(quick: bool = False) -> Dict[str, float]:
     out: Dict[str, float] = {}
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
-        simulated_study_folder(tmp / 'sessions', n_demonstrations=4 if quick else 6)
+        simulated_study_folder(tmp / 'sessions', n_demonstrations=4 if quick else 8)
         params = tmp / 'params.yaml'
         params.write_text('n_particles: %d\nn_alternatives: %d\n'
                           % ((500, 100) if quick else (1000, 150)))

@@ -946,8 +946,9 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
     """
     import pyarrow.parquet as pq
 
-    from .features import allow_feature_modules
-    from .learner import Learner, LearnerConfig
+    from .features import FeatureSet, allow_feature_modules, default_features_path
+    from .learner import LearnerConfig
+    from .robot import RobotModel, default_urdf_path
     t0 = time.perf_counter()
     settings = load_settings(params)
     out = Path(out)
@@ -956,9 +957,11 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
     sessions = [(p, path) for p, path in find_sessions(folder)
                 if path.resolve() != out.resolve()]      # an --out inside the folder
     allow_feature_modules(feature_modules)
-    names = list(Learner(LearnerConfig(**dict(settings.learner, model='both',
-                                              seed=settings.seed, n_particles=1,
-                                              n_alternatives=1))).names)
+    cfg = LearnerConfig(model='both', seed=settings.seed, **settings.learner)
+    robot = RobotModel(cfg.urdf or str(default_urdf_path()), joint_names=cfg.joint_names or None,
+                       tool_frame=cfg.tool_frame, clamp=cfg.clamp)      # checks URDF and
+    names = list(FeatureSet.from_yaml(cfg.features or str(default_features_path()),
+                                      robot).names)                     # features up front
     tasks = [ParticipantTask(p, str(path.resolve()), dict(settings.learner),
                              participant_seed(settings.seed, p),
                              settings.leave_one_out, settings.max_stamp_skew,
