@@ -179,12 +179,81 @@ def demo_benchmark(quick: bool = False) -> Dict[str, float]:
     return {'demo_wall_s': time.perf_counter() - t, 'demo_exit_code': r.returncode}
 
 
+def simulated_study_folder(folder, n_per_kind: int = 8, n_demonstrations: int = 6,
+                           seed: int = 17) -> List[np.ndarray]:
+    """Write a study of two kinds of person (truths +v and -v) into ``folder``.
+
+    Participant i is ``p<i>``: a state directory, every fourth one a bag; returns
+    the true weights in participant order. ``v`` is a random unit vector of the
+    learner's feature count (any scenario).
+    """
+    from pathlib import Path
+
+    from .learner import Learner, LearnerConfig
+    from .sim import TeacherConfig, write_simulated_session
+    folder = Path(folder)
+    base = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1))
+    v = np.random.default_rng(seed).standard_normal(base.features.d)
+    v /= np.linalg.norm(v)
+    truths = []
+    for i in range(2 * n_per_kind):
+        truth = v if i % 2 == 0 else -v
+        kind = 'bag' if i % 4 == 3 else 'state_dir'
+        write_simulated_session(folder / f'p{i:02d}', truth, n_demonstrations,
+                                TeacherConfig(seed=100 + i, beta=10.0), kind=kind,
+                                learner=base)
+        truths.append(truth)
+    return truths
+
+
+def study_benchmark(quick: bool = False) -> Dict[str, float]:
+    """Wall time of ``pref-learner study`` on 16 simulated participants, 1 and 2 workers.
+
+    Also runs the same study on a Dask LocalCluster of two worker processes
+    (loopback, no dashboard) and checks that its tables equal the local ones.
+    """
+    import tempfile
+    from pathlib import Path
+
+    from .study import run_study
+    out: Dict[str, float] = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        tmp = Path(tmp)
+        simulated_study_folder(tmp / 'sessions', n_demonstrations=4 if quick else 8)
+        params = tmp / 'params.yaml'
+        params.write_text('n_particles: %d\nn_alternatives: %d\n'
+                          % ((500, 100) if quick else (1000, 150)))
+        runs = {}
+        for workers in (1, 2):
+            t = time.perf_counter()
+            runs[workers] = run_study(tmp / 'sessions', params, tmp / f'out{workers}',
+                                      workers=workers)
+            out[f'study_wall_s_{workers}_worker{"s" if workers > 1 else ""}'] = \
+                time.perf_counter() - t
+        out['study_speedup_2_workers'] = out['study_wall_s_1_worker'] / \
+            out['study_wall_s_2_workers']
+        from distributed import LocalCluster
+        with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host='127.0.0.1',
+                          dashboard_address=None) as cluster:
+            t = time.perf_counter()
+            dask = run_study(tmp / 'sessions', params, tmp / 'outdask',
+                             scheduler=cluster.scheduler_address)
+            out['study_wall_s_dask_2_workers'] = time.perf_counter() - t
+        same = all(runs[w][k].equals(dask[k]) for w in (1, 2)
+                   for k in ('participants_table', 'demonstrations_table'))
+        out['study_identical_across_backends'] = int(same)
+        out['study_participants'] = runs[1]['n_participants']
+        out['study_participants_analysed'] = runs[1]['n_ok']
+    return out
+
+
 def run_benchmarks(quick: bool = False, parts: List[str] = None,
                    out_dir=None) -> Dict[str, float]:
     """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
-    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'guidance']
+    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'guidance',
+                      'study']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
     if 'core' in parts:
         res.update(core_benchmarks(quick))
@@ -209,4 +278,6 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
         res['calibration_wall_s'] = time.perf_counter() - t
     if 'guidance' in parts:
         res.update(guidance_benchmarks(quick))
+    if 'study' in parts:
+        res.update(study_benchmark(quick))
     return res

@@ -1,6 +1,6 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""``pref-learner``: the command line (demo, watch, learn, bench, ...).
+"""``pref-learner``: the command line (demo, watch, learn, report, compare, study, ...).
 
 Errors are one line on stderr and exit code 2 (``--debug`` shows the traceback).
 The demo keeps DDS discovery on this machine (ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST,
@@ -245,13 +245,38 @@ def cmd_bench(args) -> int:
 # ---------------------------------------------------------------- validate
 def cmd_validate(args) -> int:
     from .validate import run_studies
-    res = run_studies(quick=args.quick, out_dir=args.out)
+    if args.workers < 1:
+        raise CliError(f'--workers must be >= 1, got {args.workers}')
+    res = run_studies(quick=args.quick, out_dir=args.out, n_jobs=args.workers,
+                      scheduler=args.scheduler)
     text = json.dumps(res['figures'], indent=1, sort_keys=True)
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)
         Path(args.json).write_text(text)
     print(text)
     print(f'studies written to {args.out}')
+    return 0
+
+
+# ---------------------------------------------------------------- study
+def cmd_study(args) -> int:
+    from .study import run_study, summary_lines
+    folder = Path(args.folder)
+    if not folder.is_dir():
+        raise CliError(f'study folder {folder} is not a directory')
+    if args.workers < 1:
+        raise CliError(f'--workers must be >= 1, got {args.workers}')
+    res = run_study(folder, args.params, args.out, workers=args.workers,
+                    scheduler=args.scheduler, feature_modules=args.feature_module)
+    print(CAUTION)
+    print(f'{res["n_ok"]} of {res["n_participants"]} participants analysed on '
+          f'{res["backend"]} in {res["wall_s"]:.1f} s')
+    for line in summary_lines(res):
+        print(line)
+    print(f'report: {res["report"]}')
+    print(f'tables: {Path(args.out) / "participants.parquet"}, '
+          f'{Path(args.out) / "demonstrations.parquet"}; summary: '
+          f'{Path(args.out) / "summary.json"}')
     return 0
 
 
@@ -345,6 +370,14 @@ def _feature_module_option(p) -> None:
                    'imports code')
 
 
+def _executor_options(p, what: str) -> None:
+    p.add_argument('--workers', type=int, default=1,
+                   help=f'local worker processes for {what} (default 1)')
+    p.add_argument('--scheduler', metavar='ADDR',
+                   help='run on this Dask distributed scheduler instead (tcp://host:port); '
+                   'its workers must see the same files at the same paths')
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog='pref-learner', description=(
         'Learn what a person teaching a robot arm cares about (weights over task features).'))
@@ -388,7 +421,19 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument('--out', default='out/validate', help='directory for JSON and PNG files')
     v.add_argument('--json', help='also write the summary figures to this file')
     v.add_argument('--quick', action='store_true', help='small sizes')
+    _executor_options(v, 'the calibration study\'s simulated sessions')
     v.set_defaults(func=cmd_validate)
+
+    st = sub.add_parser('study', help='analyse a folder of sessions (one per participant) '
+                        'together: estimates, model comparison, population')
+    st.add_argument('folder', help='one state directory or rosbag2 bag per participant')
+    st.add_argument('--params', required=True, metavar='PARAMS.yaml',
+                    help='learner settings (flat keys or a ROS 2 params file) and an optional '
+                    'study: block (group_angle, min_group, n_groups, leave_one_out)')
+    st.add_argument('--out', required=True, help='new directory for report, tables, summary')
+    _executor_options(st, 'participants')
+    _feature_module_option(st)
+    st.set_defaults(func=cmd_study)
 
     r = sub.add_parser('report', help='HTML report of a state directory or a bag')
     r.add_argument('source', help='state directory, or a bag to learn from first')
@@ -412,7 +457,7 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
     b.add_argument('--only', nargs='+',
                    choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration',
-                            'guidance'],
+                            'guidance', 'study'],
                    help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p

@@ -192,11 +192,14 @@ class StepResult:
 class Learner:
     """The pipeline (see module docstring)."""
 
-    def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None):
+    def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None,
+                 scales=None):
         """Build the pipeline.
 
         ``on_estimate(StepResult)`` is called as soon as a demonstration has been
         weighed in, before the (slower) rejuvenation moves; the node publishes there.
+        ``scales``: the feature scales to use (d,), instead of the feature file's or a
+        calibration (a state directory's stored scales still take precedence).
         """
         self.config = config
         self.on_estimate = on_estimate
@@ -205,7 +208,9 @@ class Learner:
                                 tool_frame=config.tool_frame, clamp=config.clamp)
         fpath = config.features or str(default_features_path())
         fs = FeatureSet.from_yaml(fpath, self.robot)
-        if fs.scales is None:
+        if scales is not None:
+            fs = fs.with_scales(scales)
+        elif fs.scales is None:
             fs = fs.with_scales(self._calibrate(fs))
         self.features = fs
         if config.mix_planner > 0:
@@ -437,9 +442,24 @@ class Learner:
         self.recorder.reconfigure(config.segment_config())
         self.config = config
 
-    def add_demonstration(self, demo: Demonstration) -> List[object]:
-        """Learn from a whole demonstration; returns [StepResult] or [Rejection]."""
+    def add_demonstration(self, demo: Demonstration,
+                          index: Optional[int] = None) -> List[object]:
+        """Learn from a whole demonstration; returns [StepResult] or [Rejection].
+
+        ``index``: the seed index to learn it with (a stored file's number, which
+        skips the slots of quarantined demonstrations); default the next one.
+        """
+        if index is not None:
+            if index < len(self._demos):
+                raise ValueError(f'seed index {index} is already taken (next free: '
+                                 f'{len(self._demos)})')
+            self._demos.extend([None] * (index - len(self._demos)))
         return self._handle([demo])
+
+    @property
+    def demonstrations(self) -> Tuple[Optional[Demonstration], ...]:
+        """Return the learned demonstrations by seed index (None in skipped slots)."""
+        return tuple(self._demos)
 
     def save(self) -> None:
         """Write the posterior(s) and manifest now (they are also written after each update)."""

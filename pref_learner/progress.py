@@ -2,7 +2,10 @@
 # SPDX-License-Identifier: Apache-2.0
 """Progress bars for long work (tqdm on a terminal, silent otherwise)."""
 
+import contextlib
 import sys
+
+_quiet = False
 
 
 def progress(iterable, desc: str, total=None):
@@ -11,4 +14,16 @@ def progress(iterable, desc: str, total=None):
         from tqdm import tqdm
     except ImportError:  # pragma: no cover
         return iterable
-    return tqdm(iterable, desc=desc, total=total, leave=False, disable=not sys.stderr.isatty())
+    return tqdm(iterable, desc=desc, total=total, leave=False,
+                disable=_quiet or not sys.stderr.isatty())
+
+
+@contextlib.contextmanager
+def quiet():
+    """Show no bars while inside (a worker process: the caller shows one bar for all)."""
+    global _quiet
+    was, _quiet = _quiet, True
+    try:
+        yield
+    finally:
+        _quiet = was

@@ -14,6 +14,7 @@ Same seed, same session.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 from typing import List, Sequence, Tuple
 
 import numpy as np
@@ -139,3 +140,55 @@ class SimulatedTeacher:
             out += learner.feed(int(st), names, qi)
         out += learner.set_teaching(False)
         return out, int(stamps[-1]) + 10**9
+
+    def write_bag(self, path, n: int, t0_ns: int = 10**18, joint_names=None,
+                  joint_topic: str = '/joint_states',
+                  teaching_topic: str = '/pref_learner/teaching') -> Path:
+        """Record n demonstrations into a new MCAP bag, as :meth:`feed_session` teaches them.
+
+        Each message's log time is its stamp (a teaching signal 1 ms before the
+        first and after the last sample of a demonstration), so ``pref-learner
+        learn`` of the bag learns what :meth:`feed_session` does. ``joint_names``
+        renames the joints (a bag of another robot).
+        """
+        from .bags import BagWriter
+        names = list(joint_names or self.learner.robot.joint_names)
+        t = t0_ns
+        with BagWriter(path) as w:
+            for k in range(n):
+                stamps, q = self.stream(k, t)
+                w.write(teaching_topic, w.boolean(True), int(stamps[0]) - 10**6)
+                for st, qi in zip(stamps, q):
+                    w.write(joint_topic, w.joint_state(int(st), names, qi), int(st))
+                w.write(teaching_topic, w.boolean(False), int(stamps[-1]) + 10**6)
+                t = int(stamps[-1]) + 10**9
+        return Path(path)
+
+
+def write_simulated_session(path, truth: Sequence[float], n_demonstrations: int,
+                            person: TeacherConfig, kind: str = 'state_dir',
+                            learner=None) -> Path:
+    """Write a simulated participant's session: a state directory or an MCAP bag.
+
+    ``kind`` ``state_dir``: the demonstrations are taught to a learner that only
+    records them (one particle, one alternative: the stored posterior is not
+    meant to be used); ``bag``: the joint states and teaching signals, as a node
+    records them. ``learner``: a learner giving robot, features and their scales
+    (the person chooses by them; default: the shipped arm and scenario).
+    """
+    from .learner import Learner, LearnerConfig
+    rec_cfg = dict(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,))
+    if kind == 'state_dir':
+        if learner is not None:
+            rec_cfg.update(urdf=learner.config.urdf, features=learner.config.features,
+                           joint_names=learner.config.joint_names,
+                           tool_frame=learner.config.tool_frame)
+        rec = Learner(LearnerConfig(state_dir=str(path), **rec_cfg),
+                      scales=None if learner is None else learner.features.scales)
+        SimulatedTeacher(rec, truth, person).feed_session(rec, n_demonstrations)
+        rec.save()
+        return Path(path)
+    if kind == 'bag':
+        base = learner if learner is not None else Learner(LearnerConfig(**rec_cfg))
+        return SimulatedTeacher(base, truth, person).write_bag(path, n_demonstrations)
+    raise ValueError(f'kind {kind!r} is unknown; allowed: state_dir, bag')

@@ -259,19 +259,23 @@ def _calib_session(job) -> dict:
             'demonstrations': L.n_demonstrations, 'level_probs': list(s.level_probs)}
 
 
-def _run_jobs(fn, jobs, n_jobs: int, label: str):
-    """Run ``fn`` over ``jobs`` in ``n_jobs`` local processes (results in job order)."""
-    if n_jobs <= 1:
-        return [fn(j) for j in progress(jobs, label)]
-    import concurrent.futures as cf
-    import multiprocessing as mp
-    with cf.ProcessPoolExecutor(n_jobs, mp_context=mp.get_context('fork')) as ex:
-        return list(progress(ex.map(fn, jobs), label, total=len(jobs)))
+def _run_jobs(fn, jobs, n_jobs: int, label: str, scheduler: Optional[str] = None):
+    """Run ``fn`` over ``jobs`` as the study's tasks (results in job order).
+
+    ``n_jobs`` local worker processes, or the Dask scheduler at ``scheduler``
+    (:func:`pref_learner.study.run_tasks`); the results do not depend on which.
+    """
+    from .study import TaskFailure, run_tasks
+    out = run_tasks(fn, jobs, workers=max(1, n_jobs), scheduler=scheduler, label=label)
+    lost = [r.text for r in out if isinstance(r, TaskFailure)]
+    if lost:
+        raise RuntimeError(f'{label}: {len(lost)} of {len(out)} tasks were lost ({lost[0]})')
+    return out
 
 
 def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300,
                       conditions=('matched', 'mismatched'), seed=0, n_jobs=1,
-                      learner: Optional[dict] = None) -> dict:
+                      learner: Optional[dict] = None, scheduler: Optional[str] = None) -> dict:
     """Cosine, 90 % coverage and confidently wrong runs for people who are not the learner.
 
     Truths are drawn uniformly on the sphere from ``seed``. ``matched``: the
@@ -279,6 +283,8 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
     ``mismatched``: truth i meets the variant ``MISMATCHED[i % 3]`` and the beta
     ``PERSON_BETAS[(i // 3) % 3]`` (unknown to the learner, which infers beta).
     ``learner``: settings of the learner other than its defaults (LearnerConfig fields).
+    Sessions run as independent tasks in ``n_jobs`` local processes or on the Dask
+    scheduler at ``scheduler`` (:func:`pref_learner.study.run_tasks`), with equal results.
     """
     from .learner import Learner, LearnerConfig
     d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
@@ -293,7 +299,7 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
                 variant, beta = MISMATCHED[i % 3], PERSON_BETAS[(i // 3) % 3]
             jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
                          n_alternatives, dict(learner or {})))
-        runs = _run_jobs(_calib_session, jobs, n_jobs, f'calibration ({cond})')
+        runs = _run_jobs(_calib_session, jobs, n_jobs, f'calibration ({cond})', scheduler)
         cos = np.array([r['cosine'] for r in runs])
         out[cond] = {'cosine_mean': float(cos.mean()),
                      'cosine_p10': float(np.percentile(cos, 10)),
@@ -401,7 +407,7 @@ def _guided_session(job) -> dict:
 
 
 def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300, seed=0,
-                   n_jobs=1) -> dict:
+                   n_jobs=1, scheduler: Optional[str] = None) -> dict:
     """Guided against round-robin teaching, paired: the same people, truths and seeds.
 
     Truths uniform on the sphere (as the calibration study); truth i meets the
@@ -424,7 +430,7 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
         for guided in (False, True):
             jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
                          n_alternatives, guided))
-    runs = _run_jobs(_guided_session, jobs, n_jobs, 'guided against round-robin')
+    runs = _run_jobs(_guided_session, jobs, n_jobs, 'guided against round-robin', scheduler)
     out = {'n_demos': n_demos, 'n_truths': n_truths}
     for arm, flag in (('round_robin', False), ('guided', True)):
         rs = [r for r in runs if r['guided'] is flag]
@@ -497,7 +503,8 @@ def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
 
 
 def run_studies(quick: bool = False, out_dir: Optional[str] = None,
-                n_jobs: int = 1, guidance: bool = True) -> Dict[str, object]:
+                n_jobs: int = 1, guidance: bool = True,
+                scheduler: Optional[str] = None) -> Dict[str, object]:
     t0 = time.time()
     sizes = dict(n_truths=2, n_seeds=1, n_demos=6, n_particles=1000, n_alternatives=200) \
         if quick else dict(n_truths=8, n_seeds=3, n_demos=10, n_particles=2000,
@@ -510,10 +517,12 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
                                n_alternatives=sizes['n_alternatives'])
     calib = study_calibration(n_truths=6 if quick else 24, n_demos=6 if quick else 10,
                               n_particles=sizes['n_particles'],
-                              n_alternatives=sizes['n_alternatives'], n_jobs=n_jobs)
+                              n_alternatives=sizes['n_alternatives'], n_jobs=n_jobs,
+                              scheduler=scheduler)
     sbc = study_sbc(n_runs=60 if quick else 200)
     guide = study_guidance(n_truths=4 if quick else 24, n_demos=10, n_jobs=n_jobs,
-                           **GUIDANCE_SIZES) if guidance else {'figures': {}}
+                           scheduler=scheduler, **GUIDANCE_SIZES) \
+        if guidance else {'figures': {}}
     figures = {
         'dup_share_less_k8': dup['share_lone']['less'][-1],
         'dup_share_boltzmann_k8': dup['share_lone']['boltzmann'][-1],
