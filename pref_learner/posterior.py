@@ -851,7 +851,7 @@ class ParticlePosterior:
         ``u = beta theta``, in the metric of its weighted covariance. It is
         checked against the exact log-likelihood (:class:`StackedSets`) at
         :data:`N_CHECK` particles at evenly spaced ranks of their radius
-        (the outermost included); it is used when the mean absolute error
+        (the outermost included), at every level; it is used when the mean absolute error
         there is at most ``expansion_tol`` and the largest at most
         :data:`MAX_ERROR_FACTOR` times that, else the moves are exact.
         Deterministic: no random numbers are drawn.
@@ -873,14 +873,11 @@ class ParticlePosterior:
         order = np.argsort(r, kind='stable')
         picks = order[((np.arange(N_CHECK) + 0.5) * n / N_CHECK).astype(np.int64)]
         picks[-1] = order[-1]
-        lev = np.zeros(n, dtype=np.int64) if level is None else level
         expansions, errs = [], []
-        for g in range(cfg.n_levels):
+        for g in range(cfg.n_levels):    # every level at every checked point: particles jump
             ex = expand_loglik(self.records, g, anchor, less)
             expansions.append(ex)
-            at = picks[lev[picks] == g]
-            if at.size:
-                errs.append(ex(u[at]) - StackedSets(self.records, g, less)(u[at]))
+            errs.append(ex(u[picks]) - StackedSets(self.records, g, less)(u[picks]))
         err = np.abs(np.concatenate(errs))
         mean, worst = float(err.mean()), float(err.max())
         if not (mean <= cfg.expansion_tol and worst <= MAX_ERROR_FACTOR * cfg.expansion_tol):

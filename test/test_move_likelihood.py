@@ -174,3 +174,31 @@ def test_exact_moves_option_and_bad_settings():
         post, info = post.update(r, rng)
         assert np.isnan(info.likelihood_error)
     assert not post.log_lik_approximate
+
+
+def test_expansion_with_option_levels_matches_each_levels_likelihood():
+    # Two option levels: a particle at level g compares the demonstration with level g's
+    # alternatives and adds that level's log density. The moves' likelihood for particles at
+    # either level is checked against the exact per-set sum (total_loglik), as above.
+    rng = np.random.default_rng(8)
+    cfg = PosteriorConfig(n_particles=2000, model='less', beta_range=(0.5, 20.0), n_levels=2)
+    post = ParticlePosterior.create(cfg, 3, rng)
+    true_u = np.array([2.0, -1.0, 1.5])
+    recs = []
+    for _ in range(60):
+        x = np.vstack([rng.standard_normal((13, 3)), 1.5 * rng.standard_normal((12, 3))])
+        groups = np.array([-1] + [0] * 12 + [1] * 12)
+        p = choice.choice_probabilities(x[:13], true_u / 2.693, 2.693, 'less')
+        c = int(rng.choice(13, p=p))
+        x[[0, c]] = x[[c, 0]]
+        recs.append(post.prepare(x, 0, groups))
+    u = true_u + 0.03 * rng.standard_normal((2000, 3))
+    b = np.linalg.norm(u, axis=1)
+    level = rng.integers(0, 2, 2000)
+    p = replace(post, theta=u / b[:, None], log_beta=np.log(b), level=level,
+                records=tuple(recs))
+    target = p.move_target(p.theta, p.beta, p.level)
+    assert target.approximate
+    err = np.abs(target(p.theta, p.beta, p.level) - p.total_loglik(p.theta, p.beta, p.level))
+    assert err.mean() <= cfg.expansion_tol
+    assert err.max() <= MAX_ERROR_FACTOR * cfg.expansion_tol
