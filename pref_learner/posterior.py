@@ -175,10 +175,14 @@ class ChoiceRecord:
 
 
 # ---------------------------------------------------------------- likelihood expansion
-#: particles at which the expansion is checked against the exact log-likelihood
-N_CHECK = 32
+#: particles at which the expansion is checked against the exact log-likelihood: evenly
+#: spaced ranks of their radius, and the outermost few (where the error is largest)
+N_CHECK = 48
+N_OUTER = 8
 #: the largest error at the checked particles may be this many times ``expansion_tol``
-MAX_ERROR_FACTOR = 10.0
+MAX_ERROR_FACTOR = 20.0
+#: fewer sets than this are not worth expanding (the moves are then exact)
+MIN_EXPANDED = 4
 #: proposals beyond this factor times the outermost particle's radius are rejected
 TRUST_REACH = 1.5
 #: particles per block when a set's log-likelihood is evaluated
@@ -347,21 +351,24 @@ class MoveTarget:
     """The log-likelihood of the stored sets as the moves evaluate it.
 
     Exact (``expansions is None``: every stored set, as :meth:`ParticlePosterior.total_loglik`),
-    or each level's fourth-order :class:`LikelihoodExpansion` inside the
+    or, for the oldest ``split`` sets, each level's fourth-order
+    :class:`LikelihoodExpansion` (the newer sets exact) inside the
     ellipsoid of Mahalanobis radius ``radius`` around ``anchor`` (metric
     ``precision``) and ``-inf`` beyond it, so that proposals there are
     rejected (the region reaches :data:`TRUST_REACH` times beyond the
     outermost particle). ``error``: mean absolute difference between the
-    expansion and the exact log-likelihood over :data:`N_CHECK` particles
-    spread over the cloud's radii (an estimate of the posterior mean error);
-    ``error_max`` the largest of them (NaN when exact). Within one call of
+    expansion and the exact log-likelihood over particles at evenly spaced
+    ranks of their radius (an estimate of the posterior mean error);
+    ``error_max`` the largest of those and of the outermost particles' (NaN
+    when exact). Within one call of
     the moves it is one fixed function, so Metropolis-Hastings leaves
     ``prior x exp(target)`` invariant.
     """
 
     def __init__(self, posterior, expansions=None, anchor=None, precision=None,
-                 radius=0.0, error=float('nan'), error_max=float('nan')):
+                 radius=0.0, error=float('nan'), error_max=float('nan'), split=0):
         self.posterior = posterior
+        self.split = split
         self.expansions = expansions
         self.anchor = anchor
         self.precision = precision
@@ -389,6 +396,9 @@ class MoveTarget:
             sel = np.flatnonzero(lev == g)
             if sel.size:
                 out[sel] = ex(u[sel])
+        post = self.posterior
+        for rec in post.records[self.split:]:
+            out += post.record_loglik(rec, theta, beta, level)
         out[self.radii(u) > self.radius] = -np.inf
         return out
 
@@ -850,11 +860,14 @@ class ParticlePosterior:
         :class:`LikelihoodExpansion` around the weighted mean of
         ``u = beta theta``, in the metric of its weighted covariance. It is
         checked against the exact log-likelihood (:class:`StackedSets`) at
-        :data:`N_CHECK` particles at evenly spaced ranks of their radius
-        (the outermost included), at every level; it is used when the mean absolute error
+        :data:`N_CHECK` particles, at evenly spaced ranks of their radius and
+        the :data:`N_OUTER` outermost, at every level; it is used when the mean absolute error
         there is at most ``expansion_tol`` and the largest at most
-        :data:`MAX_ERROR_FACTOR` times that, else the moves are exact.
-        Deterministic: no random numbers are drawn.
+        :data:`MAX_ERROR_FACTOR` times that. Otherwise (the cloud still wide)
+        the oldest sets alone are expanded, as many as the errors suggest
+        (they grow about in proportion), and checked again, at most three
+        times; the newer sets stay exact; below :data:`MIN_EXPANDED` sets the
+        moves are exact. Deterministic: no random numbers are drawn.
         """
         cfg = self.config
         if cfg.move_likelihood == 'exact' or not self.records:
@@ -870,20 +883,31 @@ class ParticlePosterior:
         probe = MoveTarget(self, None, anchor, precision)
         r = probe.radii(u)
         n = len(r)
+        if not r.max() > 0:                # one point: no spread to fit a trust region to
+            return MoveTarget(self)
         order = np.argsort(r, kind='stable')
-        picks = order[((np.arange(N_CHECK) + 0.5) * n / N_CHECK).astype(np.int64)]
-        picks[-1] = order[-1]
-        expansions, errs = [], []
-        for g in range(cfg.n_levels):    # every level at every checked point: particles jump
-            ex = expand_loglik(self.records, g, anchor, less)
-            expansions.append(ex)
-            errs.append(ex(u[picks]) - StackedSets(self.records, g, less)(u[picks]))
-        err = np.abs(np.concatenate(errs))
-        mean, worst = float(err.mean()), float(err.max())
-        if not (mean <= cfg.expansion_tol and worst <= MAX_ERROR_FACTOR * cfg.expansion_tol):
-            return MoveTarget(self, error=mean, error_max=worst)
-        return MoveTarget(self, expansions, anchor, precision, TRUST_REACH * float(r.max()),
-                          mean, worst)
+        spread = N_CHECK - N_OUTER
+        picks = np.concatenate([order[((np.arange(spread) + 0.5) * n / spread).astype(np.int64)],
+                                order[-N_OUTER:]])
+        tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
+        split = len(self.records)
+        for _ in range(3):
+            prefix = self.records[:split]
+            expansions, errs = [], []
+            for g in range(cfg.n_levels):    # every level at every checked point: particles jump
+                ex = expand_loglik(prefix, g, anchor, less)
+                expansions.append(ex)
+                errs.append(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
+            err = np.abs(np.array(errs))                 # (levels, checked particles)
+            mean, worst = float(err[:, :len(picks) - N_OUTER].mean()), float(err.max())
+            if mean <= tol and worst <= cap:
+                return MoveTarget(self, expansions, anchor, precision,
+                                  TRUST_REACH * float(r.max()), mean, worst, split)
+            # the error grows about in proportion to the number of expanded sets
+            split = int(0.8 * split * min(tol / mean, cap / worst))
+            if split < MIN_EXPANDED:
+                break
+        return MoveTarget(self, error=mean, error_max=worst)
 
     def _move(self, rng, extra: Optional[ChoiceRecord], phi: float, ll_extra):
         """Metropolis-Hastings moves on equally weighted particles.
