@@ -19,7 +19,10 @@ stored likelihood x the new one to the power phi). Moves run until a stated
 share of the particles has moved, with a step that follows the cloud's
 spread and a factor tuned toward 15-40 % acceptance; the real acceptance is
 reported. Each choice set is kept (a few kB), so the full likelihood is
-re-evaluated without kinematics.
+re-evaluated without kinematics. Once the cloud is narrow, the moves use a
+fourth-order expansion of the stored sets' summed log-likelihood, checked
+against the exact one before each use (:class:`MoveTarget`), so a round of
+moves costs the same whatever the number of stored sets.
 
 The object is immutable: ``update`` returns a new posterior and an
 :class:`UpdateInfo`; a rejected update raises ``ValueError`` and leaves the
