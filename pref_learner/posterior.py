@@ -414,7 +414,9 @@ class PosteriorConfig:
     on it; ``None`` keeps ``beta`` fixed. ``n_levels``: number of option-spread
     levels (uniform prior over them) carried as a discrete coordinate.
     Tempering keeps the effective sample size at least ``ess_target`` x N in
-    every step; between tempering steps the moves run ``n_moves`` rounds;
+    every step; between tempering steps the moves run
+    ``tempering_move_rounds`` rounds (0: only reweighting and resampling
+    until the demonstration is fully weighed in, every move after it);
     after the last step (once resampled) at least ``n_moves`` rounds and
     until ``diversity_target`` of the particles have moved (at most
     ``max_move_rounds``). ``move_likelihood``: ``exact`` evaluates
@@ -442,6 +444,7 @@ class PosteriorConfig:
     option_density: str = 'gaussian'
     move_likelihood: str = 'expansion'
     expansion_tol: float = 0.05
+    tempering_move_rounds: int = 2
 
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
@@ -473,6 +476,9 @@ class PosteriorConfig:
         if self.option_density not in ('gaussian', 'kde'):
             raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
                              'gaussian, kde')
+        if not 0 <= self.tempering_move_rounds <= self.max_move_rounds:
+            raise ValueError(f'tempering_move_rounds must be in [0, max_move_rounds], got '
+                             f'{self.tempering_move_rounds!r}')
         if self.move_likelihood not in ('exact', 'expansion'):
             raise ValueError(f'move_likelihood {self.move_likelihood!r} is unknown; allowed: '
                              'exact, expansion')
@@ -833,6 +839,7 @@ class ParticlePosterior:
                 rounds += r_
             else:
                 new = replace(new, moves_pending=True)
+        accs = [a for a in accs if not math.isnan(a)]
         acc = float(np.mean(accs)) if accs else float('nan')
         if accs:
             new = replace(new, acceptance=acc)
@@ -924,7 +931,7 @@ class ParticlePosterior:
         to a neighbour with probability 0.3 (rejected outside the range).
         Rounds run until ``diversity_target`` of the particles have moved at
         least once (at least ``n_moves``, at most ``max_move_rounds``); while
-        tempering (``extra`` given) exactly ``n_moves`` rounds.
+        tempering (``extra`` given) exactly ``tempering_move_rounds`` rounds.
         The stored sets' likelihood is :meth:`move_target`'s, fixed for the
         whole call. Returns ``(posterior, ll_extra, acceptance, rounds,
         moved_fraction)``.
@@ -932,7 +939,8 @@ class ParticlePosterior:
         cfg = self.config
         theta, log_beta, level, log_lik = self.theta, self.log_beta, self.level, self.log_lik
         n, d = theta.shape
-        if cfg.max_move_rounds == 0 or (not self.records and extra is None):
+        if (cfg.max_move_rounds == 0 or (not self.records and extra is None)
+                or (extra is not None and cfg.tempering_move_rounds == 0)):
             return self, ll_extra, float('nan'), 0, 0.0
         target = self.move_target(theta, self.beta, level)
         if target.approximate or self.log_lik_approximate:
@@ -945,9 +953,9 @@ class ParticlePosterior:
         lp = self.log_prior(theta, log_beta, level)
         moved = np.zeros(n, dtype=bool)
         rates = []
-        # between tempering steps (``extra`` given) a fixed n_moves rounds: publication waits
-        # for them; the moves after the last step run to the diversity target
-        limit = max(cfg.n_moves, 1) if extra is not None else cfg.max_move_rounds
+        # between tempering steps (``extra`` given) a fixed number of rounds: publication
+        # waits for them; the moves after the last step run to the diversity target
+        limit = cfg.tempering_move_rounds if extra is not None else cfg.max_move_rounds
         for rnd in range(limit):
             if rnd >= cfg.n_moves and moved.mean() >= cfg.diversity_target:
                 break

@@ -202,3 +202,31 @@ def test_expansion_with_option_levels_matches_each_levels_likelihood():
     err = np.abs(target(p.theta, p.beta, p.level) - p.total_loglik(p.theta, p.beta, p.level))
     assert err.mean() <= cfg.expansion_tol
     assert err.max() <= MAX_ERROR_FACTOR * cfg.expansion_tol
+
+
+def test_tempering_without_moves_between_steps_matches_quadrature():
+    # tempering_move_rounds = 0: the steps only reweight and resample, every move comes
+    # after the demonstration is weighed in. One sharp demonstration (beta 40, several
+    # steps) on the circle against the exact posterior mean (scipy.integrate), as in
+    # test_posterior's tempered-update check; the steps are the same with moves between.
+    rng = np.random.default_rng(90)
+    x = rng.standard_normal((40, 2))
+    c = int(np.argmax(x @ np.array([np.cos(2.0), np.sin(2.0)])))
+    grid = np.linspace(-np.pi, np.pi, 20001)
+    th = np.stack([np.cos(grid), np.sin(grid)], axis=1)
+    dens = np.exp(choice.less_loglik(x, c, th, 40.0) - choice.less_loglik(x, c, th, 40.0).max())
+    exact_mean = integrate.trapezoid(dens[:, None] * th, grid, axis=0) / integrate.trapezoid(
+        dens, grid)
+    for rounds in (0, 2):
+        cfg = PosteriorConfig(n_particles=8000, model='less', beta=40.0,
+                              tempering_move_rounds=rounds)
+        g = np.random.default_rng(91)
+        post, info = ParticlePosterior.create(cfg, 2, g).update((x, c), g, move=False)
+        assert info.tempering_steps > 1 and post.moves_pending
+        if rounds == 0:
+            assert np.isnan(info.acceptance)
+        post, acc = post.rejuvenate(g)
+        assert 0.0 < acc < 1.0
+        np.testing.assert_allclose(post.weights @ post.theta, exact_mean, atol=0.02)
+    with pytest.raises(ValueError, match='tempering_move_rounds'):
+        PosteriorConfig(tempering_move_rounds=9)
