@@ -41,7 +41,7 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     from .demonstrations import Recorder, SegmentConfig
     from .features import load_scenario
     from .learner import Learner, LearnerConfig
-    from .posterior import ParticlePosterior, PosteriorConfig
+    from .posterior import ParticlePosterior
     from .sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
@@ -84,21 +84,7 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
         out[f'posterior_rejuvenation_ms_p95_{model}'] = float(np.percentile(mov, 95) * 1e3)
         out[f'posterior_update_with_moves_ms_p95_{model}'] = float(np.percentile(tot, 95) * 1e3)
 
-    rng = np.random.default_rng(0)
-    cfg = dict(model='less', ess_min_ratio=0.0)
-    f0 = sets[0][0]
     reps = 5 if quick else 15
-
-    def update_ms(n_particles, features):
-        post = ParticlePosterior.create(PosteriorConfig(n_particles=n_particles, **cfg), 6, rng)
-        rec = post.prepare(features, 0)
-        return _median_ms(lambda: post.update(rec, rng), reps)
-    ns = [1000, 2000, 4000, 8000]
-    out['posterior_update_scaling_exponent_particles'] = _slope(
-        ns, [update_ms(n, f0) for n in ns])
-    ms = [125, 250, 500, 1000]
-    out['posterior_update_scaling_exponent_alternatives'] = _slope(
-        ms, [update_ms(4000, rng.normal(size=(m + 1, 6))) for m in ms])
 
     # --- features and kinematics (issue: robot model and features)
     q = qs[0][1:]
@@ -130,6 +116,288 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     for i in range(n):
         rec.feed(i * 1_000_000, names, data[i])
     out['segmentation_us_per_sample'] = (time.perf_counter() - t) / n * 1e6
+    return out
+
+
+def _p95_ms(ts) -> float:
+    return float(np.percentile(ts, 95) * 1e3)
+
+
+def _session_sets(n: int):
+    """``n`` choice sets of the shipped scenario's example person: ``(features, groups)``."""
+    from .features import load_scenario
+    from .learner import Learner, LearnerConfig
+    from .sim import SimulatedTeacher, TeacherConfig
+    L = Learner(LearnerConfig(model='less'))
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'],
+                               TeacherConfig(n_waypoints=0))
+    sets = []
+    for k in range(n):
+        _, path = teacher.choose(k)
+        _, f, groups = L.choice_set(path, k)
+        sets.append((f, groups))
+    return L, teacher, sets
+
+
+def _session_updates(L, sets, n_session: int, out: Dict[str, float]) -> dict:
+    """Updates at ``n_session`` stored demonstrations, both models (defaults of the learner).
+
+    The session is learned as the learner does (tempered updates, moves after
+    each resampling). Each of the next sets is then added to that same
+    session state, and its final moves are forced even when the update did not
+    resample (the worst case: every update pays for its moves). Returns each
+    model's session states at half and at the full length.
+    """
+    from dataclasses import replace
+
+    from .posterior import ParticlePosterior
+    states = {}
+    for model in ('boltzmann', 'less'):
+        cfg = L.config.posterior_config(model)
+        rng = np.random.default_rng([17, len(model)])
+        post = ParticlePosterior.create(cfg, L.features.d, rng)
+        t = time.perf_counter()
+        for k, (f, groups) in enumerate(sets[:n_session]):
+            post, _ = post.update(post.prepare(f, 0, groups), rng)
+            if k + 1 == n_session // 2:
+                half = post
+        out[f'session_{n_session}_learn_s_{model}'] = time.perf_counter() - t
+        states[model] = (half, post)
+        gate, full, errs = [], [], []
+        for k, (f, groups) in enumerate(sets[n_session:]):
+            rec = post.prepare(f, 0, groups)
+            g = np.random.default_rng([18, k])
+            t = time.perf_counter()
+            new, info = post.update(rec, g, move=False)
+            t1 = time.perf_counter()
+            new, _ = replace(new, moves_pending=True).rejuvenate(g)
+            t2 = time.perf_counter()
+            gate.append(t1 - t)
+            full.append(t2 - t)
+            errs.append(new.likelihood_error)
+        out[f'posterior_update_ms_p95_at{n_session}_{model}'] = _p95_ms(gate)
+        out[f'update_with_moves_ms_p95_at{n_session}_{model}'] = _p95_ms(full)
+        out[f'update_with_moves_ms_median_at{n_session}_{model}'] = float(np.median(full) * 1e3)
+        out[f'move_likelihood_error_at{n_session}_{model}'] = float(np.nanmax(errs)) \
+            if np.any(np.isfinite(errs)) else float('nan')
+    out[f'update_with_moves_ms_p95_at{n_session}'] = max(
+        out[f'update_with_moves_ms_p95_at{n_session}_{m}'] for m in ('boltzmann', 'less'))
+    return states
+
+
+#: accuracy both samplers must reach: largest error of any coordinate's posterior mean and
+#: standard deviation of theta against the importance-sampling reference
+PEER_ACCURACY = 0.02
+
+
+def _peer(sets, quick: bool, out: Dict[str, float]) -> None:
+    """Particle updates against emcee on one posterior: time to ``PEER_ACCURACY``.
+
+    Posterior: the first four demonstrations of the session, LESS, beta fixed
+    at 5, uniform prior on the sphere, d = 6, M = 500. Reference: importance
+    sampling from the prior (10^6 draws, in chunks). Particles: the
+    demonstrations added one by one (``update``, default settings) with N
+    doubling from 500 until three seeded runs are all within the accuracy;
+    the time is their mean. emcee (affine-invariant ensemble, 32 walkers,
+    vectorised log density, the same likelihood code) on R^6 with target
+    ``L(x / |x|) N(x; 0, I)``, whose direction has the posterior above;
+    estimates from the chain after a third is discarded, checked every 100
+    steps; a run's time is the first of two successive checks within the
+    accuracy; the mean over three seeded runs.
+    ``smc_vs_emcee_speedup_per_demonstration`` divides by the particles' last
+    update alone (what a session pays per demonstration; emcee restarts).
+    """
+    from dataclasses import replace
+
+    import emcee
+
+    from .posterior import ParticlePosterior, PosteriorConfig, sample_uniform_sphere
+    d = sets[0][0].shape[1]
+    cfg = PosteriorConfig(n_particles=4000, model='less', beta=5.0)
+    base = ParticlePosterior.create(cfg, d, np.random.default_rng(0))
+    recs = [base.prepare(f, 0) for f, _ in sets[:4]]
+    n_ref, chunk = (200_000 if quick else 1_000_000), 50_000
+    g = np.random.default_rng(11)
+    top, s0, s1, s2 = -np.inf, 0.0, np.zeros(d), np.zeros(d)
+    for _ in range(n_ref // chunk):
+        th = sample_uniform_sphere(chunk, d, g)
+        lw = sum(base.record_loglik(r, th, np.full(chunk, 5.0)) for r in recs)
+        m = max(top, float(lw.max()))
+        scale = np.exp(top - m) if np.isfinite(top) else 0.0
+        w = np.exp(lw - m)
+        s0, s1, s2 = s0 * scale + w.sum(), s1 * scale + w @ th, s2 * scale + w @ th ** 2
+        top = m
+    ref_mean = s1 / s0
+    ref_std = np.sqrt(np.maximum(s2 / s0 - ref_mean ** 2, 0.0))
+
+    def error(mean, std):
+        return float(max(np.abs(mean - ref_mean).max(), np.abs(std - ref_std).max()))
+    out['peer_reference_draws'] = n_ref
+    seeds = 3
+    smc_s, smc_err, smc_n, smc_last = float('nan'), float('nan'), 0, float('nan')
+    for n in (500, 1000, 2000, 4000, 8000, 16000):
+        runs = []
+        for seed in range(seeds):
+            g = np.random.default_rng([12, n, seed])
+            t = time.perf_counter()
+            post = ParticlePosterior.create(replace(cfg, n_particles=n), d, g)
+            for r in recs:
+                t_last = time.perf_counter()
+                post, _ = post.update(r, g)
+            now = time.perf_counter()
+            w = post.weights
+            mean = w @ post.theta
+            runs.append((now - t, now - t_last,
+                         error(mean, np.sqrt(w @ (post.theta - mean) ** 2))))
+        smc_s, smc_last = (float(np.mean([x[i] for x in runs])) for i in (0, 1))
+        smc_err, smc_n = max(x[2] for x in runs), n
+        if smc_err <= PEER_ACCURACY:
+            break
+
+    def log_prob(x):
+        r = np.linalg.norm(x, axis=1)
+        th = x / np.maximum(r, 1e-300)[:, None]
+        return sum(base.record_loglik(rec, th, np.full(len(x), 5.0)) for rec in recs) \
+            - 0.5 * r * r
+    walkers = 32
+    cap = 30.0 if quick else 120.0
+    em_times, em_steps, em_errs, reached = [], [], [], True
+    for seed in range(seeds):
+        sampler = emcee.EnsembleSampler(walkers, d, log_prob, vectorize=True)
+        sampler.random_state = np.random.RandomState(13 + seed).get_state()
+        state = np.random.RandomState(23 + seed).standard_normal((walkers, d))
+        t = time.perf_counter()
+        steps, hits, em_err = 0, 0, float('nan')
+        while time.perf_counter() - t < cap:
+            state = sampler.run_mcmc(state, 100, progress=False)
+            steps += 100
+            chain = sampler.get_chain(discard=steps // 3, flat=True)
+            dirs = chain / np.linalg.norm(chain, axis=1, keepdims=True)
+            em_err = error(dirs.mean(axis=0), dirs.std(axis=0))
+            hits = hits + 1 if em_err <= PEER_ACCURACY else 0
+            if hits >= 2:
+                break
+        em_times.append(time.perf_counter() - t)
+        em_steps.append(steps)
+        em_errs.append(em_err)
+        reached = reached and hits >= 2
+    em_s = float(np.mean(em_times))
+    steps, em_err = float(np.mean(em_steps)), max(em_errs)
+    out['smc_time_to_accuracy_s'] = smc_s
+    out['smc_particles_at_accuracy'] = smc_n
+    out['smc_error_at_accuracy'] = smc_err
+    out['emcee_time_to_accuracy_s'] = em_s
+    out['emcee_steps_at_accuracy'] = steps
+    out['emcee_error_at_accuracy'] = em_err
+    out['emcee_reached_accuracy'] = int(reached)
+    out['smc_vs_emcee_speedup'] = em_s / smc_s
+    # a session's view: the particles take in the fourth demonstration in one update,
+    # emcee starts again from scratch
+    out['smc_last_update_s'] = smc_last
+    out['smc_vs_emcee_speedup_per_demonstration'] = em_s / smc_last
+
+
+def _scaling(sets, quick: bool, out: Dict[str, float]) -> None:
+    """One update from the prior (tempering and moves) against N up to 50,000 and M up to 5,000."""
+    from .posterior import ParticlePosterior, PosteriorConfig
+    rng = np.random.default_rng(0)
+    cfg = dict(model='less', ess_min_ratio=0.0)
+    reps = 2 if quick else 3
+    f0 = sets[0][0]
+
+    def update_ms(n_particles, features):
+        post = ParticlePosterior.create(PosteriorConfig(n_particles=n_particles, **cfg), 6, rng)
+        rec = post.prepare(features, 0)
+        return _median_ms(lambda: post.update(rec, rng), reps)
+    ns = [2000, 4000, 12500, 25000, 50000]
+    t_n = [update_ms(n, f0) for n in ns]
+    for n, v in zip(ns, t_n):
+        out[f'posterior_update_ms_particles_{n}'] = v
+    out['posterior_update_scaling_exponent_particles'] = _slope(ns, t_n)
+    ms = [125, 500, 1000, 2500, 5000]
+    t_m = [update_ms(4000, rng.normal(size=(m + 1, 6))) for m in ms]
+    for m, v in zip(ms, t_m):
+        out[f'posterior_update_ms_alternatives_{m}'] = v
+    out['posterior_update_scaling_exponent_alternatives'] = _slope(ms, t_m)
+
+
+def _rss_bytes() -> float:
+    with open('/proc/self/status') as f:
+        for line in f:
+            if line.startswith('VmRSS:'):
+                return int(line.split()[1]) * 1024.0
+    return float('nan')
+
+
+def _memory(teacher, sets, states, rss0: float, out: Dict[str, float]) -> None:
+    """Bytes per stored demonstration and per particle; the largest session in 1 GB.
+
+    Peak traced allocations (tracemalloc, which numpy reports to) of adding
+    one demonstration with forced moves and saving the posterior, from the
+    LESS session's states at half and full length and from the full state
+    with every particle doubled: the differences give the bytes per stored
+    demonstration (its choice set as the posterior keeps it, plus the
+    moves' and the save's temporaries) and per particle. The learner also
+    keeps each demonstration's recorded samples (the simulated teacher's
+    500 Hz stream). ``rss0``, the process's resident size before any
+    session, is the fixed part.
+    """
+    import tempfile
+    import tracemalloc
+    from dataclasses import replace
+    half, full = states['less']
+
+    def peak(post):
+        rng = np.random.default_rng(1)
+        f, groups = sets[len(full.records)]
+        rec = post.prepare(f, 0, groups)
+        with tempfile.TemporaryDirectory() as tmp:
+            tracemalloc.start()
+            base = tracemalloc.get_traced_memory()[0]
+            new, _ = post.update(rec, rng, move=False)
+            new, _ = replace(new, moves_pending=True).rejuvenate(rng)
+            new.save(os.path.join(tmp, 'p'))
+            top = tracemalloc.get_traced_memory()[1] - base
+            tracemalloc.stop()
+        return top
+    n = full.n_particles
+    doubled = full._take(np.repeat(np.arange(n), 2))
+    doubled = replace(doubled, config=replace(full.config, n_particles=2 * n))
+    p_half, p_full, p_doubled = peak(half), peak(full), peak(doubled)
+    per_record = (p_full - p_half) / (len(full.records) - len(half.records))
+    per_particle = (p_doubled - p_full) / n
+    r = full.records[0]
+    kept = sum(a.nbytes for a in (r.features, r.groups, r.log_sim, r.log_sim_chosen,
+                                  r.log_density))
+    _, q = teacher.stream(0, 0)
+    samples = q.nbytes + q.shape[0] * 8            # joint positions and times
+    per_demo = per_record + samples
+    fixed = rss0 + per_particle * n
+    out['memory_bytes_per_record_kept'] = float(kept)
+    out['memory_bytes_per_record_peak'] = per_record
+    out['memory_bytes_per_demonstration_samples'] = float(samples)
+    out['memory_bytes_per_demonstration'] = per_demo
+    out['memory_bytes_per_particle_peak'] = per_particle
+    out['memory_process_base_mb'] = rss0 / 2 ** 20
+    out['memory_largest_session_1gb'] = int(max(0.0, (2 ** 30 - fixed) / per_demo))
+
+
+def speed_benchmarks(quick: bool = False) -> Dict[str, float]:
+    """Posterior speed at session scale: 200 demonstrations, a peer, scaling, memory.
+
+    Defaults of the learner (N 4,000, M 500, d 6, beta inferred). See
+    :func:`_session_updates`, :func:`_peer`, :func:`_scaling` and :func:`_memory`.
+    """
+    out: Dict[str, float] = {}
+    n_session, n_measured = 200, (4 if quick else 10)
+    t = time.perf_counter()
+    L, teacher, sets = _session_sets(n_session + n_measured)
+    out['speed_sets_s'] = time.perf_counter() - t
+    rss0 = _rss_bytes()
+    states = _session_updates(L, sets, n_session, out)
+    _memory(teacher, sets, states, rss0, out)
+    _peer(sets, quick, out)
+    _scaling(sets, quick, out)
     return out
 
 
@@ -252,11 +520,13 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
     """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
-    parts = parts or ['core', 'planner', 'node', 'demo', 'validate', 'calibration', 'guidance',
-                      'study']
+    parts = parts or ['core', 'speed', 'planner', 'node', 'demo', 'validate', 'calibration',
+                      'guidance', 'study']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}
     if 'core' in parts:
         res.update(core_benchmarks(quick))
+    if 'speed' in parts:
+        res.update(speed_benchmarks(quick))
     if 'planner' in parts:
         from .planner import plan_benchmark
         res.update(plan_benchmark(quick, out_dir))

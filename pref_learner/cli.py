@@ -456,8 +456,8 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument('--json', help='write the figures to this file')
     b.add_argument('--quick', action='store_true', help='fewer repetitions, shorter runs')
     b.add_argument('--only', nargs='+',
-                   choices=['core', 'planner', 'node', 'demo', 'validate', 'calibration',
-                            'guidance', 'study'],
+                   choices=['core', 'speed', 'planner', 'node', 'demo', 'validate',
+                            'calibration', 'guidance', 'study'],
                    help='run only these groups')
     b.set_defaults(func=cmd_bench)
     return p

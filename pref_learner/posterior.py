@@ -19,7 +19,10 @@ stored likelihood x the new one to the power phi). Moves run until a stated
 share of the particles has moved, with a step that follows the cloud's
 spread and a factor tuned toward 15-40 % acceptance; the real acceptance is
 reported. Each choice set is kept (a few kB), so the full likelihood is
-re-evaluated without kinematics.
+re-evaluated without kinematics. Once the cloud is narrow, the moves use a
+fourth-order expansion of the stored sets' summed log-likelihood, checked
+against the exact one before each use (:class:`MoveTarget`), so a round of
+moves costs the same whatever the number of stored sets.
 
 The object is immutable: ``update`` returns a new posterior and an
 :class:`UpdateInfo`; a rejected update raises ``ValueError`` and leaves the
@@ -174,6 +177,235 @@ class ChoiceRecord:
         return np.concatenate([[self.chosen], np.flatnonzero(self.groups == level)])
 
 
+# ---------------------------------------------------------------- likelihood expansion
+#: particles at which the expansion is checked against the exact log-likelihood: evenly
+#: spaced ranks of their radius, and the outermost few (where the error is largest)
+N_CHECK = 48
+N_OUTER = 8
+#: the largest error at the checked particles may be this many times ``expansion_tol``
+MAX_ERROR_FACTOR = 20.0
+#: fewer sets than this are not worth expanding (the moves are then exact)
+MIN_EXPANDED = 4
+#: proposals beyond this factor times the outermost particle's radius are rejected
+TRUST_REACH = 1.5
+#: particles per block when a set's log-likelihood is evaluated
+_PARTICLE_BLOCK = 1024
+#: exponents are clipped here (e^-700 is far below any sum's rounding, above subnormals)
+_LOG_TINY = -700.0
+#: records expanded per block (bounds the temporary (rows, d^2) arrays to a few MB)
+_EXPANSION_BLOCK = 16
+
+
+class LikelihoodExpansion(NamedTuple):
+    """Fourth-order expansion of the summed log-likelihood of stored sets at one level.
+
+    Every choice model here depends on the weights and the rationality only
+    through ``u = beta theta (d,)``; a stored set's log-likelihood is
+    ``u.phi_c - s_c + log_density - A(u)`` with the log-partition
+    ``A(u) = log sum_j exp(u.phi_j - s_j)`` (``s`` the LESS log-similarity,
+    0 for Boltzmann). The chosen-row terms are linear and kept exactly; ``A``
+    is expanded around ``anchor`` by its cumulants: the derivatives of ``A``
+    at ``u0`` are the cumulants of the features under the tilted weights
+    ``p_j ~ exp(u0.phi_j - s_j)`` (mean, covariance, third central moment,
+    fourth cumulant ``E(c.delta)^4 - 3 (delta' Cov delta)^2``). Sums over sets
+    of these tensors are one tensor each, so evaluating the expansion costs
+    O(d^4) per particle whatever the number of stored sets. At ``anchor`` it
+    is exact. Products ``delta_a delta_b`` are kept for ``a <= b`` only
+    (``d (d + 1) / 2`` of them); the coefficients carry the multiplicities.
+    """
+
+    anchor: np.ndarray      # (d,)
+    value: float            # exact summed log-likelihood at the anchor
+    grad: np.ndarray        # (d,)
+    hess: np.ndarray        # (d, d)
+    cubic: np.ndarray       # (d, P), P = d (d + 1) / 2: the third-order coefficients
+    quartic: np.ndarray     # (P, P): the fourth-order coefficients
+
+    def __call__(self, u: np.ndarray) -> np.ndarray:
+        """Expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
+        delta = np.atleast_2d(u) - self.anchor
+        a, b = np.triu_indices(delta.shape[1])
+        z = delta[:, a] * delta[:, b]
+        return (self.value + delta @ self.grad
+                + np.einsum('ij,ij->i', delta @ self.hess, delta) * 0.5
+                + np.einsum('ij,ij->i', delta @ self.cubic, z)
+                + np.einsum('ij,ij->i', z @ self.quartic, z))
+
+
+def expand_loglik(records: Sequence[ChoiceRecord], level: int, anchor: np.ndarray,
+                  less: bool) -> LikelihoodExpansion:
+    """Expand the summed log-likelihood of ``records`` at spread ``level`` around ``anchor``.
+
+    ``anchor (d,)`` is a point ``u = beta theta``; ``less`` subtracts the
+    stored log-similarities (the LESS model). The cost is O(records x M x d^4)
+    once, in blocks of records (see :class:`LikelihoodExpansion`).
+    """
+    u0 = np.asarray(anchor, dtype=np.float64)
+    d = u0.shape[0]
+    ia, ib = np.triu_indices(d)
+    n_pairs = len(ia)
+    mult = np.where(ia == ib, 1.0, 2.0)
+    value, grad = 0.0, np.zeros(d)
+    k2 = np.zeros(n_pairs)
+    k3 = np.zeros((d, n_pairs))
+    m4 = np.zeros((n_pairs, n_pairs))
+    g4 = np.zeros((n_pairs, n_pairs))
+    for a in range(0, len(records), _EXPANSION_BLOCK):
+        xs, ss, sizes = [], [], []
+        for rec in records[a:a + _EXPANSION_BLOCK]:
+            cols = rec.columns(level)
+            xs.append(rec.features[cols])
+            if less:
+                s = rec.log_sim[cols]
+                s[0] = rec.log_sim_chosen[level]
+            else:
+                s = np.zeros(len(cols))
+            ss.append(s)
+            sizes.append(len(cols))
+            value += float(u0 @ rec.features[rec.chosen] - s[0] + rec.log_density[level])
+            grad += rec.features[rec.chosen]
+        x = np.concatenate(xs)
+        starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+        seg = np.repeat(np.arange(len(sizes)), sizes)
+        e = x @ u0 - np.concatenate(ss)
+        top = np.maximum.reduceat(e, starts)
+        e = np.exp(np.maximum(e - top[seg], _LOG_TINY))
+        tot = np.add.reduceat(e, starts)
+        value -= float(np.sum(top + np.log(tot)))
+        p = e / tot[seg]
+        mu = np.add.reduceat(p[:, None] * x, starts, axis=0)
+        grad -= mu.sum(axis=0)
+        c = x - mu[seg]
+        # rows below 1e-30 of their set's tilted mass change no cumulant visibly; dropping
+        # them also keeps the products below out of subnormal numbers (slow)
+        keep = p > 1e-30
+        p, c, seg = p[keep], c[keep], seg[keep]
+        starts = np.searchsorted(seg, np.arange(len(sizes)))
+        cc = c[:, ia] * c[:, ib]
+        pcc = cc * p[:, None]
+        per_set = np.add.reduceat(pcc, starts, axis=0)        # (sets, P): covariances
+        k2 += per_set.sum(axis=0)
+        k3 += c.T @ pcc
+        m4 += cc.T @ pcc
+        g4 += per_set.T @ per_set
+    cov = np.zeros((d, d))
+    cov[ia, ib] = k2
+    cov[ib, ia] = k2
+    return LikelihoodExpansion(u0.copy(), value, grad, -cov, -k3 * mult / 6.0,
+                               -(m4 - 3.0 * g4) * np.outer(mult, mult) / 24.0)
+
+
+class StackedSets:
+    """Exact summed log-likelihood of stored sets at one level, for a few points at a time.
+
+    The rows of :data:`_EXPANSION_BLOCK` sets at a time are stacked into one
+    matrix, so ``n`` points cost one ``(n, rows)`` product and segmented
+    log-sum-exps per block instead of a loop over the sets; no copy of the
+    sets is kept between calls. Equal to :meth:`ParticlePosterior.total_loglik`
+    up to rounding.
+    """
+
+    #: points per block (bounds the (points, rows) temporaries)
+    BLOCK = 8
+
+    def __init__(self, records: Sequence[ChoiceRecord], level: int, less: bool):
+        self.records = tuple(records)
+        self.level = level
+        self.less = less
+
+    def _blocks(self):
+        g = self.level
+        for a in range(0, len(self.records), _EXPANSION_BLOCK):
+            xs, ss, sizes = [], [], []
+            chosen, constant = 0.0, 0.0
+            for rec in self.records[a:a + _EXPANSION_BLOCK]:
+                cols = rec.columns(g)
+                xs.append(rec.features[cols])
+                s = np.zeros(len(cols))
+                if self.less:
+                    s = rec.log_sim[cols]
+                    s[0] = rec.log_sim_chosen[g]
+                ss.append(s)
+                sizes.append(len(cols))
+                chosen = chosen + rec.features[rec.chosen]
+                constant += float(rec.log_density[g] - s[0])
+            sizes = np.asarray(sizes)
+            yield (np.concatenate(xs), np.concatenate(ss), sizes,
+                   np.concatenate([[0], np.cumsum(sizes)[:-1]]), chosen, constant)
+
+    def __call__(self, u: np.ndarray) -> np.ndarray:
+        """Summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
+        out = np.zeros(u.shape[0])
+        for x, s, sizes, starts, chosen, constant in self._blocks():
+            for a in range(0, u.shape[0], self.BLOCK):
+                ub = u[a:a + self.BLOCK]
+                e = ub @ x.T
+                e -= s
+                top = np.maximum.reduceat(e, starts, axis=1)
+                e -= np.repeat(top, sizes, axis=1)
+                np.maximum(e, _LOG_TINY, out=e)
+                np.exp(e, out=e)
+                part = np.log(np.add.reduceat(e, starts, axis=1)) + top
+                out[a:a + self.BLOCK] += ub @ chosen + constant - part.sum(axis=1)
+        return out
+
+
+class MoveTarget:
+    """The log-likelihood of the stored sets as the moves evaluate it.
+
+    Exact (``expansions is None``: every stored set, as :meth:`ParticlePosterior.total_loglik`),
+    or, for the oldest ``split`` sets, each level's fourth-order
+    :class:`LikelihoodExpansion` (the newer sets exact) inside the
+    ellipsoid of Mahalanobis radius ``radius`` around ``anchor`` (metric
+    ``precision``) and ``-inf`` beyond it, so that proposals there are
+    rejected (the region reaches :data:`TRUST_REACH` times beyond the
+    outermost particle). ``error``: mean absolute difference between the
+    expansion and the exact log-likelihood over particles at evenly spaced
+    ranks of their radius (an estimate of the posterior mean error);
+    ``error_max`` the largest of those and of the outermost particles' (NaN
+    when exact). Within one call of
+    the moves it is one fixed function, so Metropolis-Hastings leaves
+    ``prior x exp(target)`` invariant.
+    """
+
+    def __init__(self, posterior, expansions=None, anchor=None, precision=None,
+                 radius=0.0, error=float('nan'), error_max=float('nan'), split=0):
+        self.posterior = posterior
+        self.split = split
+        self.expansions = expansions
+        self.anchor = anchor
+        self.precision = precision
+        self.radius = radius
+        self.error = error
+        self.error_max = error_max
+
+    @property
+    def approximate(self) -> bool:
+        return self.expansions is not None
+
+    def radii(self, u: np.ndarray) -> np.ndarray:
+        """Mahalanobis radius of each ``u (n, d)`` around the anchor, ``(n,)``."""
+        delta = u - self.anchor
+        return np.sqrt(np.maximum(np.einsum('ij,ij->i', delta @ self.precision, delta), 0.0))
+
+    def __call__(self, theta: np.ndarray, beta: np.ndarray,
+                 level: Optional[np.ndarray]) -> np.ndarray:
+        if self.expansions is None:
+            return self.posterior.total_loglik(theta, beta, level)
+        u = beta[:, None] * theta
+        lev = np.zeros(len(u), dtype=np.int64) if level is None else level
+        out = np.empty(len(u))
+        for g, ex in enumerate(self.expansions):
+            sel = np.flatnonzero(lev == g)
+            if sel.size:
+                out[sel] = ex(u[sel])
+        post = self.posterior
+        for rec in post.records[self.split:]:
+            out += post.record_loglik(rec, theta, beta, level)
+        out[self.radii(u) > self.radius] = -np.inf
+        return out
+
+
 @dataclass(frozen=True)
 class PosteriorConfig:
     """Hyperparameters of the particle posterior (stored unchanged).
@@ -182,9 +414,17 @@ class PosteriorConfig:
     on it; ``None`` keeps ``beta`` fixed. ``n_levels``: number of option-spread
     levels (uniform prior over them) carried as a discrete coordinate.
     Tempering keeps the effective sample size at least ``ess_target`` x N in
-    every step; after each resampling the moves run at least ``n_moves``
-    rounds and until ``diversity_target`` of the particles have moved (at
-    most ``max_move_rounds``).
+    every step; between tempering steps the moves run
+    ``tempering_move_rounds`` rounds (0: only reweighting and resampling
+    until the demonstration is fully weighed in, every move after it);
+    after the last step (once resampled) at least ``n_moves`` rounds and
+    until ``diversity_target`` of the particles have moved (at most
+    ``max_move_rounds``). ``move_likelihood``: ``exact`` evaluates
+    every stored set in every move; ``expansion`` (default) uses a
+    fourth-order expansion of the stored sets' summed log-likelihood whenever
+    its mean absolute error, checked against the exact one on particles
+    spread over the cloud, is at most ``expansion_tol`` nats
+    (:class:`MoveTarget`), and the exact one otherwise.
     """
 
     n_particles: int = 4000
@@ -202,6 +442,9 @@ class PosteriorConfig:
     diversity_target: float = 0.8
     max_move_rounds: int = 8
     option_density: str = 'gaussian'
+    move_likelihood: str = 'expansion'
+    expansion_tol: float = 0.05
+    tempering_move_rounds: int = 2
 
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
@@ -233,6 +476,14 @@ class PosteriorConfig:
         if self.option_density not in ('gaussian', 'kde'):
             raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
                              'gaussian, kde')
+        if not 0 <= self.tempering_move_rounds <= self.max_move_rounds:
+            raise ValueError(f'tempering_move_rounds must be in [0, max_move_rounds], got '
+                             f'{self.tempering_move_rounds!r}')
+        if self.move_likelihood not in ('exact', 'expansion'):
+            raise ValueError(f'move_likelihood {self.move_likelihood!r} is unknown; allowed: '
+                             'exact, expansion')
+        if not (math.isfinite(self.expansion_tol) and self.expansion_tol > 0):
+            raise ValueError(f'expansion_tol must be > 0, got {self.expansion_tol!r}')
         if not isinstance(self.n_levels, (int, np.integer)) or self.n_levels < 1:
             raise ValueError(f'n_levels must be an integer >= 1, got {self.n_levels!r}')
         if isinstance(self.bandwidth, str):
@@ -246,7 +497,12 @@ class PosteriorConfig:
 
 
 class UpdateInfo(NamedTuple):
-    """What one update did (acceptance: mean Metropolis-Hastings acceptance of its moves)."""
+    """What one update did.
+
+    ``acceptance``: mean Metropolis-Hastings acceptance of its moves;
+    ``likelihood_error``: the largest of its moves' checked mean absolute
+    errors of the likelihood expansion (NaN when every move was exact).
+    """
 
     ess: float
     ess_before_resampling: float
@@ -256,6 +512,7 @@ class UpdateInfo(NamedTuple):
     tempering_steps: int = 1
     move_rounds: int = 0
     moved_fraction: float = float('nan')
+    likelihood_error: float = float('nan')
 
 
 @dataclass(frozen=True)
@@ -325,7 +582,13 @@ def _next_temperature(log_w: np.ndarray, ll: np.ndarray, remaining: float,
 
 @dataclass(frozen=True)
 class ParticlePosterior:
-    """Immutable particle approximation of p(theta[, beta][, level] | demonstrations)."""
+    """Immutable particle approximation of p(theta[, beta][, level] | demonstrations).
+
+    ``log_lik`` holds each particle's summed log-likelihood as the last moves
+    evaluated it: exact, or within the expansion's error when
+    ``log_lik_approximate`` (see :class:`MoveTarget`); the weights never use it.
+    ``likelihood_error``: the last moves' measured expansion error (NaN: exact).
+    """
 
     config: PosteriorConfig
     theta: np.ndarray
@@ -337,6 +600,8 @@ class ParticlePosterior:
     moves_pending: bool = False
     level: Optional[np.ndarray] = None
     acceptance: float = float('nan')
+    log_lik_approximate: bool = False
+    likelihood_error: float = float('nan')
 
     # ------------------------------------------------------------ creation
     @classmethod
@@ -446,11 +711,16 @@ class ParticlePosterior:
         ``with_density=False`` gives the choice probability alone (the
         demonstration given its set).
         """
-        out = np.full(theta.shape[0], -np.inf)
-        for g, sel, _, r in self._level_utilities(record, theta, beta, level):
-            chosen = r[:, 0].copy()
-            out[sel] = chosen - _logsumexp_rows(r) + (record.log_density[g] if with_density
-                                                      else 0.0)
+        n = theta.shape[0]
+        out = np.full(n, -np.inf)
+        for a in range(0, n, _PARTICLE_BLOCK):     # blocks keep the (rows, K) utilities in cache
+            b = min(n, a + _PARTICLE_BLOCK)
+            part = out[a:b]
+            for g, sel, _, r in self._level_utilities(record, theta[a:b], beta[a:b],
+                                                      None if level is None else level[a:b]):
+                chosen = r[:, 0].copy()
+                part[sel] = chosen - _logsumexp_rows(r) + (record.log_density[g]
+                                                           if with_density else 0.0)
         return out
 
     def total_loglik(self, theta: np.ndarray, beta: np.ndarray,
@@ -538,7 +808,7 @@ class ParticlePosterior:
         n = self.n_particles
         cur = self
         phi, steps, rounds = 0.0, 0, 0
-        accs, moved = [], float('nan')
+        accs, errs, moved = [], [], float('nan')
         ess0 = float('nan')
         resampled = False
         while phi < 1.0 and steps < 200:
@@ -557,6 +827,7 @@ class ParticlePosterior:
                 if phi < 1.0:
                     cur, ll, acc, r_, moved = cur._move(rng, record, phi, ll)
                     accs.append(acc)
+                    errs.append(cur.likelihood_error)
                     rounds += r_
         new = replace(cur, log_lik=cur.log_lik + ll, records=self.records + (record,),
                       moves_pending=False)
@@ -564,14 +835,17 @@ class ParticlePosterior:
             if move:
                 new, _, acc, r_, moved = new._move(rng, None, 0.0, None)
                 accs.append(acc)
+                errs.append(new.likelihood_error)
                 rounds += r_
             else:
                 new = replace(new, moves_pending=True)
+        accs = [a for a in accs if not math.isnan(a)]
         acc = float(np.mean(accs)) if accs else float('nan')
         if accs:
             new = replace(new, acceptance=acc)
+        errs = [e for e in errs if not math.isnan(e)]
         info = UpdateInfo(new.ess, ess0, resampled, acc, len(new.records), steps, rounds,
-                          moved)
+                          moved, max(errs) if errs else float('nan'))
         return new, info
 
     def rejuvenate(self, rng: np.random.Generator) -> Tuple['ParticlePosterior', float]:
@@ -588,6 +862,63 @@ class ParticlePosterior:
                        level=None if self.level is None else self.level[idx],
                        log_weights=np.full(n, -np.log(n)))
 
+    def move_target(self, theta: np.ndarray, beta: np.ndarray,
+                    level: Optional[np.ndarray]) -> MoveTarget:
+        """The stored sets' log-likelihood for moves starting from these particles.
+
+        With ``move_likelihood: expansion``: each level's
+        :class:`LikelihoodExpansion` around the weighted mean of
+        ``u = beta theta``, in the metric of its weighted covariance. It is
+        checked against the exact log-likelihood (:class:`StackedSets`) at
+        :data:`N_CHECK` particles, at evenly spaced ranks of their radius and
+        the :data:`N_OUTER` outermost, at every level; it is used when the mean absolute error
+        there is at most ``expansion_tol`` and the largest at most
+        :data:`MAX_ERROR_FACTOR` times that. Otherwise (the cloud still wide)
+        the oldest sets alone are expanded, as many as the errors suggest
+        (they grow about in proportion), and checked again, at most three
+        times; the newer sets stay exact; below :data:`MIN_EXPANDED` sets the
+        moves are exact. Deterministic: no random numbers are drawn.
+        """
+        cfg = self.config
+        if cfg.move_likelihood == 'exact' or not self.records:
+            return MoveTarget(self)
+        less = cfg.model == 'less'
+        u = beta[:, None] * theta
+        w = self.weights
+        anchor = w @ u
+        delta = u - anchor
+        cov = (delta * w[:, None]).T @ delta
+        cov += np.eye(self.d) * (1e-12 + 1e-9 * np.trace(cov) / self.d)
+        precision = np.linalg.inv(cov)
+        probe = MoveTarget(self, None, anchor, precision)
+        r = probe.radii(u)
+        n = len(r)
+        if not r.max() > 0:                # one point: no spread to fit a trust region to
+            return MoveTarget(self)
+        order = np.argsort(r, kind='stable')
+        spread = N_CHECK - N_OUTER
+        picks = np.concatenate([order[((np.arange(spread) + 0.5) * n / spread).astype(np.int64)],
+                                order[-N_OUTER:]])
+        tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
+        split = len(self.records)
+        for _ in range(3):
+            prefix = self.records[:split]
+            expansions, errs = [], []
+            for g in range(cfg.n_levels):    # every level at every checked point: particles jump
+                ex = expand_loglik(prefix, g, anchor, less)
+                expansions.append(ex)
+                errs.append(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
+            err = np.abs(np.array(errs))                 # (levels, checked particles)
+            mean, worst = float(err[:, :len(picks) - N_OUTER].mean()), float(err.max())
+            if mean <= tol and worst <= cap:
+                return MoveTarget(self, expansions, anchor, precision,
+                                  TRUST_REACH * float(r.max()), mean, worst, split)
+            # the error grows about in proportion to the number of expanded sets
+            split = int(0.8 * split * min(tol / mean, cap / worst))
+            if split < MIN_EXPANDED:
+                break
+        return MoveTarget(self, error=mean, error_max=worst)
+
     def _move(self, rng, extra: Optional[ChoiceRecord], phi: float, ll_extra):
         """Metropolis-Hastings moves on equally weighted particles.
 
@@ -599,14 +930,21 @@ class ParticlePosterior:
         by a Gaussian step proportional to its spread; the spread level moves
         to a neighbour with probability 0.3 (rejected outside the range).
         Rounds run until ``diversity_target`` of the particles have moved at
-        least once (at least ``n_moves``, at most ``max_move_rounds``).
-        Returns ``(posterior, ll_extra, acceptance, rounds, moved_fraction)``.
+        least once (at least ``n_moves``, at most ``max_move_rounds``); while
+        tempering (``extra`` given) exactly ``tempering_move_rounds`` rounds.
+        The stored sets' likelihood is :meth:`move_target`'s, fixed for the
+        whole call. Returns ``(posterior, ll_extra, acceptance, rounds,
+        moved_fraction)``.
         """
         cfg = self.config
         theta, log_beta, level, log_lik = self.theta, self.log_beta, self.level, self.log_lik
         n, d = theta.shape
-        if cfg.max_move_rounds == 0 or (not self.records and extra is None):
+        if (cfg.max_move_rounds == 0 or (not self.records and extra is None)
+                or (extra is not None and cfg.tempering_move_rounds == 0)):
             return self, ll_extra, float('nan'), 0, 0.0
+        target = self.move_target(theta, self.beta, level)
+        if target.approximate or self.log_lik_approximate:
+            log_lik = target(theta, self.beta, level)
         r_len = float(np.linalg.norm(theta.mean(axis=0)))
         spread = math.sqrt(max(2.0 * (1.0 - min(r_len, 1.0)) / max(d - 1, 1), 1e-10))
         base = 2.38 / math.sqrt(max(d - 1 + (log_beta is not None), 1))
@@ -615,7 +953,10 @@ class ParticlePosterior:
         lp = self.log_prior(theta, log_beta, level)
         moved = np.zeros(n, dtype=bool)
         rates = []
-        for rnd in range(cfg.max_move_rounds):
+        # between tempering steps (``extra`` given) a fixed number of rounds: publication
+        # waits for them; the moves after the last step run to the diversity target
+        limit = cfg.tempering_move_rounds if extra is not None else cfg.max_move_rounds
+        for rnd in range(limit):
             if rnd >= cfg.n_moves and moved.mean() >= cfg.diversity_target:
                 break
             step = float(np.clip(factor * base * spread, 1e-5, 1.5))
@@ -632,7 +973,7 @@ class ParticlePosterior:
             beta_new = self.beta if prop_lb is None else np.exp(prop_lb)
             ok = np.isfinite(lp_new)
             lv_eval = None if prop_lv is None else np.clip(prop_lv, 0, cfg.n_levels - 1)
-            ll_new = self.total_loglik(prop, beta_new, lv_eval)
+            ll_new = target(prop, beta_new, lv_eval)
             cur_extra = 0.0
             new_extra = 0.0
             if extra is not None:
@@ -659,7 +1000,8 @@ class ParticlePosterior:
             elif rate > 0.4:
                 factor = min(factor * 1.5, 10.0)
         new = replace(self, theta=theta, log_beta=log_beta, level=level, log_lik=log_lik,
-                      step_size=factor)
+                      step_size=factor, log_lik_approximate=target.approximate,
+                      likelihood_error=target.error if target.approximate else float('nan'))
         acc = float(np.mean(rates)) if rates else float('nan')
         return new, ll_extra, acc, len(rates), float(moved.mean())
 
@@ -729,6 +1071,7 @@ class ParticlePosterior:
                     'config': cfg, 'step_size': self.step_size,
                     'acceptance': None if math.isnan(self.acceptance) else self.acceptance,
                     'moves_pending': self.moves_pending,
+                    'log_lik_approximate': self.log_lik_approximate,
                     'n_particles': self.n_particles, 'd': self.d,
                     'n_demonstrations': len(recs)}
         return arrays, manifest
@@ -774,7 +1117,8 @@ class ParticlePosterior:
                    tuple(recs), float(manifest.get('step_size', 1.0)),
                    bool(manifest.get('moves_pending', False)),
                    np.array(arrays['level']) if 'level' in arrays else None,
-                   float('nan') if acc is None else float(acc))
+                   float('nan') if acc is None else float(acc),
+                   bool(manifest.get('log_lik_approximate', False)))
         if post.theta.shape != (manifest['n_particles'], manifest['d']):
             raise ValueError('posterior arrays do not match their manifest')
         return post

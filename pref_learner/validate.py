@@ -317,7 +317,9 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
     the shipped arm's smooth alternative sets. The rank of each true
     coordinate (and of log beta) among ``n_draws`` posterior draws is uniform
     on 0..n_draws when the posterior is right; a chi-square test (scipy) on
-    the pooled ranks in 10 bins gives the p-value.
+    the pooled ranks in 10 bins gives the p-value. Also counted: the updates
+    that moved particles and those whose moves used the likelihood expansion
+    (longer runs, ``n_demos``, narrow the posterior enough for it).
     """
     from scipy import stats
 
@@ -333,6 +335,7 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
     cfg = PosteriorConfig(n_particles=n_particles, model='less', beta_range=(0.5, 50.0))
     d = L.features.d
     ranks = []
+    moved = expanded = 0
     for r in progress(range(n_runs), 'simulation-based calibration'):
         g = np.random.default_rng([seed, r])
         theta = sample_uniform_sphere(1, d, g)[0]
@@ -341,7 +344,10 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
         for k in range(n_demos):
             x = sets[(r + k) % len(sets)]
             p = choice.choice_probabilities(x, theta, float(np.exp(log_beta)), 'less')
-            post, _ = post.update((x, int(g.choice(len(x), p=p))), g)
+            post, info = post.update((x, int(g.choice(len(x), p=p))), g)
+            if info.resampled:
+                moved += 1
+                expanded += bool(np.isfinite(info.likelihood_error))
         idx = g.choice(post.n_particles, n_draws, p=post.weights)
         draws = np.column_stack([post.theta[idx], post.log_beta[idx]])
         truth = np.concatenate([theta, [log_beta]])
@@ -353,7 +359,8 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
                                               range=(0, n_draws + 1))[0]).pvalue)
            for j in range(ranks.shape[1])]
     return {'pvalue': pvalue, 'pvalue_per_coordinate': per, 'counts': counts.tolist(),
-            'n_runs': n_runs, 'n_draws': n_draws}
+            'n_runs': n_runs, 'n_draws': n_draws, 'updates_with_moves': moved,
+            'updates_with_expanded_moves': expanded}
 
 
 # ---------------------------------------------------------------- study 6: guided teaching

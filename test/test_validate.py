@@ -40,6 +40,15 @@ def test_simulation_based_calibration_of_the_sampler():
     assert sum(r['counts']) == 60 * 7
 
 
+def test_simulation_based_calibration_with_the_likelihood_expansion():
+    # As above (Talts et al. 2018), with 30 demonstrations per run so that the posterior
+    # narrows and the moves switch to the checked likelihood expansion in part of the
+    # updates; the ranks must still be uniform (chi-square, scipy.stats, at 0.01).
+    r = validate.study_sbc(n_runs=60, n_demos=30, n_particles=600, n_draws=49, seed=1)
+    assert r['updates_with_expanded_moves'] >= 20, r
+    assert r['pvalue'] > 0.01, r
+
+
 def test_calibration_study_reports_every_condition():
     r = validate.study_calibration(n_truths=3, n_demos=3, n_particles=300, n_alternatives=60)
     assert [x['variant'] for x in r['mismatched']['runs']] == list(validate.MISMATCHED)

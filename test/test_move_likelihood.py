@@ -1,0 +1,232 @@
+# Copyright 2026 pref_learner contributors
+# SPDX-License-Identifier: Apache-2.0
+"""The moves' likelihood expansion against the exact likelihood, quadrature and itself."""
+
+from dataclasses import replace
+
+import numpy as np
+import pytest
+from scipy import integrate, stats
+
+from pref_learner import choice
+from pref_learner.posterior import (MAX_ERROR_FACTOR, ParticlePosterior, PosteriorConfig,
+                                    StackedSets, expand_loglik)
+
+
+def _records(post, rng, n_sets, k, true_u, model):
+    """Choice sets of ``k`` random options with choices drawn from the model at ``true_u``."""
+    recs = []
+    beta = float(np.linalg.norm(true_u))
+    for _ in range(n_sets):
+        x = rng.standard_normal((k, post.d))
+        p = choice.choice_probabilities(x, true_u / beta, beta, model)
+        recs.append(post.prepare(x, int(rng.choice(k, p=p))))
+    return tuple(recs)
+
+
+def _with_particles(post, records, theta, log_beta=None):
+    n = len(theta)
+    beta = post.config.beta if log_beta is None else np.exp(log_beta)
+    base = replace(post, theta=theta, log_beta=log_beta, records=records,
+                   log_weights=np.full(n, -np.log(n)), log_lik=np.zeros(n))
+    return replace(base, log_lik=base.total_loglik(theta, np.broadcast_to(beta, (n,)), None))
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_expansion_is_exact_at_the_anchor_and_its_remainder_is_fifth_order(model):
+    # Taylor's theorem: an expansion with the right derivatives up to order four leaves a
+    # remainder O(|delta|^5), so halving delta divides the error by about 2^5 = 32; one
+    # wrong coefficient of order k would leave O(|delta|^k). Exact value: StackedSets, itself
+    # checked against the per-set loop (total_loglik) here.
+    rng = np.random.default_rng(1)
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=10, model=model), 4, rng)
+    u0 = np.array([2.0, -1.0, 0.5, 1.0])
+    recs = _records(post, rng, 12, 30, u0, model)
+    ex = expand_loglik(recs, 0, u0, model == 'less')
+    exact = StackedSets(recs, 0, model == 'less')
+    th = rng.standard_normal((5, 4))
+    th /= np.linalg.norm(th, axis=1, keepdims=True)
+    b = rng.uniform(0.5, 3.0, 5)
+    ref = sum(post.record_loglik(r, th, b) for r in recs)
+    np.testing.assert_allclose(exact(b[:, None] * th), ref, rtol=1e-12, atol=1e-9)
+    assert ex(u0[None])[0] == pytest.approx(exact(u0[None])[0], rel=1e-12)
+    dirs = rng.standard_normal((8, 4))
+    dirs /= np.linalg.norm(dirs, axis=1, keepdims=True)
+    scales = np.array([0.08, 0.02])
+    err = np.array([np.abs(ex(u0 + s * dirs) - exact(u0 + s * dirs)) for s in scales])
+    slopes = np.log(err[0] / err[1]) / np.log(scales[0] / scales[1])
+    assert abs(np.median(slopes) - 5.0) < 0.2 and np.all(slopes > 4.4), slopes
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_checked_expansion_error_bound_holds_on_the_whole_cloud(model):
+    # The stated bound: when the moves use the expansion, its mean absolute error over the
+    # cloud is at most expansion_tol and its largest at most MAX_ERROR_FACTOR times that.
+    # The check sees only N_CHECK particles; here every particle is compared with the exact
+    # log-likelihood (summed over the sets one by one, total_loglik) on random sets and
+    # clouds of several widths, beta inferred. Where the check refuses, the moves are exact.
+    rng = np.random.default_rng(2)
+    used = 0
+    for trial in range(6):
+        cfg = PosteriorConfig(n_particles=2000, model=model, beta_range=(0.5, 20.0),
+                              expansion_tol=0.05)
+        post = ParticlePosterior.create(cfg, 4, rng)
+        true_u = rng.standard_normal(4) * 1.5
+        recs = _records(post, rng, 40, 25, true_u, model)
+        width = [0.03, 0.06, 0.1, 0.2, 0.3, 0.5][trial]
+        u = true_u + width * rng.standard_normal((2000, 4)) @ np.diag([1.0, 0.7, 0.5, 1.3])
+        b = np.linalg.norm(u, axis=1)
+        p = _with_particles(post, recs, u / b[:, None], np.log(b))
+        target = p.move_target(p.theta, p.beta, None)
+        if not target.approximate:
+            continue
+        used += 1
+        err = np.abs(target(p.theta, p.beta, None) - p.log_lik)
+        assert err.mean() <= cfg.expansion_tol
+        assert err.max() <= MAX_ERROR_FACTOR * cfg.expansion_tol
+    assert used >= 2
+
+
+def _circle_posterior(model, beta, n_sets, k, seed):
+    rng = np.random.default_rng(seed)
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=4000, model=model, beta=beta,
+                                                    expansion_tol=0.02), 2, rng)
+    true_u = beta * np.array([np.cos(1.0), np.sin(1.0)])
+    recs = _records(post, rng, n_sets, k, true_u, model)
+    grid = np.linspace(-np.pi, np.pi, 40001)
+    th = np.stack([np.cos(grid), np.sin(grid)], axis=1)
+    ll = sum(post.record_loglik(r, th, np.full(len(grid), beta)) for r in recs)
+    dens = np.exp(ll - ll.max())
+    cdf = integrate.cumulative_trapezoid(dens, grid, initial=0.0)
+    cdf /= cdf[-1]
+    return post, recs, rng, grid, cdf
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_expansion_moves_leave_the_exact_posterior_invariant(model):
+    # Invariance: particles drawn exactly from the posterior on the circle (inverse CDF of a
+    # quadrature on a fine grid, scipy.integrate) and moved by the expansion's
+    # Metropolis-Hastings rounds are still distributed as that posterior: one-sample KS test
+    # (scipy.stats.kstest) against the quadrature CDF at significance 0.01, seeded.
+    post, recs, rng, grid, cdf = _circle_posterior(model, 3.0, 60, 20, 3)
+    ang = np.interp(rng.random(4000), cdf, grid)
+    p = _with_particles(post, recs, np.stack([np.cos(ang), np.sin(ang)], 1))
+    moved, acc = replace(p, moves_pending=True).rejuvenate(rng)
+    assert moved.log_lik_approximate and np.isfinite(moved.likelihood_error)
+    assert 0.1 < acc < 0.6
+    assert np.mean(np.any(moved.theta != p.theta, axis=1)) > 0.5
+
+    def exact_cdf(a):
+        return np.interp(a, grid, cdf)
+    out = np.arctan2(moved.theta[:, 1], moved.theta[:, 0])
+    assert stats.kstest(out, exact_cdf).pvalue > 0.01
+
+
+def test_expansion_posterior_matches_quadrature_after_updates():
+    # The whole sequence (tempered updates, resampling, moves that switch to the expansion
+    # once the cloud is narrow) against the exact posterior mean and spread on the circle.
+    post, recs, rng, grid, cdf = _circle_posterior('less', 3.0, 60, 20, 4)
+    used = []
+    for r in recs:
+        post, info = post.update(r, rng)
+        used.append(np.isfinite(info.likelihood_error))
+    assert any(used)
+    pdf = np.gradient(cdf, grid)
+    th = np.stack([np.cos(grid), np.sin(grid)], 1)
+    mean = integrate.trapezoid(pdf[:, None] * th, grid, axis=0)
+    np.testing.assert_allclose(post.weights @ post.theta, mean, atol=0.01)
+
+
+def test_same_seed_same_posterior_bit_for_bit_with_the_expansion(tmp_path):
+    rng = np.random.default_rng(5)
+    base = ParticlePosterior.create(PosteriorConfig(n_particles=1500, model='less',
+                                                    beta_range=(0.5, 20.0)), 3, rng)
+    recs = _records(base, rng, 60, 30, np.array([3.0, 1.5, -1.5]), 'less')
+
+    def run():
+        g = np.random.default_rng(6)
+        p = ParticlePosterior.create(base.config, 3, g)
+        errs = []
+        for r in recs:
+            p, info = p.update(r, g)
+            errs.append(info.likelihood_error)
+        return p, errs
+    a, ea = run()
+    b, eb = run()
+    assert any(np.isfinite(ea))
+    np.testing.assert_array_equal(ea, eb)
+    for f in ('theta', 'log_weights', 'log_lik', 'log_beta'):
+        np.testing.assert_array_equal(getattr(a, f), getattr(b, f))
+    a.save(tmp_path / 'p')
+    back = ParticlePosterior.load(tmp_path / 'p')
+    assert back.log_lik_approximate == a.log_lik_approximate
+
+
+def test_exact_moves_option_and_bad_settings():
+    with pytest.raises(ValueError, match='move_likelihood'):
+        PosteriorConfig(move_likelihood='cheap')
+    with pytest.raises(ValueError, match='expansion_tol'):
+        PosteriorConfig(expansion_tol=0.0)
+    rng = np.random.default_rng(7)
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=500, move_likelihood='exact'),
+                                    3, rng)
+    for r in _records(post, rng, 10, 15, np.array([1.0, 2.0, 0.0]), 'less'):
+        post, info = post.update(r, rng)
+        assert np.isnan(info.likelihood_error)
+    assert not post.log_lik_approximate
+
+
+def test_expansion_with_option_levels_matches_each_levels_likelihood():
+    # Two option levels: a particle at level g compares the demonstration with level g's
+    # alternatives and adds that level's log density. The moves' likelihood for particles at
+    # either level is checked against the exact per-set sum (total_loglik), as above.
+    rng = np.random.default_rng(8)
+    cfg = PosteriorConfig(n_particles=2000, model='less', beta_range=(0.5, 20.0), n_levels=2)
+    post = ParticlePosterior.create(cfg, 3, rng)
+    true_u = np.array([2.0, -1.0, 1.5])
+    recs = []
+    for _ in range(60):
+        x = np.vstack([rng.standard_normal((13, 3)), 1.5 * rng.standard_normal((12, 3))])
+        groups = np.array([-1] + [0] * 12 + [1] * 12)
+        p = choice.choice_probabilities(x[:13], true_u / 2.693, 2.693, 'less')
+        c = int(rng.choice(13, p=p))
+        x[[0, c]] = x[[c, 0]]
+        recs.append(post.prepare(x, 0, groups))
+    u = true_u + 0.03 * rng.standard_normal((2000, 3))
+    b = np.linalg.norm(u, axis=1)
+    level = rng.integers(0, 2, 2000)
+    p = replace(post, theta=u / b[:, None], log_beta=np.log(b), level=level,
+                records=tuple(recs))
+    target = p.move_target(p.theta, p.beta, p.level)
+    assert target.approximate
+    err = np.abs(target(p.theta, p.beta, p.level) - p.total_loglik(p.theta, p.beta, p.level))
+    assert err.mean() <= cfg.expansion_tol
+    assert err.max() <= MAX_ERROR_FACTOR * cfg.expansion_tol
+
+
+def test_tempering_without_moves_between_steps_matches_quadrature():
+    # tempering_move_rounds = 0: the steps only reweight and resample, every move comes
+    # after the demonstration is weighed in. One sharp demonstration (beta 40, several
+    # steps) on the circle against the exact posterior mean (scipy.integrate), as in
+    # test_posterior's tempered-update check; the steps are the same with moves between.
+    rng = np.random.default_rng(90)
+    x = rng.standard_normal((40, 2))
+    c = int(np.argmax(x @ np.array([np.cos(2.0), np.sin(2.0)])))
+    grid = np.linspace(-np.pi, np.pi, 20001)
+    th = np.stack([np.cos(grid), np.sin(grid)], axis=1)
+    dens = np.exp(choice.less_loglik(x, c, th, 40.0) - choice.less_loglik(x, c, th, 40.0).max())
+    exact_mean = integrate.trapezoid(dens[:, None] * th, grid, axis=0) / integrate.trapezoid(
+        dens, grid)
+    for rounds in (0, 2):
+        cfg = PosteriorConfig(n_particles=8000, model='less', beta=40.0,
+                              tempering_move_rounds=rounds)
+        g = np.random.default_rng(91)
+        post, info = ParticlePosterior.create(cfg, 2, g).update((x, c), g, move=False)
+        assert info.tempering_steps > 1 and post.moves_pending
+        if rounds == 0:
+            assert np.isnan(info.acceptance)
+        post, acc = post.rejuvenate(g)
+        assert 0.0 < acc < 1.0
+        np.testing.assert_allclose(post.weights @ post.theta, exact_mean, atol=0.02)
+    with pytest.raises(ValueError, match='tempering_move_rounds'):
+        PosteriorConfig(tempering_move_rounds=9)
