@@ -457,10 +457,11 @@ def simulated_study_folder(folder, n_per_kind: int = 8, n_demonstrations: int = 
     """
     from pathlib import Path
 
-    from .learner import Learner, LearnerConfig
+    from .learner import LearnerConfig
+    from .task import TaskModel
     from .sim import TeacherConfig, write_simulated_session
     folder = Path(folder)
-    base = Learner(LearnerConfig(model='less', n_particles=1, n_alternatives=1))
+    base = TaskModel.from_config(LearnerConfig(model='less', n_alternatives=1))
     v = np.random.default_rng(seed).standard_normal(base.features.d)
     v /= np.linalg.norm(v)
     truths = []

@@ -16,14 +16,14 @@ Two pieces of evidence, from a state directory's stored demonstrations:
 from __future__ import annotations
 
 import math
-from dataclasses import fields
+from dataclasses import replace
 from typing import Dict, List, Sequence, Tuple
 
 import numpy as np
 from scipy.special import logsumexp
 
 from .demonstrations import Demonstration, prepare
-from .learner import Learner, LearnerConfig
+from .learner import Learner, stored_session
 from .posterior import ParticlePosterior
 from .progress import progress
 from .store import StateStore
@@ -31,14 +31,22 @@ from .store import StateStore
 MODELS = ('boltzmann', 'less')
 
 
-def _config_from_manifest(manifest: dict, **over) -> LearnerConfig:
-    known = {f.name for f in fields(LearnerConfig)}
-    cfg = {k: v for k, v in (manifest.get('config') or {}).items() if k in known}
-    cfg.pop('state_dir', None)
-    cfg.update(over)
-    if 'joint_names' in cfg:
-        cfg['joint_names'] = tuple(cfg['joint_names'])
-    return LearnerConfig(**cfg)
+def stored_learner(state_dir, **over) -> Learner:
+    """Return a learner (no state directory of its own) with a session's settings.
+
+    Its task model is the state directory's stored record (robot, features,
+    scales: nothing is rebuilt from the shipped defaults), with the task
+    settings in ``over`` changed; a directory without a record is rebuilt
+    from its settings with its stored scales.
+    """
+    cfg, record = stored_session(state_dir, **over)
+    if record is not None:
+        from .task import TaskModel
+        task_over = {k: v for k, v in over.items() if k in record.settings()}
+        task = TaskModel.from_record(record.with_settings(**task_over), cfg.planner_jobs)
+        return Learner(cfg, task=task)
+    scales = StateStore(state_dir).read_manifest().get('scales')
+    return Learner(cfg, scales=scales or None)
 
 
 def loo_scores(records: Sequence[Tuple[np.ndarray, np.ndarray]], configs: dict,
@@ -117,10 +125,8 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
     over = {'model': 'both', 'n_particles': n_particles}
     if n_alternatives:
         over['n_alternatives'] = n_alternatives
-    cfg = _config_from_manifest(manifest, **over)
-    L = Learner(cfg)
-    if manifest.get('scales'):
-        L.features = L.features.with_scales(manifest['scales'])
+    L = stored_learner(state_dir, **over)
+    cfg = L.config
     demos, records = stored_choice_sets(store, L)
     k = len(records)
     loo = loo_scores(records, {m: cfg.posterior_config(m) for m in MODELS}, L.features.d,
@@ -128,8 +134,7 @@ def compare_models(state_dir, n_sets: int = 10, n_particles: int = 2000,
     spreads = {}
     means = {m: [] for m in MODELS}
     for s in progress(range(n_sets), 'redrawn alternative sets'):
-        Ls = Learner(_config_from_manifest(manifest, **dict(over, seed=cfg.seed + 1000 + s)))
-        Ls.features = L.features
+        Ls = Learner(replace(cfg, seed=cfg.seed + 1000 + s), task=L.task)
         for d in demos:
             Ls.process(d)
         for m, sm in Ls.summaries().items():

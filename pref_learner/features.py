@@ -660,16 +660,20 @@ def default_features_path() -> Path:
     return data_path('bench_scenario.yaml')
 
 
-def load_scenario(path=None) -> dict:
-    """Read the ``scenario`` block of a feature YAML.
+def load_scenario(path=None, text: Optional[str] = None) -> dict:
+    """Read the ``scenario`` block of a feature YAML (a file, or its ``text``).
 
     Returns ``tasks`` (name, start, goal) pairs, ``duration`` of a simulated
     demonstration, and ``example_preference``: the simulated person's weights
     in feature order, or None when the file gives none. The example preference
     is a mapping from feature name to weight and must name every feature.
     """
-    path = Path(path) if path else default_features_path()
-    doc = yaml.safe_load(path.read_text())
+    if text is not None:
+        path = '<feature specification>'
+    else:
+        path = Path(path) if path else default_features_path()
+        text = path.read_text()
+    doc = yaml.safe_load(text)
     sc = doc.get('scenario') or {}
     tasks = sc.get('tasks') or []
     out = []

@@ -1,11 +1,14 @@
 # Copyright 2026 pref_learner contributors
 # SPDX-License-Identifier: Apache-2.0
-"""THE learning pipeline: samples -> demonstration -> alternatives -> features -> posterior.
+"""The learning session: samples -> demonstration -> choice set -> posterior.
 
-:class:`Learner` is the one object that the ROS node, the offline ``learn``
-command, the simulated studies and the benchmarks all drive. It owns the
-robot model, the feature set (with its fixed session scale), the recorder,
-the alternative sampler, one posterior per model, and the state store.
+:class:`Learner` is the session that the ROS node, the offline ``learn``
+command, the simulated studies and the benchmarks all drive: the recorder,
+one posterior per model, the state store, replay and editing. What a
+demonstration is compared with and how it is scored (robot, features with
+their fixed scales, conditioning, alternatives) is its
+:class:`~pref_learner.task.TaskModel`, built from a
+:class:`~pref_learner.task.TaskRecord` that the state directory stores.
 
 Determinism: demonstration i uses generators derived from
 ``SeedSequence([seed, i, ...])``, so replaying the stored (or bagged)
@@ -19,21 +22,21 @@ import hashlib
 import json
 import logging
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, fields, replace
 from pathlib import Path
 from typing import Dict, List, Optional, Tuple
 
 import numpy as np
 
 from . import __version__
-from .alternatives import AlternativeSampler, SamplerConfig, set_diagnostics
+from .alternatives import SamplerConfig, set_diagnostics
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
-                             Rejection, SegmentConfig, condition, prepare,
-                             reparametrize_arc_length)
-from .features import FeatureSet, default_features_path, load_scenario
+                             Rejection, SegmentConfig, prepare)
+from .features import FeatureSet, default_features_path
 from .posterior import ParticlePosterior, PosteriorConfig, Summary
-from .robot import RobotModel, default_urdf_path
+from .robot import RobotModel
 from .store import StateStore
+from .task import TaskModel, TaskRecord, draft_record, learning_hash, scaled_record
 
 log = logging.getLogger('pref_learner')
 
@@ -193,43 +196,28 @@ class Learner:
     """The pipeline (see module docstring)."""
 
     def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None,
-                 scales=None):
-        """Build the pipeline.
+                 scales=None, task: Optional[TaskModel] = None):
+        """Start or resume a session.
 
         ``on_estimate(StepResult)`` is called as soon as a demonstration has been
         weighed in, before the (slower) rejuvenation moves; the node publishes there.
-        ``scales``: the feature scales to use (d,), instead of the feature file's or a
-        calibration (a state directory's stored scales still take precedence).
+        ``task``: the task model to learn with; its record's settings replace
+        ``config``'s (:meth:`TaskRecord.apply_to`). Without it the task model is
+        the state directory's stored record when the configuration is the
+        stored one, else made from ``config`` (:func:`~pref_learner.task.task_record`:
+        this calibrates the scales unless ``scales`` (d,) or the feature file gives them).
         """
+        self.store = StateStore(config.state_dir) if config.state_dir else None
+        if task is None:
+            task = self._stored_task(config, scales)
+        else:
+            config = task.record.apply_to(config)
         self.config = config
         self.on_estimate = on_estimate
-        urdf = config.urdf or str(default_urdf_path())
-        self.robot = RobotModel(urdf, joint_names=config.joint_names or None,
-                                tool_frame=config.tool_frame, clamp=config.clamp)
-        fpath = config.features or str(default_features_path())
-        fs = FeatureSet.from_yaml(fpath, self.robot)
-        if scales is not None:
-            fs = fs.with_scales(scales)
-        elif fs.scales is None:
-            fs = fs.with_scales(self._calibrate(fs))
-        self.features = fs
-        if config.mix_planner > 0:
-            from .planner import PlannerConfig, TrajectoryPlanner, planner_alternatives
-            planner = TrajectoryPlanner(fs, PlannerConfig(config.n_waypoints, restarts=0,
-                                                          max_iter=30))
-
-            def planner_fn(start, goal, weights, rng):
-                return planner_alternatives(planner, start, goal, weights, rng,
-                                            n_jobs=config.planner_jobs)
-        else:
-            planner_fn = None
-        self.sampler = AlternativeSampler(self.robot, config.n_waypoints,
-                                          config.sampler_config(), planner=planner_fn,
-                                          n_features=fs.d, ascent=self.reward_gradient)
+        self.task = task
+        self._record_stored = False
         self.recorder = Recorder(self.robot.joint_names, config.segment_config())
-        self.prepare_config = config.prepare_config()
-        self.store = StateStore(config.state_dir) if config.state_dir else None
-        self.hash = config.learning_hash()
+        self.hash = learning_hash(config, task.record)
         self.rejections: List[dict] = []
         self._demos: List[Demonstration] = []
         self._diagnostics: List[dict] = []
@@ -238,38 +226,70 @@ class Learner:
         if self.store is not None:
             self._load_state()
 
+    @classmethod
+    def open(cls, state_dir, on_estimate=None, **over) -> 'Learner':
+        """Resume the session of a state directory with its stored settings and task model.
+
+        ``over``: settings to change (session settings such as ``n_particles``
+        or ``seed``, and task settings, which rebuild the choice sets).
+        """
+        config, record = stored_session(state_dir, **over)
+        task = None
+        if record is not None:
+            task = TaskModel.from_record(record.with_settings(
+                **{k: v for k, v in over.items() if k in record.settings()}),
+                config.planner_jobs)
+        return cls(replace(config, state_dir=str(state_dir)), on_estimate, task=task)
+
     # ------------------------------------------------------------ setup
+    def _stored_task(self, config: LearnerConfig, scales) -> TaskModel:
+        """Return the task model of ``config`` with the session's fixed scales.
+
+        The state directory's stored record gives them when its learning hash is
+        this configuration's; else ``scales``, the feature file's or a calibration.
+        """
+        draft, robot, fs = draft_record(config)
+        if self.store is not None:
+            try:
+                manifest = self.store.read_manifest()
+            except ValueError:
+                manifest = None              # _load_state reports it
+            text = self.store.read_task_record()
+            if (manifest is not None and text is not None
+                    and manifest.get('learning_hash') == learning_hash(config, draft)):
+                try:
+                    stored = TaskRecord.from_json(text)
+                    if replace(stored, scales=()) == draft:
+                        scales = stored.scales
+                except ValueError as exc:
+                    log.warning('stored task record unusable (%s); making it anew', exc)
+        record = scaled_record(draft, robot, fs, scales)
+        return TaskModel(record, robot, fs.with_scales(record.scales), config.planner_jobs)
+
+    @property
+    def record(self) -> TaskRecord:
+        """The task record of this session (what the state directory stores)."""
+        return self.task.record
+
+    @property
+    def robot(self) -> RobotModel:
+        return self.task.robot
+
+    @property
+    def features(self) -> FeatureSet:
+        return self.task.features
+
+    @property
+    def sampler(self):
+        return self.task.sampler
+
+    @property
+    def prepare_config(self) -> PrepareConfig:
+        return self.task.prepare_config
+
     def tasks(self):
-        """Return the scenario's (name, start, goal) tasks.
-
-        Random in-limit pairs for a robot the scenario does not fit.
-        """
-        try:
-            tasks = load_scenario(self.config.features or None)['tasks']
-        except (OSError, ValueError, AttributeError):
-            tasks = []
-        tasks = [t for t in tasks if t[1].shape == (self.robot.n,)]
-        if not tasks:  # a user robot: random in-limit pairs
-            rng = np.random.default_rng(self.config.calibration_seed)
-            qs = self.robot.random_configurations(8, rng, margin=0.2)
-            tasks = [(f'random_{i}', qs[2 * i], qs[2 * i + 1]) for i in range(4)]
-        return tasks
-
-    def _calibrate(self, fs: FeatureSet) -> np.ndarray:
-        """Calibrate one fixed scale per feature.
-
-        The std of raw features over smooth trajectories across the scenario's
-        tasks, conditioned as every choice set is (1 where a feature does not vary).
-        """
-        n = self.config.n_calibration
-        spread = self.config.sampler_config().noise_scale
-        sampler = AlternativeSampler(self.robot, self.config.n_waypoints,
-                                     SamplerConfig(n, {'smooth': 1.0}, (spread,)))
-        rng = np.random.default_rng(self.config.calibration_seed)
-        rows = [fs.raw(self.condition(self.retime(sampler.sample(start, goal, rng, m=n)[0])))
-                for _, start, goal in self.tasks()]
-        sd = np.concatenate(rows).std(axis=0)
-        return np.where(sd > 1e-12, sd, 1.0)
+        """Return the scenario's (name, start, goal) tasks (:meth:`TaskModel.tasks`)."""
+        return self.task.tasks()
 
     def _reset_posteriors(self):
         self.posteriors: Dict[str, ParticlePosterior] = {}
@@ -280,7 +300,7 @@ class Learner:
 
     def option_labels(self) -> Tuple[str, ...]:
         """Names of the option levels (the posterior's level coordinate), in order."""
-        return tuple(lab for lab, _, _ in self.config.sampler_config().option_models())
+        return self.task.option_labels()
 
     def history_diagnostics(self) -> List[dict]:
         """Per-demonstration set diagnostics and posterior checks, in order."""
@@ -317,10 +337,8 @@ class Learner:
             return
         same = manifest is not None and manifest.get('learning_hash') == self.hash
         loaded = False
-        if same and manifest.get('scales'):
-            # the session's reward scale is the stored one, whatever a recalibration
-            # would give now (it changes only with a reset)
-            self.features = self.features.with_scales(manifest['scales'])
+        # the session's reward scale is the stored one (_stored_task), whatever a
+        # recalibration would give now (it changes only with a reset)
         intact = all(isinstance(d, Demonstration) for _, _, d in stored)
         if same and intact:
             try:
@@ -491,25 +509,16 @@ class Learner:
 
     # ------------------------------------------------------------ learning
     def retime(self, q: np.ndarray) -> np.ndarray:
-        """Re-time trajectories ``(M, T, n)`` as demonstrations are resampled.
-
-        Equal tool-path spacing with ``resample: arc_length``; unchanged with
-        ``resample: time``.
-        """
-        if self.config.resample != 'arc_length':
-            return q
-        tool = self.robot.frame_poses(q, [self.robot.tool_frame]).positions[:, :, 0]
-        return reparametrize_arc_length(q, tool)
+        """Re-time trajectories as demonstrations are resampled (:meth:`TaskModel.retime`)."""
+        return self.task.retime(q)
 
     def condition(self, q: np.ndarray) -> np.ndarray:
         """Smooth (and clip to limits) as every row of a choice set is."""
-        return condition(q, self.config.smooth, self.robot.lower, self.robot.upper)
+        return self.task.condition(q)
 
     def reward_gradient(self, q: np.ndarray, weights: np.ndarray):
         """Scaled rewards ``(k,)`` and their gradients ``(k, T, n)`` for ``weights (k, d)``."""
-        vals, grads = self.features.values_and_gradients(q)
-        w = np.asarray(weights, dtype=np.float64) / self.features.scales
-        return np.einsum('kd,kd->k', w, vals), np.einsum('kd,kdtn->ktn', w, grads)
+        return self.task.reward_gradient(q, weights)
 
     def _weight_source(self, k: int, rng: np.random.Generator) -> np.ndarray:
         """Weights for near-optimal alternatives: half from the prior, half from the posterior."""
@@ -533,9 +542,7 @@ class Learner:
         the posterior as it stands before this demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        alts, groups = self.task_alternatives(q_demo[0], q_demo[-1], rng, demo=q_demo)
-        allq = self.condition(np.concatenate([q_demo[None], alts]))
-        return allq, self.features(allq), np.concatenate([[-1], groups])
+        return self.task.choice_set(q_demo, rng, weights=self._weight_source)
 
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
                           demo: Optional[np.ndarray] = None, m: Optional[int] = None):
@@ -547,9 +554,8 @@ class Learner:
         is demonstrated (:mod:`pref_learner.guidance`, ``demo=None``); ``m``
         overrides the number of alternatives.
         """
-        alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m,
+        return self.task.task_alternatives(start, goal, rng, demo=demo, m=m,
                                            weights=self._weight_source)
-        return self.retime(alts), groups
 
     def process(self, demo: Demonstration) -> StepResult:
         """Learn from one accepted demonstration (stored first, then the posterior).
@@ -656,6 +662,9 @@ class Learner:
                 'summaries': {m: s.to_dict() for m, s in res.summaries.items()}}
 
     def _save_posteriors(self):
+        if not self._record_stored:
+            self.store.write_task_record(self.record.to_json())
+            self._record_stored = True
         for m, p in self.posteriors.items():
             p.save(self.store.posterior_path(m))
         self.store.write_manifest({
@@ -665,6 +674,7 @@ class Learner:
             'option_models': list(self.option_labels()),
             'n_demonstrations': len(self._demos), 'version': __version__,
             'config': {k: v for k, v in asdict(self.config).items() if k != 'urdf'},
+            'task_record': self.store.task_record_path.name,
             'features': self.features.describe()})
 
     # ------------------------------------------------------------ editing
@@ -697,6 +707,7 @@ class Learner:
     def reset(self) -> Optional[Path]:
         """Forget everything learned; the state directory is archived, not deleted."""
         where = self.store.archive() if self.store is not None else None
+        self._record_stored = False
         self._demos = []
         self.rejections = []
         self.recorder.cancel()
@@ -705,3 +716,28 @@ class Learner:
 
     def summaries(self) -> Dict[str, Summary]:
         return {m: p.summary() for m, p in self.posteriors.items()}
+
+
+def stored_session(state_dir, **over) -> Tuple[LearnerConfig, Optional[TaskRecord]]:
+    """Return a state directory's settings (changed by ``over``) and its task record.
+
+    The record is None for a directory written before records were stored;
+    its settings then name the files as the session did, and its stored
+    scales are the manifest's.
+    """
+    store = StateStore(state_dir)
+    manifest = store.read_manifest()
+    if manifest is None:
+        raise ValueError(f'{state_dir} has no manifest.json')
+    known = {f.name for f in fields(LearnerConfig)}
+    cfg = {k: v for k, v in (manifest.get('config') or {}).items() if k in known}
+    cfg.pop('state_dir', None)
+    text = store.read_task_record()
+    record = TaskRecord.from_json(text) if text is not None else None
+    if record is not None:
+        cfg['urdf'] = record.urdf
+    cfg.update(over)
+    for k in ('joint_names', 'spreads'):
+        if k in cfg:
+            cfg[k] = tuple(cfg[k])
+    return LearnerConfig(**cfg), record

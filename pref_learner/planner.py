@@ -594,8 +594,9 @@ def plan_benchmark(quick: bool = False, out_dir=None) -> dict:
     """
     from pathlib import Path
 
-    from .learner import Learner, LearnerConfig
-    L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
+    from .learner import LearnerConfig
+    from .task import TaskModel
+    L = TaskModel.from_config(LearnerConfig(n_alternatives=1))
     planner = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
     tasks = L.tasks()
     rng = np.random.default_rng(0)

@@ -65,23 +65,30 @@ def min_jerk(s: np.ndarray) -> np.ndarray:
 
 
 class SimulatedTeacher:
-    """Produces joint-state streams of demonstrations for a learner's robot and features."""
+    """Produces joint-state streams of demonstrations for a task model's robot and features.
 
-    def __init__(self, learner, true_weights: Sequence[float], config: TeacherConfig,
+    ``task``: a :class:`~pref_learner.task.TaskModel` (or a learner, whose
+    task model is used): the person chooses by its features and scales, on
+    its robot, whatever robot that is.
+    """
+
+    def __init__(self, task, true_weights: Sequence[float], config: TeacherConfig,
                  tasks=None):
+        task = getattr(task, 'task', task)
         w = np.asarray(true_weights, dtype=np.float64)
-        if w.shape != (learner.features.d,) or not np.linalg.norm(w) > 0:
-            raise ValueError(f'true weights must be {learner.features.d} numbers, not all 0')
+        if w.shape != (task.features.d,) or not np.linalg.norm(w) > 0:
+            raise ValueError(f'true weights must be {task.features.d} numbers, not all 0')
         self.theta = w / np.linalg.norm(w)
-        self.learner = learner
+        self.task = task
+        self.learner = task                 # the name earlier callers used
         self.config = config
-        self.tasks = tasks if tasks is not None else learner.tasks()
+        self.tasks = tasks if tasks is not None else task.tasks()
         mix = {'smooth': 1.0} if config.options == 'smooth' else {'near_optimal': 1.0}
-        T = config.n_waypoints or learner.config.n_waypoints
+        T = config.n_waypoints or task.n_waypoints
         self.sampler = AlternativeSampler(
-            learner.robot, T, SamplerConfig(config.n_candidates, mix, (config.spread,),
-                                            ascent_steps=config.ascent_steps),
-            n_features=learner.features.d, ascent=learner.reward_gradient)
+            task.robot, T, SamplerConfig(config.n_candidates, mix, (config.spread,),
+                                         ascent_steps=config.ascent_steps),
+            n_features=task.features.d, ascent=task.reward_gradient)
 
     def choose(self, index: int, task=None) -> Tuple[str, np.ndarray]:
         """Pick the path (T, n) the person demonstrates as number ``index``.
@@ -93,11 +100,11 @@ class SimulatedTeacher:
         rng = np.random.default_rng(np.random.SeedSequence([c.seed, index]))
         name, start, goal = self.tasks[index % len(self.tasks)] if task is None else task
         cand, _ = self.sampler.sample(start, goal, rng)
-        cand = self.learner.retime(np.concatenate([self.sampler.straight(start, goal)[None],
-                                                   cand]))
+        cand = self.task.retime(np.concatenate([self.sampler.straight(start, goal)[None],
+                                                cand]))
         # the person moves along a raw candidate; they choose by its features as the
         # learner perceives them (after the shared conditioning)
-        feats = self.learner.features(self.learner.condition(cand))
+        feats = self.task.features(self.task.condition(cand))
         p = choice_probabilities(feats, self.theta, c.beta, c.model)
         return name, cand[int(rng.choice(len(cand), p=p))]
 
@@ -118,7 +125,7 @@ class SimulatedTeacher:
         move = path[i] * (1 - f) + path[i + 1] * f
         q = np.vstack([np.repeat(path[:1], n_rest, 0), move, np.repeat(path[-1:], n_rest, 0)])
         q = q + rng.normal(0.0, c.noise, q.shape)
-        q = np.clip(q, self.learner.robot.lower, self.learner.robot.upper)
+        q = np.clip(q, self.task.robot.lower, self.task.robot.upper)
         stamps = t0_ns + (np.arange(len(q)) * dt * 1e9).astype(np.int64)
         return stamps, q
 
@@ -152,7 +159,7 @@ class SimulatedTeacher:
         renames the joints (a bag of another robot).
         """
         from .bags import BagWriter
-        names = list(joint_names or self.learner.robot.joint_names)
+        names = list(joint_names or self.task.robot.joint_names)
         t = t0_ns
         with BagWriter(path) as w:
             for k in range(n):
@@ -173,22 +180,23 @@ def write_simulated_session(path, truth: Sequence[float], n_demonstrations: int,
     ``kind`` ``state_dir``: the demonstrations are taught to a learner that only
     records them (one particle, one alternative: the stored posterior is not
     meant to be used); ``bag``: the joint states and teaching signals, as a node
-    records them. ``learner``: a learner giving robot, features and their scales
-    (the person chooses by them; default: the shipped arm and scenario).
+    records them. ``learner``: a task model (or a learner) giving robot,
+    features and their scales (the person chooses by them; default: the
+    shipped arm and scenario).
     """
     from .learner import Learner, LearnerConfig
-    rec_cfg = dict(model='less', n_particles=1, n_alternatives=1, spreads=(0.08,))
+    from .task import TaskModel
+    rec_set = dict(model='less', n_alternatives=1, spreads=(0.08,))
+    if learner is None:
+        task = TaskModel.from_config(LearnerConfig(**rec_set))
+    else:
+        base = getattr(learner, 'task', learner)
+        task = TaskModel(base.record.with_settings(**rec_set), base.robot, base.features)
     if kind == 'state_dir':
-        if learner is not None:
-            rec_cfg.update(urdf=learner.config.urdf, features=learner.config.features,
-                           joint_names=learner.config.joint_names,
-                           tool_frame=learner.config.tool_frame)
-        rec = Learner(LearnerConfig(state_dir=str(path), **rec_cfg),
-                      scales=None if learner is None else learner.features.scales)
-        SimulatedTeacher(rec, truth, person).feed_session(rec, n_demonstrations)
+        rec = Learner(LearnerConfig(state_dir=str(path), n_particles=1), task=task)
+        SimulatedTeacher(task, truth, person).feed_session(rec, n_demonstrations)
         rec.save()
         return Path(path)
     if kind == 'bag':
-        base = learner if learner is not None else Learner(LearnerConfig(**rec_cfg))
-        return SimulatedTeacher(base, truth, person).write_bag(path, n_demonstrations)
+        return SimulatedTeacher(task, truth, person).write_bag(path, n_demonstrations)
     raise ValueError(f'kind {kind!r} is unknown; allowed: state_dir, bag')

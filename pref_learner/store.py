@@ -5,6 +5,8 @@
 Layout of a state directory::
 
     manifest.json                 schema version, configuration hash, model(s), seeds
+    task.json                     the task record: URDF and feature texts, joints, tool
+                                  frame, fixed scales, settings (pref_learner.task)
     demos/demo_000001.npz         one file per accepted demonstration (t, q, names, seed);
                                   the number is the demonstration's seed index
     posterior_<model>.npz/.json   the latest posterior per model
@@ -208,6 +210,22 @@ class StateStore:
         m['schema_version'] = SCHEMA_VERSION
         m['written_at'] = time.time()
         atomic_write_bytes(self.manifest_path, json.dumps(m, indent=1, sort_keys=True).encode())
+
+    # ------------------------------------------------------------ task record
+    @property
+    def task_record_path(self) -> Path:
+        return self.root / 'task.json'
+
+    def read_task_record(self) -> Optional[str]:
+        """Return the stored task record's JSON text (None when there is none)."""
+        try:
+            return self.task_record_path.read_text()
+        except FileNotFoundError:
+            return None
+
+    def write_task_record(self, text: str) -> None:
+        """Store the task record's JSON text (atomically)."""
+        atomic_write_bytes(self.task_record_path, text.encode())
 
     # ------------------------------------------------------------ demonstrations
     @property

@@ -155,9 +155,10 @@ def _random_truths(n, d, seed):
 
 def study_arm_people(n_truths=8, n_demos=10, n_seeds=3, n_particles=2000, n_alternatives=300,
                      with_regret=True, seed=0) -> dict:
-    from .learner import Learner, LearnerConfig
+    from .learner import LearnerConfig
     from .planner import PlannerConfig, TrajectoryPlanner
-    base = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
+    from .task import TaskModel
+    base = TaskModel.from_config(LearnerConfig(n_alternatives=1))
     planner = TrajectoryPlanner(base.features, PlannerConfig(restarts=0, max_iter=100)) \
         if with_regret else None
     truths = _random_truths(n_truths, base.features.d, seed)
@@ -286,8 +287,9 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
     Sessions run as independent tasks in ``n_jobs`` local processes or on the Dask
     scheduler at ``scheduler`` (:func:`pref_learner.study.run_tasks`), with equal results.
     """
-    from .learner import Learner, LearnerConfig
-    d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
+    from .learner import LearnerConfig
+    from .task import TaskModel
+    d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
     out = {}
     for cond in conditions:
@@ -323,10 +325,11 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
     """
     from scipy import stats
 
-    from .learner import Learner, LearnerConfig
+    from .learner import LearnerConfig
     from .posterior import ParticlePosterior, PosteriorConfig, sample_uniform_sphere
-    L = Learner(LearnerConfig(n_particles=1, n_alternatives=60, spreads=(0.08,),
-                              mix_near_optimal=0.0, mix_smooth=1.0))
+    from .task import TaskModel
+    L = TaskModel.from_config(LearnerConfig(n_alternatives=60, spreads=(0.08,),
+                                            mix_near_optimal=0.0, mix_smooth=1.0))
     rng = np.random.default_rng([seed, 31])
     sets = []
     for k, (_, start, goal) in enumerate(L.tasks()):
@@ -425,8 +428,9 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
     demonstrations to reach cosine 0.9 (median; never reached counts as
     ``n_demos``), cosine after 5 and after ``n_demos``.
     """
-    from .learner import Learner, LearnerConfig
-    d = Learner(LearnerConfig(n_particles=1, n_alternatives=1)).features.d
+    from .learner import LearnerConfig
+    from .task import TaskModel
+    d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
     jobs = []
     for i, t in enumerate(truths):

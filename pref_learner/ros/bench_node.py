@@ -41,7 +41,8 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
     from ..features import load_scenario
-    from ..learner import Learner, LearnerConfig
+    from ..learner import LearnerConfig
+    from ..task import TaskModel
     from .common import publish_paced
     from ..sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
@@ -55,7 +56,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                             env=env)
     latched = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.TRANSIENT_LOCAL)
-    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+    teacher = SimulatedTeacher(TaskModel.from_config(LearnerConfig(n_alternatives=1)),
                                load_scenario()['example_preference'],
                                TeacherConfig())
     names = list(teacher.learner.robot.joint_names)
