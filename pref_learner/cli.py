@@ -186,7 +186,7 @@ def cmd_watch(args) -> int:
 # ---------------------------------------------------------------- learn
 def cmd_learn(args) -> int:
     from .bags import BagWriter, estimate_arrays, read_stream
-    from .learner import Learner, LearnerConfig, StepResult
+    from .learner import Learner, StepResult
     bag = Path(args.bag)
     if not bag.exists():
         raise CliError(f'bag {bag} does not exist')
@@ -194,9 +194,7 @@ def cmd_learn(args) -> int:
     if out.exists() and any(out.iterdir()):
         raise CliError(f'output directory {out} is not empty')
     try:
-        cfg = LearnerConfig(model=args.model, seed=args.seed, n_particles=args.particles,
-                            n_alternatives=args.alternatives, state_dir=str(out / 'state'),
-                            **_beta_config(args))
+        cfg, node_only = session_config(args, state_dir=str(out / 'state'))
     except ValueError as exc:
         raise CliError(str(exc)) from None
     events = list(read_stream(bag))
@@ -205,6 +203,7 @@ def cmd_learn(args) -> int:
     if not any(e.kind == 'joint_states' for e in events):
         raise CliError(f'bag {bag} has no joint states')
     L = Learner(cfg)
+    L.recorder.set_max_skew(float(node_only.get('max_stamp_skew', 0.0)))
     w = BagWriter(out / 'estimates')
     n_ok = 0
     try:
@@ -286,9 +285,8 @@ def _state_from(src: Path, tmp: Path, args) -> Path:
     if (src / 'manifest.json').exists():
         return src
     if (src / 'metadata.yaml').exists():
-        ns = argparse.Namespace(bag=str(src), out=str(tmp), model=args.model, seed=args.seed,
-                                particles=args.particles, alternatives=args.alternatives,
-                                beta=args.beta)
+        ns = argparse.Namespace(**vars(args))
+        ns.bag, ns.out = str(src), str(tmp)
         cmd_learn(ns)
         return tmp / 'state'
     raise CliError(f'{src} is neither a state directory (manifest.json) nor a rosbag2 bag '
@@ -329,16 +327,57 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f'{self.prog}: {message} (see --help)\n')
 
 
-def _learning_options(p, choices=None) -> None:
-    """Add the settings that decide what is learned (demo, learn and report)."""
-    p.add_argument('--model', default='both', choices=choices,
-                   help='boltzmann, less or both (default both)')
-    p.add_argument('--particles', type=int, default=4000)
-    p.add_argument('--alternatives', type=int, default=500)
+def _learning_options(p, choices=None, session: bool = False) -> None:
+    """Add the settings that decide what is learned (demo, learn and report).
+
+    ``session``: also the node's parameters file and the robot options, and no
+    defaults here (:func:`session_config` fills them).
+    """
+    d = (lambda v: None) if session else (lambda v: v)    # noqa: E731
+    p.add_argument('--model', default=d('both'), choices=choices,
+                   help='boltzmann, less or both (default both; with --params-file the '
+                   "file's, else the node's default less)")
+    p.add_argument('--particles', type=int, default=d(4000), help='(default 4000)')
+    p.add_argument('--alternatives', type=int, default=d(500), help='(default 500)')
     p.add_argument('--beta', type=float, default=None,
                    help='fix the rationality at this value (default: inferred, log-uniform '
                    'prior on 0.5-50)')
-    p.add_argument('--seed', type=int, default=0)
+    p.add_argument('--seed', type=int, default=d(0), help='(default 0)')
+    if session:
+        p.add_argument('--params-file', metavar='PARAMS.yaml',
+                       help="the learner node's ROS 2 parameters file (pref_learner: "
+                       'ros__parameters:); its settings apply, options given here win')
+        p.add_argument('--urdf', help='URDF file of the robot (default: the shipped bench arm)')
+        p.add_argument('--features', help='feature YAML (default: the shipped scenario)')
+        p.add_argument('--joints', nargs='+', metavar='JOINT',
+                       help='chain joints in order (default: root to the tool frame)')
+        p.add_argument('--tool-frame', help='frame the features read by default (tool_tip)')
+
+
+def session_config(args, state_dir: str = ''):
+    """Return the LearnerConfig of ``learn``'s options and the node-only parameters.
+
+    With ``--params-file`` the node's parameters file gives every setting it
+    names and the node's defaults the rest (so a live session is learned
+    again as the node learned it); without it, the command's defaults apply.
+    Options given on the command line come last.
+    """
+    from .learner import LearnerConfig, read_parameters_file
+    settings, node_only = {}, {}
+    if getattr(args, 'params_file', None):
+        settings, node_only = read_parameters_file(args.params_file)
+    else:
+        settings = {'model': 'both'}
+    given = {'model': args.model, 'n_particles': args.particles,
+             'n_alternatives': args.alternatives, 'seed': args.seed,
+             'urdf': getattr(args, 'urdf', None), 'features': getattr(args, 'features', None),
+             'tool_frame': getattr(args, 'tool_frame', None)}
+    settings.update({k: v for k, v in given.items() if v is not None})
+    if getattr(args, 'joints', None):
+        settings['joint_names'] = tuple(args.joints)
+    settings.update(_beta_config(args))
+    settings['state_dir'] = state_dir
+    return LearnerConfig(**settings), node_only
 
 
 def _beta_config(args) -> dict:
@@ -414,7 +453,7 @@ def build_parser() -> argparse.ArgumentParser:
     lrn = sub.add_parser('learn', help='learn offline from the joint states of a rosbag2 bag')
     lrn.add_argument('bag')
     lrn.add_argument('--out', required=True, help='new directory for state and estimates bag')
-    _learning_options(lrn)
+    _learning_options(lrn, session=True)
     lrn.set_defaults(func=cmd_learn)
 
     v = sub.add_parser('validate', help='the validation studies of the two choice models')
@@ -438,7 +477,7 @@ def build_parser() -> argparse.ArgumentParser:
     r = sub.add_parser('report', help='HTML report of a state directory or a bag')
     r.add_argument('source', help='state directory, or a bag to learn from first')
     r.add_argument('--out', required=True, help='directory for report.html and PNGs')
-    _learning_options(r)
+    _learning_options(r, session=True)
     _feature_module_option(r)
     r.set_defaults(func=cmd_report)
 

@@ -741,3 +741,60 @@ def stored_session(state_dir, **over) -> Tuple[LearnerConfig, Optional[TaskRecor
         if k in cfg:
             cfg[k] = tuple(cfg[k])
     return LearnerConfig(**cfg), record
+
+
+#: parameters of the learner node that are not learner settings
+NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feature_modules',
+             'use_sim_time', 'qos_overrides', 'start_type_description_service',
+             'robot_description_topic', 'robot_description_timeout', 'max_stamp_skew')
+
+
+def read_parameters_file(path, node: str = 'pref_learner') -> Tuple[dict, dict]:
+    """Read the learner settings of a ROS 2 parameters file (``node: ros__parameters:``).
+
+    Sections for ``/**`` and for the node (``node``, ``/node`` or a namespaced
+    ``/ns/node``) apply in that order. Returns ``(settings, node_only)``:
+    LearnerConfig fields (relative ``urdf`` and ``features`` paths resolved
+    against the file's directory, else the current one) and the node-only
+    values (``NODE_ONLY``). Unknown keys are errors naming the file.
+    """
+    import yaml
+    path = Path(path)
+    try:
+        doc = yaml.safe_load(path.read_text()) or {}
+    except OSError as exc:
+        raise ValueError(f'parameters file {path} cannot be read: {exc.strerror}') from None
+    except yaml.YAMLError as exc:
+        raise ValueError(f'parameters file {path} is not valid YAML: {exc}') from None
+    if not isinstance(doc, dict):
+        raise ValueError(f'parameters file {path} must hold a mapping')
+    sections = [(k, v['ros__parameters']) for k, v in doc.items()
+                if isinstance(v, dict) and isinstance(v.get('ros__parameters'), dict)]
+    if not sections:
+        raise ValueError(f'parameters file {path} has no "<node>: ros__parameters:" section')
+    mine = [p for k, p in sections if str(k).rstrip('/').split('/')[-1] == node]
+    params = {}
+    for p in [p for k, p in sections if k == '/**'] + (mine or [sections[0][1]]):
+        params.update(p)
+    known = {f.name for f in fields(LearnerConfig)}
+    settings, node_only = {}, {}
+    for k, v in params.items():
+        if k in NODE_ONLY:
+            node_only[k] = v
+        elif k in known:
+            settings[k] = v
+        else:
+            raise ValueError(f'parameters file {path}: {k!r} is not a parameter of the learner '
+                             f'node; allowed: {sorted(known | set(NODE_ONLY))}')
+    settings.pop('state_dir', None)
+    for k in ('joint_names', 'spreads'):
+        if k in settings:
+            settings[k] = tuple(x for x in settings[k] if x != '')
+    for key in ('urdf', 'features'):
+        v = str(settings.get(key) or '')
+        if v and '<robot' not in v and not Path(v).is_absolute():
+            for base in (path.parent, Path.cwd()):
+                if (base / v).exists():
+                    settings[key] = str((base / v).resolve())
+                    break
+    return settings, node_only

@@ -63,7 +63,8 @@ QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THREADS': '1'}
 #: settings of the learner node that mean nothing offline (ignored, with a note)
 NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feature_modules',
-             'use_sim_time', 'qos_overrides', 'start_type_description_service')
+             'use_sim_time', 'qos_overrides', 'start_type_description_service',
+             'robot_description_topic', 'robot_description_timeout')
 #: the parameters file's ``study:`` block and its defaults
 STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True}
 

@@ -280,7 +280,7 @@ def test_time_parametrization_respects_limits():
 
 def test_planner_node_over_dds(capfd):
     import rclpy
-    from std_msgs.msg import Float64MultiArray
+    from std_msgs.msg import Float64MultiArray, String
     from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
     from visualization_msgs.msg import MarkerArray
 
@@ -311,15 +311,23 @@ def test_planner_node_over_dds(capfd):
                 for p in points:
                     m.points.append(JointTrajectoryPoint(positions=[float(x) for x in p]))
                 req.publish(m)
-            request([s, g])            # no weights yet: refused, node keeps running
+            request([s, g])            # no task record yet: refused, node keeps running
             assert spin_until(ex, lambda: node.counters['bad_request'] == 1, 10)
+            assert 'no task record' in node.last_warning
+            # the session's task model, latched as the learner node publishes it
+            rpub = client.create_publisher(String, '/pref_learner/task_record', LATCHED)
+            rpub.publish(String(data=L.record.to_json()))
+            assert spin_until(ex, lambda: node.task is not None, 10)
+            np.testing.assert_array_equal(node.planner.features.scales, L.features.scales)
+            request([s, g])            # no weights yet: refused
+            assert spin_until(ex, lambda: node.counters['bad_request'] == 2, 10)
             wpub.publish(Float64MultiArray(data=[1.0, 0.0, 0.0, 0.0, 0.0, 0.0]))
             assert spin_until(ex, lambda: node.weights is not None, 10)
             request([s])               # one point
             bad = s.copy()
             bad[1] = 3.0
             request([bad, g])          # outside limits
-            assert spin_until(ex, lambda: node.counters['bad_request'] == 3, 10)
+            assert spin_until(ex, lambda: node.counters['bad_request'] == 4, 10)
             assert 'joint_2 = 3' in node.last_warning
             request([s, g])
             assert spin_until(ex, lambda: len(got) == 1 and markers, 30)

@@ -94,8 +94,9 @@ def test_teacher_publishes_only_on_its_private_topic():
             listener.create_subscription(
                 JointState, topic, lambda m, k=key: got.__setitem__(k, got[k] + 1), 100)
         ex.add_node(listener)
+        # standalone (no learner to take the task record from): the shipped arm
         params = {'n_demonstrations': 1, 'duration': 0.5, 'rate': 100.0, 'pause': 0.1,
-                  'start_delay': 1.0}
+                  'start_delay': 1.0, 'task_record_topic': ''}
         node = TeacherNode(context=ctx, parameter_overrides=[
             Parameter(k, value=v) for k, v in params.items()])
         ex.add_node(node)

@@ -55,6 +55,10 @@ from .common import QueueWorker
 ESTIMATE_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
                           durability=DurabilityPolicy.TRANSIENT_LOCAL,
                           history=HistoryPolicy.KEEP_LAST)
+# the task record and robot_description: latched, the last one only
+TASK_RECORD_QOS = QoSProfile(depth=1, reliability=ReliabilityPolicy.RELIABLE,
+                             durability=DurabilityPolicy.TRANSIENT_LOCAL,
+                             history=HistoryPolicy.KEEP_LAST)
 # A deep keep-last history (1 s at 1 kHz) absorbs the moments when the worker thread
 # holds the interpreter; with 100 the 1 kHz ingest benchmark lost ~1e-4 of samples.
 SENSOR_QOS = QoSProfile(depth=1000, reliability=ReliabilityPolicy.BEST_EFFORT,
@@ -72,8 +76,13 @@ _SAMPLE_COUNTERS = ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
 
 # name -> (description, range or None, read_only)
 _PARAMS = {
-    'urdf': ('URDF text (as robot_description) or a file path; empty: shipped bench arm',
-             None, True),
+    'urdf': ('URDF text (as robot_description) or a file path; empty: robot_description_topic '
+             'if set, else the shipped bench arm', None, True),
+    'robot_description_topic': ('when urdf is empty, read the URDF from this latched '
+                                'std_msgs/String topic (e.g. /robot_description); empty: off',
+                                None, True),
+    'robot_description_timeout': ('longest wait for robot_description_topic at start-up, s',
+                                  (0.1, 3600.0), True),
     'joint_names': ('chain joints in order; empty: root to tool_frame', None, True),
     'tool_frame': ('frame the features read by default', None, True),
     'features': ('feature-set YAML path; empty: shipped bench scenario', None, True),
@@ -222,7 +231,8 @@ class LearnerNode(Node):
         self.add_on_set_parameters_callback(self._on_set)
         self.add_post_set_parameters_callback(self._after_set)
         defaults = LearnerConfig()
-        extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0}
+        extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0,
+                 'robot_description_topic': '', 'robot_description_timeout': 30.0}
         for name, (desc, rng, ro) in _PARAMS.items():
             default = extra[name] if name in extra else getattr(defaults, name)
             if name == 'joint_names':
@@ -251,7 +261,28 @@ class LearnerNode(Node):
                 elif f.name == 'spreads':
                     v = tuple(float(x) for x in v)
                 vals[f.name] = v
+        if not vals.get('urdf'):
+            vals['urdf'] = self._robot_description()
         return LearnerConfig(**vals)
+
+    def _robot_description(self) -> str:
+        """Return the URDF of ``robot_description_topic`` ('' when the parameter is empty).
+
+        The topic is latched (transient local), as robot_state_publisher offers it.
+        """
+        topic = self.get_parameter('robot_description_topic').value
+        if not topic:
+            return ''
+        from rclpy.wait_for_message import wait_for_message
+        from std_msgs.msg import String
+        wait = self.get_parameter('robot_description_timeout').value
+        self.get_logger().info(f'waiting up to {wait:g} s for the URDF on {topic}')
+        ok, msg = wait_for_message(String, self, topic, qos_profile=TASK_RECORD_QOS,
+                                   time_to_wait=wait)
+        if not ok or not msg.data.strip():
+            raise ValueError(f'no URDF on {topic} within {wait:g} s (robot_description_topic); '
+                             'set urdf, or start the publisher of the robot description')
+        return msg.data
 
     def _on_set(self, params):
         if not hasattr(self, 'config'):
@@ -308,6 +339,11 @@ class LearnerNode(Node):
         self._gain_pub = self.create_publisher(Float64, '~/next_task_gain', ESTIMATE_QOS)
         self._next_markers_pub = self.create_publisher(MarkerArray, '~/next_task_markers',
                                                        ESTIMATE_QOS)
+        # the task model of this session (robot, features, scales): the planner node and
+        # the simulated teacher build theirs from it
+        from std_msgs.msg import String
+        self._record_pub = self.create_publisher(String, '~/task_record', TASK_RECORD_QOS)
+        self._record_pub.publish(String(data=self.learner.record.to_json()))
 
     def _start_services(self):
         """Serve the Trigger services from a private node spun on its own thread.

@@ -2,6 +2,11 @@
 # SPDX-License-Identifier: Apache-2.0
 """ROS 2 planner node: turns the learner's current estimate into proposed trajectories.
 
+The robot, the features and their scales come from the learner's latched task
+record (``task_record_topic``, :mod:`pref_learner.task`), so a plan scores
+trajectories exactly as the weights were learned; until one arrives, requests
+are refused.
+
 ``~/trajectory`` is an unchecked proposal timed to the URDF velocity limits: never
 wire it to a controller without the controller stack's own checks. Every plan is
 logged with its convergence (iterations, projected-gradient norm, cost, time); a
@@ -18,11 +23,10 @@ from builtin_interfaces.msg import Duration
 from geometry_msgs.msg import Point
 from rclpy.node import Node
 from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
-from std_msgs.msg import Float64MultiArray
+from std_msgs.msg import Float64MultiArray, String
 from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
-from ..learner import Learner, LearnerConfig
 from ..planner import PlannerConfig, TrajectoryPlanner, cap_tool_speed, time_parametrize
 from ..safety import CAUTION, PLANNER_WARNING
 from .common import QueueWorker, declare_feature_modules, declare_read_only
@@ -50,8 +54,8 @@ class PlannerNode(Node):
             'velocity_scale': (0.5, 'fraction of the URDF velocity limits used for timing'),
             'max_tool_speed': (0.25, 'cap on the tool frame\'s Cartesian speed for timing, m/s '
                                '(0: no cap); shapes proposals only, not a safety function'),
-            'features': ('', 'feature YAML (as the learner)'),
-            'calibration_seed': (0, 'seed of the feature-scale calibration (as the learner)'),
+            'task_record_topic': ('/pref_learner/task_record', 'the learner\'s latched task '
+                                  'record: robot, features and their scales'),
             'seed': (0, 'seed of the restarts'),
         }
         declare_read_only(self, params)
@@ -59,18 +63,19 @@ class PlannerNode(Node):
         self.get_logger().warning(CAUTION)
         self.get_logger().warning(PLANNER_WARNING)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
-        L = Learner(LearnerConfig(features=g('features'), n_particles=1, n_alternatives=1,
-                                  calibration_seed=g('calibration_seed')))
-        self.robot = L.robot
-        self.planner = TrajectoryPlanner(L.features, PlannerConfig(
+        self.planner_config = PlannerConfig(
             n_waypoints=g('n_waypoints'), smoothness=g('smoothness'), restarts=g('restarts'),
-            uncertainty_objective=g('uncertainty_objective'), alpha=g('alpha')))
+            uncertainty_objective=g('uncertainty_objective'), alpha=g('alpha'))
+        self.task = None               # TaskModel of the learner's record, once received
+        self.robot = None
+        self.planner = None
         self.rng = np.random.default_rng(g('seed'))
         self.weights = None
         self.particles = None
         self.counters = collections.Counter()
         self.last_warning = ''
         self.last_plan = None          # PlanResult of the last published trajectory
+        self.create_subscription(String, g('task_record_topic'), self._on_record, LATCHED)
         self.create_subscription(Float64MultiArray, g('weights_topic'), self._on_weights, LATCHED)
         self.create_subscription(Float64MultiArray, g('particles_topic'), self._on_particles,
                                  LATCHED)
@@ -84,6 +89,18 @@ class PlannerNode(Node):
         self.counters[key] += 1
         self.last_warning = text
         self.get_logger().warning(text)
+
+    def _on_record(self, msg):
+        from ..task import TaskModel, TaskRecord
+        try:
+            task = TaskModel.from_record(TaskRecord.from_json(msg.data))
+        except ValueError as exc:
+            self._warn('bad_task_record', f'task record refused: {exc}')
+            return
+        planner = TrajectoryPlanner(task.features, self.planner_config)
+        self.task, self.robot, self.planner = task, task.robot, planner
+        self.get_logger().info(f'task model received: {len(task.robot.joint_names)} joints, '
+                               f'features {list(task.names)}')
 
     def _on_weights(self, msg):
         self.weights = np.array(msg.data)
@@ -104,14 +121,18 @@ class PlannerNode(Node):
             self._warn('internal_error', f'{type(exc).__name__}: {exc}')
 
     def _plan(self, msg: JointTrajectory):
+        task, robot, planner = self.task, self.robot, self.planner
+        if task is None:
+            raise ValueError('no task record received yet on '
+                             f'{self.get_parameter("task_record_topic").value}')
         if len(msg.points) != 2:
             raise ValueError(f'a request needs exactly 2 points (start, goal), got '
                              f'{len(msg.points)}')
         names = list(msg.joint_names)
-        missing = [j for j in self.robot.joint_names if j not in names]
+        missing = [j for j in robot.joint_names if j not in names]
         if missing:
             raise ValueError(f'request lacks joints {missing}')
-        idx = [names.index(j) for j in self.robot.joint_names]
+        idx = [names.index(j) for j in robot.joint_names]
         ends = []
         for p in msg.points:
             if len(p.positions) != len(names):
@@ -120,24 +141,26 @@ class PlannerNode(Node):
             ends.append(np.array([p.positions[i] for i in idx], dtype=np.float64))
         if self.weights is None:
             raise ValueError('no weights received yet')
-        d = self.planner.features.d
-        if self.planner.config.uncertainty_objective == 'cvar' and self.particles is not None:
+        d = planner.features.d
+        if len(self.weights) != d:
+            raise ValueError(f'{len(self.weights)} weights for the task record\'s {d} features')
+        if planner.config.uncertainty_objective == 'cvar' and self.particles is not None:
             parts = self.particles
             theta = parts[:, :d]
             lw = parts[:, -1]
             pw = np.exp(lw - lw.max())
-            res = self.planner.plan(theta, ends[0], ends[1], self.rng, particle_weights=pw)
+            res = planner.plan(theta, ends[0], ends[1], self.rng, particle_weights=pw)
         else:
-            res = self.planner.plan(self.weights, ends[0], ends[1], self.rng)
-        vmax = self.robot.velocity_limit * self.get_parameter('velocity_scale').value
-        amax = np.full(self.robot.n, self.get_parameter('max_acceleration').value)
+            res = planner.plan(self.weights, ends[0], ends[1], self.rng)
+        vmax = robot.velocity_limit * self.get_parameter('velocity_scale').value
+        amax = np.full(robot.n, self.get_parameter('max_acceleration').value)
         t = time_parametrize(res.q, vmax, amax)
-        tool = self.robot.frame_poses(res.q, [self.robot.tool_frame]).positions[:, 0]
+        tool = robot.frame_poses(res.q, [robot.tool_frame]).positions[:, 0]
         if self.get_parameter('max_tool_speed').value > 0:
             t = cap_tool_speed(t, tool, self.get_parameter('max_tool_speed').value)
         out = JointTrajectory()
         out.header.stamp = self.get_clock().now().to_msg()
-        out.joint_names = list(self.robot.joint_names)
+        out.joint_names = list(robot.joint_names)
         for ti, qi in zip(t, res.q):
             p = JointTrajectoryPoint()
             p.positions = qi.tolist()
@@ -151,7 +174,7 @@ class PlannerNode(Node):
             self._warn('plans_not_converged', f'{res.summary()} ({res.message}); published '
                        'anyway: the proposal is feasible but not locally optimal')
         mk = Marker()
-        mk.header.frame_id = self.robot.root_link
+        mk.header.frame_id = robot.root_link
         mk.ns = 'plan'
         mk.type = Marker.LINE_STRIP
         mk.scale.x = 0.01
