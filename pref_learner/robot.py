@@ -251,8 +251,16 @@ class RobotModel:
 
     def random_configurations(self, n: int, rng: np.random.Generator,
                               margin: float = 0.0) -> np.ndarray:
-        lo = np.where(np.isfinite(self.lower), self.lower + margin, -np.pi)
-        hi = np.where(np.isfinite(self.upper), self.upper - margin, np.pi)
+        """Draw ``n`` configurations uniformly, ``margin`` inside the limits.
+
+        On a joint shorter than four margins (a short prismatic axis) the margin
+        is a quarter of its range; continuous joints draw from [-pi, pi].
+        """
+        finite = np.isfinite(self.lower) & np.isfinite(self.upper)
+        span = np.where(finite, self.upper - self.lower, np.inf)
+        m = np.minimum(margin, 0.25 * span)
+        lo = np.where(finite, self.lower + m, -np.pi)
+        hi = np.where(finite, self.upper - m, np.pi)
         return rng.uniform(lo, hi, (n, self.n))
 
     def frame_id(self, name: str) -> int:
