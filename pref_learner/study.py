@@ -286,7 +286,7 @@ def load_settings(path) -> StudySettings:
     urdf = str(learner.get('urdf') or '')
     notes.append('URDF: ' + ('from the parameters file' if urdf else
                              'the shipped bench arm (the parameters file names none)')
-                 + '; state directories and bags do not store the URDF')
+                 + '; the study does not use a state directory\'s task record')
     feats = str(learner.get('features') or '')
     notes.append('features: ' + (f'from the parameters file ({feats})' if feats else
                                  'the shipped scenario (the parameters file names none)')
