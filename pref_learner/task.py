@@ -152,7 +152,8 @@ def _read_text(value: str, default: Path, what: str) -> str:
     try:
         return Path(value).read_text()
     except OSError as exc:
-        raise ValueError(f'{what} file {value} cannot be read: {exc.strerror}') from None
+        err = ValueError if what == 'URDF' else FeatureConfigError
+        raise err(f'{what} file {value} cannot be read: {exc.strerror}') from None
 
 
 def draft_record(config) -> Tuple[TaskRecord, RobotModel, FeatureSet]:
@@ -214,7 +215,10 @@ def _feature_set(text: str, robot: RobotModel, source: str = '') -> FeatureSet:
         doc = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         raise FeatureConfigError(f'feature file {source} is not valid YAML: {exc}') from None
-    fs = FeatureSet.from_yaml(doc, robot)
+    try:
+        fs = FeatureSet.from_yaml(doc, robot)
+    except FeatureConfigError as exc:          # name the file, not the parsed mapping
+        raise FeatureConfigError(str(exc).replace('<features>', source, 1)) from None
     return FeatureSet(robot, fs.specs, fs.scales, source)
 
 

@@ -66,9 +66,8 @@ class PlannerNode(Node):
         self.planner_config = PlannerConfig(
             n_waypoints=g('n_waypoints'), smoothness=g('smoothness'), restarts=g('restarts'),
             uncertainty_objective=g('uncertainty_objective'), alpha=g('alpha'))
-        self.task = None               # TaskModel of the learner's record, once received
-        self.robot = None
-        self.planner = None
+        # (TaskModel of the learner's record, its robot, the planner), set at once
+        self._model = (None, None, None)
         self.rng = np.random.default_rng(g('seed'))
         self.weights = None
         self.particles = None
@@ -98,9 +97,22 @@ class PlannerNode(Node):
             self._warn('bad_task_record', f'task record refused: {exc}')
             return
         planner = TrajectoryPlanner(task.features, self.planner_config)
-        self.task, self.robot, self.planner = task, task.robot, planner
+        self._model = (task, task.robot, planner)
         self.get_logger().info(f'task model received: {len(task.robot.joint_names)} joints, '
                                f'features {list(task.names)}')
+
+    @property
+    def task(self):
+        """The task model of the learner's record (None before it arrives)."""
+        return self._model[0]
+
+    @property
+    def robot(self):
+        return self._model[1]
+
+    @property
+    def planner(self):
+        return self._model[2]
 
     def _on_weights(self, msg):
         self.weights = np.array(msg.data)
@@ -121,7 +133,7 @@ class PlannerNode(Node):
             self._warn('internal_error', f'{type(exc).__name__}: {exc}')
 
     def _plan(self, msg: JointTrajectory):
-        task, robot, planner = self.task, self.robot, self.planner
+        task, robot, planner = self._model
         if task is None:
             raise ValueError('no task record received yet on '
                              f'{self.get_parameter("task_record_topic").value}')
