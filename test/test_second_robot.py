@@ -134,3 +134,28 @@ def test_whole_loop_on_a_second_robot(tmp_path, capsys):
     assert cli_main(['report', str(state), '--out', str(tmp_path / 'report')]) == 0
     html = (tmp_path / 'report' / 'report.html').read_text()
     assert CAUTION in html and 'peak_tube_tilt' in html and 'tcp_travel' in html
+
+
+def test_learner_node_reads_the_robot_from_robot_description():
+    # The ROS convention: the URDF text latched (transient local) on /robot_description,
+    # as robot_state_publisher offers it; the node waits for it when urdf is empty.
+    import pytest
+    text = (DATA / 'lift_arm6.urdf').read_text()
+    params = dict(robot_description_topic='/robot_description', robot_description_timeout=20.0,
+                  features=str(DATA / 'lift_arm6_features.yaml'), tool_frame='tcp',
+                  n_particles=50, n_alternatives=20)
+    with ros_context() as (ctx, ex):
+        pub_node = rclpy.create_node('robot_state_stand_in', context=ctx)
+        pub = pub_node.create_publisher(String, '/robot_description', LATCHED)
+        pub.publish(String(data=text))
+        node = LearnerNode(context=ctx, parameter_overrides=[
+            Parameter(k, value=v) for k, v in params.items()])
+        assert node.learner.robot.root_link == 'bench_plate'
+        assert node.learner.record.urdf == text and node.learner.robot.n == 6
+        node.destroy_node()
+        # nobody publishes on this topic: the node refuses to start, saying why
+        with pytest.raises(ValueError, match='no URDF on /nobody_here'):
+            LearnerNode(context=ctx, parameter_overrides=[Parameter(k, value=v) for k, v in dict(
+                params, robot_description_topic='/nobody_here',
+                robot_description_timeout=0.5).items()])
+        pub_node.destroy_node()
