@@ -193,7 +193,7 @@ class StepResult:
 
 
 class Learner:
-    """The pipeline (see module docstring)."""
+    """The learning session (see module docstring)."""
 
     def __init__(self, config: LearnerConfig = LearnerConfig(), on_estimate=None,
                  scales=None, task: Optional[TaskModel] = None):
