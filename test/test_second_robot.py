@@ -67,7 +67,7 @@ def test_whole_loop_on_a_second_robot(tmp_path, capsys):
         teacher = TeacherNode(context=ctx, parameter_overrides=[
             Parameter(k, value=v) for k, v in dict(
                 n_demonstrations=N_DEMOS, duration=1.5, rate=200.0, pause=0.3,
-                start_delay=0.5, seed=5, model='less', beta=10.0).items()])
+                start_delay=2.0, seed=5, model='less', beta=10.0).items()])
         planner = PlannerNode(context=ctx)
         with spinning(learner, ctx), spinning(teacher, ctx), spinning(planner, ctx):
             assert spin_until(ex, lambda: 'record' in got, 10)
