@@ -6,7 +6,8 @@ Reading: :func:`read_stream` yields the learner's inputs from a bag (joint
 states and teaching signals, sqlite3 or MCAP storage) in the order they were
 logged. Writing: :class:`BagWriter` writes MCAP by default, with standard
 message types, CDR encoding and offered-QoS metadata, so any rosbag2 tool
-reads it; :func:`estimate_messages` builds the estimate topics the node
+reads it; :func:`read_task_record` returns the task record a learner node
+recorded; :func:`estimate_messages` builds the estimate topics the node
 publishes (the same types, names and layouts).
 """
 
@@ -82,6 +83,9 @@ class BagWriter:
             header=header, name=list(names), position=np.asarray(positions, dtype=np.float64),
             velocity=np.zeros(0), effort=np.zeros(0))
 
+    def string(self, text: str):
+        return self.ts.types['std_msgs/msg/String'](data=str(text))
+
     def boolean(self, value: bool):
         return self.ts.types['std_msgs/msg/Bool'](data=bool(value))
 
@@ -145,6 +149,24 @@ def read_stream(path, joint_topic: Optional[str] = None,
                 yield StreamEvent('teaching', int(log_ns), value=bool(msg.data))
     finally:
         reader.close()
+
+
+def read_task_record(path) -> Optional[str]:
+    """Return the JSON text of the first task record in a bag (None when it has none).
+
+    The learner node records its ``~/task_record`` (std_msgs/String) when it
+    records a bag; any String topic whose name ends in ``task_record`` counts.
+    """
+    from rosbags.rosbag2 import Reader
+    try:
+        with Reader(Path(path)) as reader:
+            conns = [c for c in reader.connections if c.msgtype == 'std_msgs/msg/String'
+                     and c.topic.endswith('task_record')]
+            for conn, _, raw in reader.messages(connections=conns):
+                return typestore().deserialize_cdr(raw, conn.msgtype).data
+    except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
+        raise ValueError(f'bag {path} cannot be read: {exc}') from None
+    return None
 
 
 def read_messages(path) -> List[Tuple[str, str, int, object]]:

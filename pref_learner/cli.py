@@ -202,7 +202,7 @@ def cmd_learn(args) -> int:
     events_iter = progress(events, 'learning')
     if not any(e.kind == 'joint_states' for e in events):
         raise CliError(f'bag {bag} has no joint states')
-    L = Learner(cfg)
+    L = Learner(cfg, task=_bag_task(args, bag))
     L.recorder.set_max_skew(float(node_only.get('max_stamp_skew', 0.0)))
     w = BagWriter(out / 'estimates')
     n_ok = 0
@@ -352,6 +352,27 @@ def _learning_options(p, choices=None, session: bool = False) -> None:
         p.add_argument('--joints', nargs='+', metavar='JOINT',
                        help='chain joints in order (default: root to the tool frame)')
         p.add_argument('--tool-frame', help='frame the features read by default (tool_tip)')
+
+
+def _bag_task(args, bag: Path):
+    """Return the task model a learner node recorded in ``bag`` (None: make one).
+
+    Used unless a parameters file or a robot option (``--urdf``, ``--features``,
+    ``--joints``, ``--tool-frame``) says otherwise; ``--model``,
+    ``--alternatives`` and ``--beta`` change its settings.
+    """
+    from .bags import read_task_record
+    from .task import TaskModel, TaskRecord
+    if any(getattr(args, k, None) for k in ('params_file', 'urdf', 'features', 'joints',
+                                            'tool_frame')):
+        return None
+    text = read_task_record(bag)
+    if text is None:
+        return None
+    over = {k: v for k, v in (('model', args.model), ('n_alternatives', args.alternatives))
+            if v is not None}
+    over.update(_beta_config(args))
+    return TaskModel.from_record(TaskRecord.from_json(text).with_settings(**over))
 
 
 def session_config(args, state_dir: str = ''):

@@ -123,6 +123,13 @@ def test_whole_loop_on_a_second_robot(tmp_path, capsys):
     off = ParticlePosterior.load(out / 'state' / 'posterior_less').summary()
     np.testing.assert_allclose(off.mean, live, atol=1e-9)
     assert TaskRecord.from_json((out / 'state' / 'task.json').read_text()) == L.record
+    # the bag carries the task record: with the session settings alone it learns the same
+    out2 = tmp_path / 'offline_from_record'
+    assert cli_main(['learn', str(bag), '--out', str(out2), '--particles', '400',
+                     '--seed', '11']) == 0
+    capsys.readouterr()
+    off2 = ParticlePosterior.load(out2 / 'state' / 'posterior_less').summary()
+    np.testing.assert_allclose(off2.mean, live, atol=1e-9)
     # compare and report read robot, features and scales from the state directory
     cmp_json = tmp_path / 'compare.json'
     assert cli_main(['compare', str(state), '--sets', '2', '--particles', '300',

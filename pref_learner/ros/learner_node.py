@@ -208,6 +208,10 @@ class LearnerNode(Node):
         if bag:
             from ..bags import BagWriter
             self._bag = BagWriter(bag)
+            # the session's task model first, so `learn` of the bag needs nothing else
+            record = self.learner.record.to_json()
+            self._record(lambda b: b.write(self.resolve_topic_name('~/task_record'),
+                                           b.string(record), self._now()))
         self._make_interfaces()
         self._js_topic = self.resolve_topic_name('joint_states')
         self._teach_topic = self.resolve_topic_name('~/teaching')
