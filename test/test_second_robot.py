@@ -9,6 +9,7 @@ and ``report`` read everything from the state directory.
 """
 
 import json
+from html import escape as html_escape
 from pathlib import Path
 
 import numpy as np
@@ -139,8 +140,8 @@ def test_whole_loop_on_a_second_robot(tmp_path, capsys):
     assert all(len(v) == N_DEMOS and np.all(np.isfinite(v)) for v in cmp['loo'].values())
     assert CAUTION in capsys.readouterr().out
     assert cli_main(['report', str(state), '--out', str(tmp_path / 'report')]) == 0
-    html = (tmp_path / 'report' / 'report.html').read_text()
-    assert CAUTION in html and 'peak_tube_tilt' in html and 'tcp_travel' in html
+    text = (tmp_path / 'report' / 'report.html').read_text()
+    assert html_escape(CAUTION) in text and 'peak_tube_tilt' in text and 'tcp_travel' in text
 
 
 def test_learner_node_reads_the_robot_from_robot_description():
