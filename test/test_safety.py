@@ -178,6 +178,10 @@ def hostile_state(tmp_path_factory):
     manifest = json.loads((state / 'manifest.json').read_text())
     manifest['config']['features'] = str(feats)
     (state / 'manifest.json').write_text(json.dumps(manifest))
+    # the task record, which compare builds its features from, names it too
+    record = json.loads((state / 'task.json').read_text())
+    record['features'] = feats.read_text()
+    (state / 'task.json').write_text(json.dumps(record))
     return tmp, state, name, marker
 
 
@@ -190,7 +194,7 @@ def test_opening_a_state_directory_runs_no_code_it_names(hostile_state, command,
     r = subprocess.run([sys.executable, '-m', 'pref_learner.cli', args[0], str(state)]
                        + args[1:], env=env, capture_output=True, text=True, timeout=300)
     assert not marker.exists(), 'a module named by the state directory was imported'
-    if command[0] == 'compare':   # compare rebuilds the pipeline from the stored settings
+    if command[0] == 'compare':   # compare builds the task model from the stored record
         assert r.returncode == 2 and r.stderr.count('\n') == 1, r.stderr
         assert f"module '{name}', which is not allowed" in r.stderr
         assert f'--feature-module {name}' in r.stderr
