@@ -288,7 +288,7 @@ class Learner:
         return self.task.prepare_config
 
     def tasks(self):
-        """Return the scenario's (name, start, goal) tasks (:meth:`TaskModel.tasks`)."""
+        """Return the scenario's (name, start, goal) tasks, as the task model gives them."""
         return self.task.tasks()
 
     def _reset_posteriors(self):

@@ -123,7 +123,7 @@ class TaskRecord:
 
     # ------------------------------------------------------------ settings
     def settings(self) -> dict:
-        """The LearnerConfig settings this record fixes (``TASK_SETTINGS``)."""
+        """Return the LearnerConfig settings this record fixes (``TASK_SETTINGS``)."""
         return {k: getattr(self, k) for k in TASK_SETTINGS}
 
     def with_settings(self, **over) -> 'TaskRecord':

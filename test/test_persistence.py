@@ -142,7 +142,10 @@ def test_stored_scales_are_kept_across_restarts(tmp_path):
     SimulatedTeacher(L, TRUE, TeacherConfig(seed=9)).feed_session(L, 1)
     m = json.loads((tmp_path / 'manifest.json').read_text())
     np.testing.assert_allclose(m['scales'], L.features.scales)
-    m['scales'] = [s * 2.0 for s in m['scales']]     # as if calibrated by another version
-    (tmp_path / 'manifest.json').write_text(json.dumps(m))
+    # the session's scales live in its task record (task.json)
+    r = json.loads((tmp_path / 'task.json').read_text())
+    np.testing.assert_array_equal(r['scales'], L.features.scales)
+    r['scales'] = [s * 2.0 for s in r['scales']]     # as if calibrated by another version
+    (tmp_path / 'task.json').write_text(json.dumps(r))
     L2 = Learner(cfg)
     np.testing.assert_allclose(L2.features.scales, 2.0 * L.features.scales)
