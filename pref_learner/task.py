@@ -51,35 +51,36 @@ class TaskRecord:
     ``urdf`` and ``features`` are texts (never paths), ``joint_names`` the
     resolved chain, ``scales`` one positive number per feature (empty only
     before calibration). The remaining fields carry the
-    :class:`~pref_learner.learner.LearnerConfig` settings of the same names.
+    :class:`~pref_learner.learner.LearnerConfig` settings of the same names
+    (no defaults here: a record says every one of them).
     """
 
     urdf: str
     joint_names: Tuple[str, ...]
     tool_frame: str
     features: str
+    n_waypoints: int
+    resample: str
+    lowpass_hz: float
+    smooth: float
+    clamp: bool
+    n_alternatives: int
+    mix_smooth: float
+    mix_near_optimal: float
+    mix_perturb: float
+    mix_planner: float
+    spreads: Tuple[float, ...]
+    ascent_steps: int
+    ascent_step: float
+    option_density: str
+    bandwidth: str
+    model: str
+    beta: float
+    beta_min: float
+    beta_max: float
+    calibration_seed: int
+    n_calibration: int
     scales: Tuple[float, ...] = ()
-    n_waypoints: int = 64
-    resample: str = 'arc_length'
-    lowpass_hz: float = 10.0
-    smooth: float = 1e-4
-    clamp: bool = False
-    n_alternatives: int = 500
-    mix_smooth: float = 1.0
-    mix_near_optimal: float = 0.0
-    mix_perturb: float = 0.0
-    mix_planner: float = 0.0
-    spreads: Tuple[float, ...] = (0.08,)
-    ascent_steps: int = 8
-    ascent_step: float = 0.25
-    option_density: str = 'gaussian'
-    bandwidth: str = 'scott'
-    model: str = 'less'
-    beta: float = 5.0
-    beta_min: float = 0.5
-    beta_max: float = 50.0
-    calibration_seed: int = 0
-    n_calibration: int = 200
 
     def __post_init__(self):
         for name in ('urdf', 'tool_frame', 'features'):
@@ -115,8 +116,7 @@ class TaskRecord:
         extra = sorted(set(d) - known)
         if extra:
             raise ValueError(f'task record has unknown key(s) {extra}')
-        missing = sorted(k for k in ('urdf', 'joint_names', 'tool_frame', 'features',
-                                     'scales') if k not in d)
+        missing = sorted(known - set(d))
         if missing:
             raise ValueError(f'task record lacks {missing}')
         return cls(**d)
