@@ -140,7 +140,7 @@ def _session_sets(n: int):
 
 
 def _session_updates(L, sets, n_session: int, out: Dict[str, float]) -> dict:
-    """Updates at ``n_session`` stored demonstrations, both models (defaults of the learner).
+    """Time updates at ``n_session`` stored demonstrations, both models (defaults of the learner).
 
     The session is learned as the learner does (tempered updates, moves after
     each resampling). Each of the next sets is then added to that same

@@ -222,7 +222,7 @@ class LikelihoodExpansion(NamedTuple):
     quartic: np.ndarray     # (P, P): the fourth-order coefficients
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
+        """Return the expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
         delta = np.atleast_2d(u) - self.anchor
         a, b = np.triu_indices(delta.shape[1])
         z = delta[:, a] * delta[:, b]
@@ -334,7 +334,7 @@ class StackedSets:
                    np.concatenate([[0], np.cumsum(sizes)[:-1]]), chosen, constant)
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
+        """Return the summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
         out = np.zeros(u.shape[0])
         for x, s, sizes, starts, chosen, constant in self._blocks():
             for a in range(0, u.shape[0], self.BLOCK):
@@ -864,7 +864,7 @@ class ParticlePosterior:
 
     def move_target(self, theta: np.ndarray, beta: np.ndarray,
                     level: Optional[np.ndarray]) -> MoveTarget:
-        """The stored sets' log-likelihood for moves starting from these particles.
+        """Return the stored sets' log-likelihood for moves starting from these particles.
 
         With ``move_likelihood: expansion``: each level's
         :class:`LikelihoodExpansion` around the weighted mean of
