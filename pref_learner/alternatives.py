@@ -70,7 +70,8 @@ class SmoothNoise:
         m, n = shape
         z = np.clip(rng.standard_normal((m, self.T - 2, n)), -3.0, 3.0)
         out = np.zeros((m, self.T, n))
-        out[:, 1:-1] = np.einsum('ij,mjn->min', self.op, z)
+        # one BLAS product over every draw (einsum's own loop was ~10x slower)
+        out[:, 1:-1] = np.tensordot(z, self.op, axes=([1], [1])).transpose(0, 2, 1)
         return out
 
     def jerk_bound(self, scale: np.ndarray) -> float:
