@@ -86,6 +86,24 @@ class SmoothNoise:
         return float(h * nrm ** 2 * 9.0 * (T - 2) * np.sum(np.asarray(scale) ** 2))
 
 
+def path_deviation(q: np.ndarray, span: np.ndarray) -> np.ndarray:
+    """Root-mean-square distance of each path from the straight line between its ends.
+
+    ``q (K, T, n)`` joint paths, ``span (n,)`` the joint ranges that scale the
+    coordinates (as the option spreads do); returns ``(K,)``. Only the part of
+    each waypoint perpendicular to the start-goal line counts, so a path's
+    timing along the line does not. This is the statistic whose distribution
+    tells option spreads apart: the spread scales it, whatever the preference.
+    """
+    x = np.asarray(q, dtype=np.float64) / np.asarray(span, dtype=np.float64)
+    start = x[:, :1]
+    u = x[:, -1:] - start
+    u = u / np.maximum(np.linalg.norm(u, axis=-1, keepdims=True), 1e-12)
+    r = x - start
+    r = r - np.sum(r * u, axis=-1, keepdims=True) * u
+    return np.sqrt(np.mean(np.sum(r * r, axis=-1), axis=-1))
+
+
 KINDS = ('smooth', 'near_optimal', 'perturb', 'planner')
 
 

@@ -83,6 +83,10 @@ def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarra
     return x / np.linalg.norm(x, axis=1, keepdims=True)
 
 
+#: how an option level's density of the demonstration is estimated (several levels)
+OPTION_DENSITIES = ('deviation', 'gaussian', 'kde')
+
+
 def log_option_density(points: np.ndarray, x: np.ndarray, kind: str = 'gaussian') -> float:
     """Log density at ``x (d,)`` of the distribution of ``points (M, d)``.
 
@@ -124,10 +128,14 @@ class ChoiceRecord:
     log_sim : (K,) LESS log-similarity sums of each alternative within its level's
         set (demonstration included); ``None`` for the Boltzmann model.
     log_sim_chosen : (L,) the demonstration's log-similarity sum within each level's set.
-    log_density : (L,) log density of the demonstration's features under each level's
-        alternatives (:func:`log_option_density`). It makes levels comparable: with it the
-        likelihood is that of the demonstration's features, not only of the
-        choice among a given set (0 with one level, where it is a constant).
+    log_density : (L,) log density of the demonstration under each level's
+        alternatives (:func:`log_option_density`): of its features (``gaussian``,
+        ``kde``) or of the log of its deviation from the straight line
+        (``deviation``, a one-dimensional kernel estimate; give ``deviation (K,)``
+        to :meth:`build`, see :func:`pref_learner.alternatives.path_deviation`).
+        It makes levels comparable: with it the likelihood is that of the
+        demonstration, not only of the choice among a given set (0 with one level,
+        where it is a constant).
     """
 
     features: np.ndarray
@@ -140,10 +148,15 @@ class ChoiceRecord:
 
     @classmethod
     def build(cls, features, chosen, bandwidth='scott', with_similarity=True, groups=None,
-              n_levels: Optional[int] = None, density: str = 'gaussian'):
+              n_levels: Optional[int] = None, density: str = 'gaussian', deviation=None):
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
+        if deviation is not None:
+            deviation = np.asarray(deviation, dtype=np.float64)
+            if deviation.shape != (k,) or not np.all(np.isfinite(deviation)) \
+                    or np.any(deviation < 0):
+                raise ValueError(f'deviation must be {k} finite values >= 0, one per row')
         if groups is None:
             g = np.zeros(k, dtype=np.int64)
         else:
@@ -162,13 +175,22 @@ class ChoiceRecord:
             ls = np.zeros(k)
             lsc = np.zeros(L)
         dens = np.zeros(L)
+        if L > 1 and density == 'deviation':
+            if deviation is None:
+                raise ValueError('option density "deviation" needs the deviation of every '
+                                 'row from the straight line (several spread levels)')
+            # log scale: the levels' spreads are multiples of each other, so one
+            # bandwidth rule fits them all; the log's Jacobian is the same for every level
+            logdev = np.log(np.maximum(deviation, 1e-12))[:, None]
         for lev in range(L):
             cols = np.concatenate([[c], np.flatnonzero(g == lev)])
             if with_similarity:
                 s = choice.log_similarity_sums(x[cols], bandwidth)
                 ls[cols[1:]] = s[1:]
                 lsc[lev] = s[0]
-            if L > 1:
+            if L > 1 and density == 'deviation':
+                dens[lev] = log_option_density(logdev[cols[1:]], logdev[c], 'kde')
+            elif L > 1:
                 dens[lev] = log_option_density(x[cols[1:]], x[c], density)
         return cls(x, c, g, L, ls, lsc, dens)
 
@@ -473,9 +495,9 @@ class PosteriorConfig:
         if not 0.0 <= self.diversity_target <= 1.0:
             raise ValueError(f'diversity_target must be in [0, 1], got '
                              f'{self.diversity_target!r}')
-        if self.option_density not in ('gaussian', 'kde'):
+        if self.option_density not in OPTION_DENSITIES:
             raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
-                             'gaussian, kde')
+                             f'{", ".join(OPTION_DENSITIES)}')
         if not 0 <= self.tempering_move_rounds <= self.max_move_rounds:
             raise ValueError(f'tempering_move_rounds must be in [0, max_move_rounds], got '
                              f'{self.tempering_move_rounds!r}')
@@ -760,11 +782,13 @@ class ParticlePosterior:
         return float(np.sum(p[p <= p[record.chosen] * (1.0 + 1e-12)]))
 
     # ------------------------------------------------------------ update
-    def prepare(self, features, chosen, groups=None) -> ChoiceRecord:
+    def prepare(self, features, chosen, groups=None, deviation=None) -> ChoiceRecord:
         """Validate one choice set and precompute what this model needs.
 
         ``groups (K,)``: the spread level of each alternative (needed with
-        more than one level).
+        more than one level); ``deviation (K,)``: each row's deviation from the
+        straight line (needed with several levels and ``option_density:
+        deviation``).
         """
         x = choice._check_matrix(features)
         if x.shape[1] != self.d:
@@ -776,13 +800,13 @@ class ParticlePosterior:
         return ChoiceRecord.build(x, chosen, self.config.bandwidth,
                                   with_similarity=self.config.model == 'less', groups=groups,
                                   n_levels=self.config.n_levels,
-                                  density=self.config.option_density)
+                                  density=self.config.option_density, deviation=deviation)
 
     def update(self, record, rng: np.random.Generator, move: bool = True):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
 
-        ``record`` is a :class:`ChoiceRecord`, a ``(features (K, d), chosen)``
-        pair or a ``(features, chosen, groups)`` triple. The new likelihood
+        ``record`` is a :class:`ChoiceRecord` or the arguments of :meth:`prepare`
+        as a tuple: ``(features (K, d), chosen[, groups[, deviation]])``. The new likelihood
         enters in steps ``0 < phi_1 < ... < 1`` chosen by bisection so the ESS
         stays at least ``ess_target`` x N in each (Del Moral, Doucet & Jasra
         2006); between steps the particles are resampled and moved under the
@@ -798,9 +822,9 @@ class ParticlePosterior:
             raise ValueError(f'record has {record.n_levels} spread levels, the posterior '
                              f'{self.config.n_levels}')
         elif self.config.model == 'less' and record.log_sim is None:
-            record = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
-                                        True, record.groups, record.n_levels,
-                                        self.config.option_density)
+            sim = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
+                                     True, record.groups, record.n_levels, 'gaussian')
+            record = replace(sim, log_density=record.log_density)
         ll = self.record_loglik(record, self.theta, self.beta, self.level)
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '

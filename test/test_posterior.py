@@ -275,6 +275,49 @@ def test_option_densities_match_scipy():
             float(mvn.logpdf(x)), rel=1e-6)
 
 
+def test_deviation_evidence_of_option_levels_matches_scipy_kde():
+    # Reference: scipy.stats.gaussian_kde (Scott's factor, Scott 1992) of the log
+    # deviations of each level's own options, evaluated at the demonstration's log
+    # deviation; with one level the term is a constant (0).
+    from scipy.stats import gaussian_kde
+    from pref_learner.posterior import ChoiceRecord
+    rng = np.random.default_rng(81)
+    k = 1 + 3 * 60
+    x = rng.normal(size=(k, 3))
+    groups = np.concatenate([[-1], np.repeat(np.arange(3), 60)])
+    spreads = np.array([0.04, 0.08, 0.16])
+    dev = np.concatenate([[0.05], spreads[groups[1:]] * rng.uniform(0.05, 1.0, k - 1)])
+    rec = ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation',
+                             deviation=dev)
+    for lev in range(3):
+        ref = gaussian_kde(np.log(dev[1:][groups[1:] == lev])).logpdf(np.log(0.05))[0]
+        assert rec.log_density[lev] == pytest.approx(float(ref), rel=1e-9)
+    # the demonstration's deviation lies inside the middle level's range, beyond the
+    # narrow one's: the middle level has the larger density
+    assert rec.log_density[1] > rec.log_density[0]
+    with pytest.raises(ValueError, match='deviation'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation')
+    with pytest.raises(ValueError, match='deviation must be'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation',
+                           deviation=-dev)
+    one = ChoiceRecord.build(x, 0, density='deviation', deviation=dev)
+    assert one.log_density.tolist() == [0.0]
+
+
+def test_path_deviation_by_hand():
+    # Worked by hand: joint 0 moves 0 -> 1 (span 2); joint 1 bulges by 0.3 (span 1.5)
+    # at the middle waypoint only, perpendicular to the line. Normalised, the middle
+    # waypoint is 0.2 from the line, the others 0, so the RMS over 5 waypoints is
+    # sqrt(0.2^2 / 5). A path retimed along its own line deviates by 0.
+    from pref_learner.alternatives import path_deviation
+    q = np.zeros((2, 5, 2))
+    q[:, :, 0] = np.linspace(0.0, 1.0, 5)
+    q[0, 2, 1] = 0.3
+    q[1, :, 0] = np.array([0.0, 0.1, 0.15, 0.9, 1.0])
+    span = np.array([2.0, 1.5])
+    np.testing.assert_allclose(path_deviation(q, span), [np.sqrt(0.04 / 5), 0.0], atol=1e-15)
+
+
 @pytest.mark.parametrize('model', ['boltzmann', 'less'])
 def test_tempered_update_of_a_sharp_demonstration_matches_quadrature(model):
     # One very informative demonstration (beta 40): tempering takes several steps with
