@@ -235,7 +235,15 @@ class ChoiceModel:
         return r
 
     def _checked_offsets(self, x, log_sim, bandwidth):
-        return None
+        """The set's offsets: the given similarity term (checked) or :meth:`set_offsets`."""
+        if not self.uses_similarity:
+            return self.set_offsets(x, bandwidth)
+        if log_sim is None:
+            log_sim = self.set_offsets(x, bandwidth)
+        log_sim = np.asarray(log_sim, dtype=np.float64)
+        if log_sim.shape != (x.shape[0],):
+            raise ValueError(f'log_sim must have shape ({x.shape[0]},), got {log_sim.shape}')
+        return log_sim
 
     def loglik(self, features: np.ndarray, chosen: int, theta: np.ndarray, beta=1.0, *,
                log_sim: np.ndarray | None = None,
@@ -283,14 +291,6 @@ class Less(ChoiceModel):
 
     def set_offsets(self, features, bandwidth='scott'):
         return log_similarity_sums(features, bandwidth)
-
-    def _checked_offsets(self, x, log_sim, bandwidth):
-        if log_sim is None:
-            log_sim = log_similarity_sums(x, bandwidth)
-        log_sim = np.asarray(log_sim, dtype=np.float64)
-        if log_sim.shape != (x.shape[0],):
-            raise ValueError(f'log_sim must have shape ({x.shape[0]},), got {log_sim.shape}')
-        return log_sim
 
 
 #: The registry of choice models, by name; the one list of model names.

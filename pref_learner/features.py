@@ -29,13 +29,18 @@ point_distance     distance to a point (m); ``horizontal`` ignores z     point, 
 capsule_distance   distance to a capsule surface (m), < 0 inside it      a, b, radius
 tilt               sin^2 of the angle of a frame axis from vertical      axis (x|y|z)
 in_box             1 inside an axis-aligned box, 0 outside (smoothed)    min, max, softness
+in_cylinder        1 inside a cylinder on ``base`` along ``axis``        base, axis, radius,
+                   (smoothed)                                            height, softness
 =================  ====================================================  ==========
 
 Trajectory types (no aggregate), time normalised to [0, 1]:
 
 ``path_length`` Cartesian length of the frame's path (m);
 ``effort`` integral of the squared joint speeds, ``sum |dq/ds|^2 ds``;
-``jerk`` integral of the squared third derivative of the joint path.
+``jerk`` integral of the squared third derivative of the joint path;
+``approach_offset`` mean squared distance of the frame from the line along
+``axis`` through the start and/or goal, over the ``fraction`` of waypoints
+next to it.
 
 Every type is a registered :class:`FeatureType` (:data:`FEATURE_TYPES`) that
 carries its parameter schema, checks, value and gradient; one implementation
@@ -155,16 +160,15 @@ def _load_user_type(ftype: str, where: str):
             f'{mod} (pref-learner), the feature_modules parameter (nodes) or an installed '
             f'{ENTRY_POINT_GROUP} entry point')
     try:
-        obj = getattr(importlib.import_module(mod), attr)
+        func = getattr(importlib.import_module(mod), attr)
     except (ImportError, AttributeError) as exc:
         raise FeatureConfigError(f'{where}: type {ftype!r} cannot be imported: {exc}') from None
-    func = None
-    if isinstance(obj, type) and issubclass(obj, FeatureType):
-        kind = obj()
-    elif isinstance(obj, FeatureType):
-        kind = obj
-    elif callable(obj):
-        kind, func = FunctionType(ftype, obj), obj
+    if isinstance(func, type) and issubclass(func, FeatureType):
+        kind, func = func(), None
+    elif isinstance(func, FeatureType):
+        kind, func = func, None
+    elif callable(func):
+        kind = FunctionType(ftype, func)
     else:
         raise FeatureConfigError(f'{where}: type {ftype!r} is not callable')
     register_feature_type(kind, ftype)
