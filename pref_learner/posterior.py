@@ -651,7 +651,7 @@ class PosteriorConfig:
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
             raise ValueError(f'n_particles must be an integer >= 1, got {self.n_particles!r}')
-        self.choice_model
+        choice.get_model(self.model)          # a registered choice model
         if not (math.isfinite(self.beta) and self.beta > 0):
             raise ValueError(f'beta must be > 0, got {self.beta!r}')
         if self.beta_range is not None:
