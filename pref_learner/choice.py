@@ -235,7 +235,7 @@ class ChoiceModel:
         return r
 
     def _checked_offsets(self, x, log_sim, bandwidth):
-        """The set's offsets: the given similarity term (checked) or :meth:`set_offsets`."""
+        """Return the set's offsets: the given similarity term (checked) or :meth:`set_offsets`."""
         if not self.uses_similarity:
             return self.set_offsets(x, bandwidth)
         if log_sim is None:
@@ -319,7 +319,7 @@ register_model(Less())
 
 
 def model_names(model: str) -> Tuple[str, ...]:
-    """The models a setting names: one, or every registered model for ``both``."""
+    """Return the models a setting names: one, or every registered model for ``both``."""
     if model == BOTH:
         return MODEL_NAMES
     get_model(model)

@@ -885,7 +885,7 @@ class FeatureSet:
 
     @staticmethod
     def _batch(q, kind, spec, poses, jacobians=None) -> FrameBatch:
-        """What ``kind`` reads of the batch: the spec's frame and its Jacobians, if any."""
+        """Select what ``kind`` reads of the batch: the spec's frame and Jacobians, if any."""
         if not kind.uses_frame:
             return FrameBatch(q)
         k = poses.index(spec.frame)

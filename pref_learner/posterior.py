@@ -174,7 +174,7 @@ class ChoiceRecord:
         return np.concatenate([[self.chosen], np.flatnonzero(self.groups == level)])
 
     def log_similarity(self, level: int, cols: Optional[np.ndarray] = None) -> np.ndarray:
-        """The set's similarity term at ``level`` in the order of :meth:`columns` (a copy).
+        """Return the set's similarity term at ``level``, ordered as :meth:`columns` (a copy).
 
         The LESS log-similarity sums of the chosen row and that level's
         alternatives within their set, computed once when the record was
@@ -188,7 +188,7 @@ class ChoiceRecord:
 
 
 def set_log_similarity(records, bandwidth='scott') -> np.ndarray:
-    """The LESS log-similarity sums ``(K,)`` of a whole set, rows in the records' order.
+    """Return the LESS log-similarity sums ``(K,)`` of a whole set, in the records' row order.
 
     ``records``: choice records of one set (one per model, say). The term a
     record stored when it was built is reused when it covers the whole set
@@ -252,7 +252,7 @@ class LikelihoodExpansion(NamedTuple):
     quartic: np.ndarray     # (P, P): the fourth-order coefficients
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
+        """Evaluate the expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
         delta = np.atleast_2d(u) - self.anchor
         a, b = np.triu_indices(delta.shape[1])
         z = delta[:, a] * delta[:, b]
@@ -358,7 +358,7 @@ class StackedSets:
                    np.concatenate([[0], np.cumsum(sizes)[:-1]]), chosen, constant)
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
+        """Sum the log-likelihoods at ``u = beta theta (n, d)``, ``(n,)``."""
         out = np.zeros(u.shape[0])
         for x, s, sizes, starts, chosen, constant in self._blocks():
             for a in range(0, u.shape[0], self.BLOCK):
@@ -1065,7 +1065,7 @@ class ParticlePosterior:
 
     def move_target(self, theta: np.ndarray, beta: np.ndarray,
                     level: Optional[np.ndarray]) -> MoveTarget:
-        """The stored sets' log-likelihood for moves starting from these particles.
+        """Return the stored sets' log-likelihood for moves starting from these particles.
 
         With ``move_likelihood: expansion``: each level's
         :class:`LikelihoodExpansion` around the weighted mean of
