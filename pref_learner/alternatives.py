@@ -331,14 +331,17 @@ class AlternativeSampler:
 
 
 def set_diagnostics(features: np.ndarray, chosen: int, log_sim: Optional[np.ndarray] = None,
-                    sparse_ratio: float = 0.2) -> dict:
+                    sparse_ratio: float = 0.2, bandwidth='scott') -> dict:
     """Where a demonstration sits within its set's feature distribution.
 
     Returns per-feature percentiles (0-100) of the chosen row among the set,
     its kernel density relative to the set's median density (from the LESS
     similarity sums), and flags: ``outside`` (outside the set's range in
     some feature), ``sparse`` (relative density below ``sparse_ratio``),
-    ``dense`` (relative density above 1 / sparse_ratio).
+    ``dense`` (relative density above 1 / sparse_ratio). ``log_sim``: the
+    set's similarity term when already computed (as the posterior's
+    records hold it, :func:`pref_learner.posterior.set_log_similarity`),
+    else computed with ``bandwidth``.
     """
     from .choice import log_similarity_sums
     x = np.asarray(features, dtype=np.float64)
@@ -349,7 +352,7 @@ def set_diagnostics(features: np.ndarray, chosen: int, log_sim: Optional[np.ndar
     outside = bool(np.any(c < others.min(axis=0)) or np.any(c > others.max(axis=0))) \
         if len(others) else True
     if log_sim is None:
-        log_sim = log_similarity_sums(x)
+        log_sim = log_similarity_sums(x, bandwidth)
     rel = float(np.exp(log_sim[chosen] - np.median(log_sim)))
     return {'percentiles': pct.tolist(), 'relative_density': rel, 'outside': outside,
             'sparse': bool(rel < sparse_ratio or outside), 'dense': bool(rel > 1.0 / sparse_ratio)}

@@ -28,7 +28,7 @@ from .posterior import ParticlePosterior
 from .progress import progress
 from .store import StateStore
 
-MODELS = ('boltzmann', 'less')
+from .choice import MODEL_NAMES as MODELS  # the registry's models, in one place
 
 
 def _config_from_manifest(manifest: dict, **over) -> LearnerConfig:

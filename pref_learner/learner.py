@@ -27,17 +27,17 @@ import numpy as np
 
 from . import __version__
 from .alternatives import AlternativeSampler, SamplerConfig, path_deviation, set_diagnostics
+from .choice import BOTH, MODEL_CHOICES, MODEL_NAMES
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
                              Rejection, SegmentConfig, condition, prepare,
                              reparametrize_arc_length)
 from .features import FeatureSet, default_features_path, load_scenario
-from .posterior import ParticlePosterior, PosteriorConfig, Summary
+from .posterior import ParticlePosterior, PosteriorConfig, Summary, set_log_similarity
 from .robot import RobotModel, default_urdf_path
 from .store import StateStore
 
 log = logging.getLogger('pref_learner')
 
-MODEL_CHOICES = ('boltzmann', 'less', 'both')
 #: a demonstration whose one-step-ahead predictive p-value is below this is flagged
 ATYPICAL_PVALUE = 0.05
 
@@ -109,7 +109,7 @@ class LearnerConfig:
 
     @property
     def models(self) -> Tuple[str, ...]:
-        return ('boltzmann', 'less') if self.model == 'both' else (self.model,)
+        return MODEL_NAMES if self.model == BOTH else (self.model,)
 
     def segment_config(self) -> SegmentConfig:
         return SegmentConfig(mode=self.segmentation, speed_start=self.speed_start,
@@ -639,7 +639,7 @@ class Learner:
             new[m], infos[m] = post.update(rec, rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
-        diag = set_diagnostics(feats, 0)
+        diag = set_diagnostics(feats, 0, set_log_similarity(recs.values(), post.config.bandwidth))
         diag['predictive_pvalue'] = ppc
         diag['atypical'] = bool(diag['outside'] or min(ppc.values()) < ATYPICAL_PVALUE)
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)

@@ -47,6 +47,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
 from ..bags import estimate_arrays
+from ..choice import MODEL_CHOICES
 from ..guidance import TaskGuide, unknown_lines
 from ..learner import Learner, LearnerConfig, StepResult
 from ..report import estimate_status_values
@@ -258,9 +259,9 @@ class LearnerNode(Node):
         if not hasattr(self, 'config'):
             # declaration time: check the value's own constraints only
             for p in params:
-                if p.name == 'model' and p.value not in ('boltzmann', 'less', 'both'):
+                if p.name == 'model' and p.value not in MODEL_CHOICES:
                     return SetParametersResult(successful=False, reason=(
-                        f'model {p.value!r} is unknown; allowed: boltzmann, less, both'))
+                        f'model {p.value!r} is unknown; allowed: {", ".join(MODEL_CHOICES)}'))
                 if p.name == 'segmentation' and p.value not in ('manual', 'signal', 'motion'):
                     return SetParametersResult(successful=False, reason=(
                         f'segmentation {p.value!r} is unknown; allowed: manual, signal, motion'))
