@@ -49,7 +49,8 @@ demo: $(STAMP)
 	$(VENV)/bin/pref-learner demo --out out/demo
 
 # Coverage counts the node and CLI subprocesses too (.coveragerc: patch = subprocess);
-# the percentage is reported, never a reason to fail.
+# the percentage is reported, never a reason to fail. test/test_workspace.py builds the
+# package with colcon (requirements.txt) in a temporary workspace and runs what it installed.
 test: $(STAMP)
 	@rm -f .coverage .coverage.*
 	@rc=0; $(PY) -m coverage run -m pytest -q test || rc=$$?; \

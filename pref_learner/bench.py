@@ -57,7 +57,7 @@ def core_benchmarks(quick: bool = False) -> Dict[str, float]:
     for k in range(n_sets):
         _, path = teacher.choose(k)
         allq, f, groups = L.choice_set(path, k)
-        sets.append((f, 0, groups))
+        sets.append((f, 0, groups, L.path_deviation(allq)))
         qs.append(allq)
 
     # --- posterior updates (issue: inference core)
@@ -134,13 +134,13 @@ def _session_sets(n: int):
     sets = []
     for k in range(n):
         _, path = teacher.choose(k)
-        _, f, groups = L.choice_set(path, k)
-        sets.append((f, groups))
+        allq, f, groups = L.choice_set(path, k)
+        sets.append((f, groups, L.path_deviation(allq)))
     return L, teacher, sets
 
 
 def _session_updates(L, sets, n_session: int, out: Dict[str, float]) -> dict:
-    """Updates at ``n_session`` stored demonstrations, both models (defaults of the learner).
+    """Time updates at ``n_session`` stored demonstrations, both models (defaults of the learner).
 
     The session is learned as the learner does (tempered updates, moves after
     each resampling). Each of the next sets is then added to that same
@@ -157,15 +157,15 @@ def _session_updates(L, sets, n_session: int, out: Dict[str, float]) -> dict:
         rng = np.random.default_rng([17, len(model)])
         post = ParticlePosterior.create(cfg, L.features.d, rng)
         t = time.perf_counter()
-        for k, (f, groups) in enumerate(sets[:n_session]):
-            post, _ = post.update(post.prepare(f, 0, groups), rng)
+        for k, (f, groups, dev) in enumerate(sets[:n_session]):
+            post, _ = post.update(post.prepare(f, 0, groups, dev), rng)
             if k + 1 == n_session // 2:
                 half = post
         out[f'session_{n_session}_learn_s_{model}'] = time.perf_counter() - t
         states[model] = (half, post)
         gate, full, errs = [], [], []
-        for k, (f, groups) in enumerate(sets[n_session:]):
-            rec = post.prepare(f, 0, groups)
+        for k, (f, groups, dev) in enumerate(sets[n_session:]):
+            rec = post.prepare(f, 0, groups, dev)
             g = np.random.default_rng([18, k])
             t = time.perf_counter()
             new, info = post.update(rec, g, move=False)
@@ -215,7 +215,7 @@ def _peer(sets, quick: bool, out: Dict[str, float]) -> None:
     d = sets[0][0].shape[1]
     cfg = PosteriorConfig(n_particles=4000, model='less', beta=5.0)
     base = ParticlePosterior.create(cfg, d, np.random.default_rng(0))
-    recs = [base.prepare(f, 0) for f, _ in sets[:4]]
+    recs = [base.prepare(f, 0) for f, *_ in sets[:4]]
     n_ref, chunk = (200_000 if quick else 1_000_000), 50_000
     g = np.random.default_rng(11)
     top, s0, s1, s2 = -np.inf, 0.0, np.zeros(d), np.zeros(d)
@@ -349,8 +349,8 @@ def _memory(teacher, sets, states, rss0: float, out: Dict[str, float]) -> None:
 
     def peak(post):
         rng = np.random.default_rng(1)
-        f, groups = sets[len(full.records)]
-        rec = post.prepare(f, 0, groups)
+        f, groups, dev = sets[len(full.records)]
+        rec = post.prepare(f, 0, groups, dev)
         with tempfile.TemporaryDirectory() as tmp:
             tracemalloc.start()
             base = tracemalloc.get_traced_memory()[0]

@@ -7,7 +7,8 @@ its alternatives, K = M + 1) and the index ``chosen`` of the demonstrated row.
 Reward weights are particles ``theta : (N, d)``; the rationality ``beta`` is a
 scalar or ``(N,)``. Every model returns ``(N,)`` log-likelihoods, float64.
 
-Two models, picked by name from :data:`MODELS`:
+Two models, registered by name in :data:`MODELS` (the one list of model names,
+:data:`MODEL_NAMES`; :class:`ChoiceModel` and :func:`register_model` add one):
 
 ``boltzmann``
     Luce's choice axiom with exponential strengths (Boltzmann rationality,
@@ -26,13 +27,14 @@ The similarity is a Gaussian kernel ``exp(-|z_i - z_k|^2 / (2 h^2))`` on
 features standardised *within the set* (similarity only; the reward uses the
 session's fixed scale). ``S`` is therefore a kernel density estimate of the set
 up to a constant. ``log S`` depends only on the set, so it is computed once
-(:func:`log_similarity_sums`) and reused for every particle and update.
+(:meth:`ChoiceModel.set_offsets`, :func:`log_similarity_sums`) with the
+configured bandwidth and reused for every particle, update and diagnostic.
 """
 
 from __future__ import annotations
 
 import math
-from typing import Callable, Mapping, Union
+from typing import Callable, Dict, Mapping, Tuple, Union
 
 import numpy as np
 from scipy.special import logsumexp
@@ -183,18 +185,162 @@ def _rewards(features: np.ndarray, theta: np.ndarray, beta: np.ndarray) -> np.nd
     return r
 
 
+def logsumexp_rows(r: np.ndarray) -> np.ndarray:
+    """Row-wise logsumexp of an (N, K) matrix, overwriting it (saves a copy)."""
+    m = r.max(axis=1)
+    r -= m[:, None]
+    np.exp(r, out=r)
+    return np.log(r.sum(axis=1)) + m
+
+
+def softmax_rows(r: np.ndarray) -> np.ndarray:
+    """Row-wise softmax of an (N, K) matrix of utilities, in place; returns it."""
+    r -= r.max(axis=1, keepdims=True)
+    np.exp(r, out=r)
+    r /= r.sum(axis=1, keepdims=True)
+    return r
+
+
+class ChoiceModel:
+    """A choice model: options' utilities for many particles, choice log-likelihoods.
+
+    Every model here is a logit on utilities ``beta theta.phi_j - o_j`` with a
+    per-set offset ``o`` (none for Boltzmann, the log similarity sums for
+    LESS); the offsets depend only on the set, so :meth:`set_offsets` computes
+    them once per set and every particle and update reuses them. To add a
+    model, subclass and :func:`register_model` an instance: its name is then
+    accepted everywhere a model is named (:data:`MODEL_NAMES`).
+
+    Two levels: :meth:`loglik` (``__call__``) and :meth:`probabilities` check
+    their inputs; :meth:`utilities` with :func:`logsumexp_rows` /
+    :func:`softmax_rows` are the unchecked, in-place kernels the posterior
+    runs over blocks of particles.
+    """
+
+    #: the registry key
+    name = ''
+    #: whether the model needs the set's similarity term (``set_offsets`` is not None)
+    uses_similarity = False
+
+    def set_offsets(self, features: np.ndarray, bandwidth: BandwidthSpec = 'scott'):
+        """Per-option offsets ``(K,)`` of a set, computed once per set; None: no offsets."""
+        return None
+
+    def utilities(self, features: np.ndarray, theta: np.ndarray, beta: np.ndarray,
+                  offsets: np.ndarray | None = None) -> np.ndarray:
+        """Utilities ``beta_n theta_n . phi_j - o_j`` : (N, K), unchecked (a new array)."""
+        r = _rewards(features, theta, beta)
+        if offsets is not None:
+            r -= offsets[None, :]
+        return r
+
+    def _checked_offsets(self, x, log_sim, bandwidth):
+        """Return the set's offsets: the given similarity term (checked) or :meth:`set_offsets`."""
+        if not self.uses_similarity:
+            return self.set_offsets(x, bandwidth)
+        if log_sim is None:
+            log_sim = self.set_offsets(x, bandwidth)
+        log_sim = np.asarray(log_sim, dtype=np.float64)
+        if log_sim.shape != (x.shape[0],):
+            raise ValueError(f'log_sim must have shape ({x.shape[0]},), got {log_sim.shape}')
+        return log_sim
+
+    def loglik(self, features: np.ndarray, chosen: int, theta: np.ndarray, beta=1.0, *,
+               log_sim: np.ndarray | None = None,
+               bandwidth: BandwidthSpec = 'scott') -> np.ndarray:
+        """Log-likelihood of ``chosen`` for each particle, ``(N,)`` (inputs checked)."""
+        x = _check_matrix(features)
+        c = _check_chosen(chosen, x.shape[0])
+        th = _check_theta(theta, x.shape[1])
+        b = _check_beta(beta, th.shape[0])
+        o = self._checked_offsets(x, log_sim, bandwidth)
+        r = self.utilities(x, th, b, o)
+        return r[:, c] - logsumexp(r, axis=1)
+
+    __call__ = loglik
+
+    def probabilities(self, features: np.ndarray, theta: np.ndarray, beta=1.0, *,
+                      log_sim: np.ndarray | None = None,
+                      bandwidth: BandwidthSpec = 'scott') -> np.ndarray:
+        """Probability of each option, ``(N, K)``, or ``(K,)`` for one ``theta (d,)``."""
+        x = _check_matrix(features)
+        single = np.ndim(theta) == 1
+        th = _check_theta(theta, x.shape[1])
+        b = _check_beta(beta, th.shape[0])
+        r = self.utilities(x, th, b, self._checked_offsets(x, log_sim, bandwidth))
+        if single:
+            r = r[0]
+            return np.exp(r - logsumexp(r))
+        return np.exp(r - logsumexp(r, axis=1, keepdims=True))
+
+    def __repr__(self) -> str:
+        return f'<choice model {self.name!r}>'
+
+
+class Boltzmann(ChoiceModel):
+    """Luce's choice axiom with exponential strengths (Boltzmann rationality)."""
+
+    name = 'boltzmann'
+
+
+class Less(ChoiceModel):
+    """Limiting Errors due to Similar Selections: offsets are the log similarity sums."""
+
+    name = 'less'
+    uses_similarity = True
+
+    def set_offsets(self, features, bandwidth='scott'):
+        return log_similarity_sums(features, bandwidth)
+
+
+#: The registry of choice models, by name; the one list of model names.
+MODELS: Dict[str, ChoiceModel] = {}
+
+
+def register_model(model: ChoiceModel) -> ChoiceModel:
+    """Add a choice model (an instance) to :data:`MODELS` under ``model.name``."""
+    if not isinstance(model, ChoiceModel) or not model.name:
+        raise ValueError(f'{model!r} is not a named ChoiceModel')
+    if model.name == BOTH or model.name in MODELS:
+        raise ValueError(f'model name {model.name!r} is taken')
+    MODELS[model.name] = model
+    global MODEL_NAMES, MODEL_CHOICES
+    MODEL_NAMES = tuple(MODELS)
+    MODEL_CHOICES = MODEL_NAMES + (BOTH,)
+    return model
+
+
+#: Where a setting may name every model at once (learn them side by side).
+BOTH = 'both'
+MODEL_NAMES: Tuple[str, ...] = ()
+MODEL_CHOICES: Tuple[str, ...] = (BOTH,)
+register_model(Boltzmann())
+register_model(Less())
+
+
+def model_names(model: str) -> Tuple[str, ...]:
+    """Return the models a setting names: one, or every registered model for ``both``."""
+    if model == BOTH:
+        return MODEL_NAMES
+    get_model(model)
+    return (model,)
+
+
+def get_model(name: str) -> ChoiceModel:
+    """Look a choice model up by name."""
+    try:
+        return MODELS[name]
+    except (KeyError, TypeError):
+        raise ValueError(f'model {name!r} is unknown; allowed: {sorted(MODELS)}') from None
+
+
 def boltzmann_loglik(features: np.ndarray, chosen: int, theta: np.ndarray, beta=1.0,
                      *, log_sim: np.ndarray | None = None) -> np.ndarray:
     """Boltzmann-rational log-likelihood of ``chosen`` for each particle, ``(N,)``.
 
     ``log_sim`` is accepted and ignored so both models share one signature.
     """
-    x = _check_matrix(features)
-    c = _check_chosen(chosen, x.shape[0])
-    th = _check_theta(theta, x.shape[1])
-    b = _check_beta(beta, th.shape[0])
-    r = _rewards(x, th, b)
-    return r[:, c] - logsumexp(r, axis=1)
+    return MODELS['boltzmann'].loglik(features, chosen, theta, beta)
 
 
 def less_loglik(features: np.ndarray, chosen: int, theta: np.ndarray, beta=1.0,
@@ -205,32 +351,8 @@ def less_loglik(features: np.ndarray, chosen: int, theta: np.ndarray, beta=1.0,
     Pass the set's precomputed ``log_sim`` (from :func:`log_similarity_sums`)
     to avoid recomputing the O(K^2) similarity term.
     """
-    x = _check_matrix(features)
-    c = _check_chosen(chosen, x.shape[0])
-    th = _check_theta(theta, x.shape[1])
-    b = _check_beta(beta, th.shape[0])
-    if log_sim is None:
-        log_sim = log_similarity_sums(x, bandwidth)
-    log_sim = np.asarray(log_sim, dtype=np.float64)
-    if log_sim.shape != (x.shape[0],):
-        raise ValueError(f'log_sim must have shape ({x.shape[0]},), got {log_sim.shape}')
-    r = _rewards(x, th, b)
-    r -= log_sim[None, :]
-    return r[:, c] - logsumexp(r, axis=1)
-
-
-MODELS: Mapping[str, Callable[..., np.ndarray]] = {
-    'boltzmann': boltzmann_loglik,
-    'less': less_loglik,
-}
-
-
-def get_model(name: str) -> Callable[..., np.ndarray]:
-    """Look a choice model up by name."""
-    try:
-        return MODELS[name]
-    except KeyError:
-        raise ValueError(f'model {name!r} is unknown; allowed: {sorted(MODELS)}') from None
+    return MODELS['less'].loglik(features, chosen, theta, beta, log_sim=log_sim,
+                                 bandwidth=bandwidth)
 
 
 def choice_probabilities(features: np.ndarray, theta: np.ndarray, beta: float = 1.0,
@@ -241,11 +363,4 @@ def choice_probabilities(features: np.ndarray, theta: np.ndarray, beta: float = 
     th = _check_theta(theta, x.shape[1])
     if th.shape[0] != 1:
         raise ValueError('choice_probabilities takes one weight vector theta (d,)')
-    b = _check_beta(beta, 1)
-    r = _rewards(x, th, b)[0]
-    get_model(model)
-    if model == 'less':
-        if log_sim is None:
-            log_sim = log_similarity_sums(x, bandwidth)
-        r = r - np.asarray(log_sim, dtype=np.float64)
-    return np.exp(r - logsumexp(r))
+    return get_model(model).probabilities(x, th[0], beta, log_sim=log_sim, bandwidth=bandwidth)

@@ -446,8 +446,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     d = sub.add_parser('demo', help='simulated teaching session over ROS 2 on this machine')
     d.add_argument('--out', default='out/demo', help='output directory (default out/demo)')
-    _learning_options(d, choices=['boltzmann', 'less', 'both'])
-    d.add_argument('--person', default='less', choices=['boltzmann', 'less'],
+    from .choice import MODEL_CHOICES, MODEL_NAMES
+    _learning_options(d, choices=list(MODEL_CHOICES))
+    d.add_argument('--person', default='less', choices=list(MODEL_NAMES),
                    help='how the simulated person chooses')
     d.add_argument('--person-beta', type=float, default=5.0,
                    help="the simulated person's rationality (the learner does not know it)")

@@ -28,7 +28,7 @@ from .posterior import ParticlePosterior
 from .progress import progress
 from .store import StateStore
 
-MODELS = ('boltzmann', 'less')
+from .choice import MODEL_NAMES as MODELS  # the registry's models, in one place
 
 
 def stored_learner(state_dir, **over) -> Learner:
@@ -49,12 +49,12 @@ def stored_learner(state_dir, **over) -> Learner:
     return Learner(cfg, scales=scales or None)
 
 
-def loo_scores(records: Sequence[Tuple[np.ndarray, np.ndarray]], configs: dict,
+def loo_scores(records: Sequence[Tuple[np.ndarray, ...]], configs: dict,
                d: int, seed: int = 0) -> Dict[str, List[float]]:
     """Leave-one-out predictive log-probability of each held-out choice, per model.
 
-    ``records``: ``(features (K, d), groups (K,))`` per demonstration (row 0
-    chosen); ``configs``: model -> :class:`PosteriorConfig`. For held-out
+    ``records``: ``(features (K, d), groups (K,)[, deviation (K,)])`` per
+    demonstration (row 0 chosen); ``configs``: model -> :class:`PosteriorConfig`. For held-out
     demonstration i the posterior is built from all the others, then scored
     on ``log sum_p w_p P(row 0 | theta_p, beta_p, level_p)`` with the choice
     probability alone: the set only depends on the task's start and goal (and
@@ -68,8 +68,8 @@ def loo_scores(records: Sequence[Tuple[np.ndarray, np.ndarray]], configs: dict,
             post = ParticlePosterior.create(pcfg, d, rng)
             for j in range(k):
                 if j != i:
-                    post, _ = post.update(post.prepare(records[j][0], 0, records[j][1]), rng)
-            rec = post.prepare(records[i][0], 0, records[i][1])
+                    post, _ = post.update(post.prepare(records[j][0], 0, *records[j][1:]), rng)
+            rec = post.prepare(records[i][0], 0, *records[i][1:])
             ll = post.record_loglik(rec, post.theta, post.beta, post.level, with_density=False)
             out[m].append(float(logsumexp(post.log_weights + ll)))
     return out
@@ -98,7 +98,7 @@ def verdict(loo: Dict[str, List[float]], level: float = 0.95) -> dict:
 
 
 def stored_choice_sets(store: StateStore, learner: Learner):
-    """Return the stored demonstrations and their ``(features, groups)`` choice sets.
+    """Return the stored demonstrations and their ``(features, groups, deviation)`` sets.
 
     Each set is drawn with the seed index its file carries, as the live
     learner drew it (a quarantined demonstration leaves a gap in the indices).
@@ -107,9 +107,9 @@ def stored_choice_sets(store: StateStore, learner: Learner):
     for path in store.demo_paths():
         demo = Demonstration.from_arrays(store.read_demo(path))
         q = prepare(demo, learner.prepare_config, learner.robot)
-        _, feats, groups = learner.choice_set(q, store.demo_index(path))
+        allq, feats, groups = learner.choice_set(q, store.demo_index(path))
         demos.append(demo)
-        records.append((feats, groups))
+        records.append((feats, groups, learner.path_deviation(allq)))
     return demos, records
 
 

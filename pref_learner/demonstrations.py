@@ -654,7 +654,8 @@ def smooth_batch(q: np.ndarray, weight: float) -> np.ndarray:
         return np.asarray(q, dtype=np.float64)
     q = np.asarray(q, dtype=np.float64)
     S = smoother_matrix(q.shape[-2], weight)
-    return np.einsum('st,...tn->...sn', S, q)
+    # one BLAS product over every trajectory (einsum's own loop was ~10x slower)
+    return np.ascontiguousarray(np.moveaxis(np.tensordot(S, q, axes=([1], [-2])), 0, -2))
 
 
 def prepare(demo: Demonstration, config: PrepareConfig, robot=None) -> np.ndarray:

@@ -29,18 +29,18 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 
 from . import __version__
-from .alternatives import SamplerConfig, set_diagnostics
+from .alternatives import SamplerConfig, path_deviation, set_diagnostics
+from .choice import BOTH, MODEL_CHOICES, MODEL_NAMES
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
                              Rejection, SegmentConfig, prepare)
 from .features import FeatureSet, default_features_path
-from .posterior import ParticlePosterior, PosteriorConfig, Summary
+from .posterior import ParticlePosterior, PosteriorConfig, Summary, set_log_similarity
 from .robot import RobotModel
 from .store import StateStore
 from .task import TaskModel, TaskRecord, draft_record, learning_hash, scaled_record
 
 log = logging.getLogger('pref_learner')
 
-MODEL_CHOICES = ('boltzmann', 'less', 'both')
 #: a demonstration whose one-step-ahead predictive p-value is below this is flagged
 ATYPICAL_PVALUE = 0.05
 
@@ -64,10 +64,10 @@ class LearnerConfig:
     mix_perturb: float = 0.0            # noisy copies of the demonstration (biased; opt-in)
     mix_planner: float = 0.0            # share of alternatives optimised under random weights
     planner_jobs: int = 1               # worker processes for planner alternatives
-    spreads: Tuple[float, ...] = (0.08,)   # option spreads; several are inferred (opt-in)
+    spreads: Tuple[float, ...] = (0.04, 0.08, 0.16)   # option spreads, inferred among them
     ascent_steps: int = 8
     ascent_step: float = 0.25
-    option_density: str = 'gaussian'    # density of a level's options: gaussian | kde
+    option_density: str = 'deviation'   # level evidence: deviation | gaussian | kde
     n_waypoints: int = 64
     resample: str = 'arc_length'
     lowpass_hz: float = 10.0
@@ -112,7 +112,7 @@ class LearnerConfig:
 
     @property
     def models(self) -> Tuple[str, ...]:
-        return ('boltzmann', 'less') if self.model == 'both' else (self.model,)
+        return MODEL_NAMES if self.model == BOTH else (self.model,)
 
     def segment_config(self) -> SegmentConfig:
         return SegmentConfig(mode=self.segmentation, speed_start=self.speed_start,
@@ -544,6 +544,14 @@ class Learner:
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
         return self.task.choice_set(q_demo, rng, weights=self._weight_source)
 
+    def path_deviation(self, allq: np.ndarray) -> np.ndarray:
+        """Each row's deviation from its straight line (:func:`~.alternatives.path_deviation`).
+
+        The evidence that tells the option spreads apart (``option_density:
+        deviation``); ``allq`` as :meth:`choice_set` returns it.
+        """
+        return path_deviation(allq, self.sampler.span)
+
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
                           demo: Optional[np.ndarray] = None, m: Optional[int] = None):
         """Draw the alternatives a demonstration from ``start`` to ``goal`` is compared with.
@@ -626,17 +634,18 @@ class Learner:
         index = len(self._demos)
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats, groups = self.choice_set(q, index)
+        dev = self.path_deviation(allq)
         new, infos, rngs, ppc, recs = {}, {}, {}, {}, {}
         before = dict(self.posteriors)
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
-            rec = recs[m] = post.prepare(feats, 0, groups)
+            rec = recs[m] = post.prepare(feats, 0, groups, dev)
             ppc[m] = post.predictive_pvalue(rec)
             new[m], infos[m] = post.update(rec, rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
-        diag = set_diagnostics(feats, 0)
+        diag = set_diagnostics(feats, 0, set_log_similarity(recs.values(), post.config.bandwidth))
         diag['predictive_pvalue'] = ppc
         diag['atypical'] = bool(diag['outside'] or min(ppc.values()) < ATYPICAL_PVALUE)
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)

@@ -24,6 +24,11 @@ fourth-order expansion of the stored sets' summed log-likelihood, checked
 against the exact one before each use (:class:`MoveTarget`), so a round of
 moves costs the same whatever the number of stored sets.
 
+Registries: the choice models are :mod:`pref_learner.choice`'s
+(``PosteriorConfig.model``); the moves' proposals are :data:`MOVES` and the
+moves' likelihood providers :data:`MOVE_LIKELIHOODS`
+(``PosteriorConfig.move_likelihood``).
+
 The object is immutable: ``update`` returns a new posterior and an
 :class:`UpdateInfo`; a rejected update raises ``ValueError`` and leaves the
 original untouched. Randomness comes only from the ``numpy.random.Generator``
@@ -36,7 +41,7 @@ import json
 import math
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
-from typing import NamedTuple, Optional, Sequence, Tuple
+from typing import Dict, NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
 from scipy.special import logsumexp
@@ -45,14 +50,6 @@ from scipy.stats import vonmises_fisher
 from . import choice
 
 SCHEMA_VERSION = 2
-
-
-def _logsumexp_rows(r: np.ndarray) -> np.ndarray:
-    """Row-wise logsumexp of an (N, K) matrix, overwriting it (saves a copy)."""
-    m = r.max(axis=1)
-    r -= m[:, None]
-    np.exp(r, out=r)
-    return np.log(r.sum(axis=1)) + m
 
 
 def log_normalise(log_w: np.ndarray) -> np.ndarray:
@@ -81,6 +78,10 @@ def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarra
     """Draw n points uniform on S^{d-1}, ``(n, d)`` (normalised Gaussians)."""
     x = rng.standard_normal((n, d))
     return x / np.linalg.norm(x, axis=1, keepdims=True)
+
+
+#: how an option level's density of the demonstration is estimated (several levels)
+OPTION_DENSITIES = ('deviation', 'gaussian', 'kde')
 
 
 def log_option_density(points: np.ndarray, x: np.ndarray, kind: str = 'gaussian') -> float:
@@ -124,10 +125,14 @@ class ChoiceRecord:
     log_sim : (K,) LESS log-similarity sums of each alternative within its level's
         set (demonstration included); ``None`` for the Boltzmann model.
     log_sim_chosen : (L,) the demonstration's log-similarity sum within each level's set.
-    log_density : (L,) log density of the demonstration's features under each level's
-        alternatives (:func:`log_option_density`). It makes levels comparable: with it the
-        likelihood is that of the demonstration's features, not only of the
-        choice among a given set (0 with one level, where it is a constant).
+    log_density : (L,) log density of the demonstration under each level's
+        alternatives (:func:`log_option_density`): of its features (``gaussian``,
+        ``kde``) or of the log of its deviation from the straight line
+        (``deviation``, a one-dimensional kernel estimate; give ``deviation (K,)``
+        to :meth:`build`, see :func:`pref_learner.alternatives.path_deviation`).
+        It makes levels comparable: with it the likelihood is that of the
+        demonstration, not only of the choice among a given set (0 with one level,
+        where it is a constant).
     """
 
     features: np.ndarray
@@ -140,10 +145,15 @@ class ChoiceRecord:
 
     @classmethod
     def build(cls, features, chosen, bandwidth='scott', with_similarity=True, groups=None,
-              n_levels: Optional[int] = None, density: str = 'gaussian'):
+              n_levels: Optional[int] = None, density: str = 'gaussian', deviation=None):
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
+        if deviation is not None:
+            deviation = np.asarray(deviation, dtype=np.float64)
+            if deviation.shape != (k,) or not np.all(np.isfinite(deviation)) \
+                    or np.any(deviation < 0):
+                raise ValueError(f'deviation must be {k} finite values >= 0, one per row')
         if groups is None:
             g = np.zeros(k, dtype=np.int64)
         else:
@@ -162,19 +172,61 @@ class ChoiceRecord:
             ls = np.zeros(k)
             lsc = np.zeros(L)
         dens = np.zeros(L)
+        if L > 1 and density == 'deviation':
+            if deviation is None:
+                raise ValueError('option density "deviation" needs the deviation of every '
+                                 'row from the straight line (several spread levels)')
+            # log scale: the levels' spreads are multiples of each other, so one
+            # bandwidth rule fits them all; the log's Jacobian is the same for every level
+            logdev = np.log(np.maximum(deviation, 1e-12))[:, None]
         for lev in range(L):
             cols = np.concatenate([[c], np.flatnonzero(g == lev)])
             if with_similarity:
                 s = choice.log_similarity_sums(x[cols], bandwidth)
                 ls[cols[1:]] = s[1:]
                 lsc[lev] = s[0]
-            if L > 1:
+            if L > 1 and density == 'deviation':
+                dens[lev] = log_option_density(logdev[cols[1:]], logdev[c], 'kde')
+            elif L > 1:
                 dens[lev] = log_option_density(x[cols[1:]], x[c], density)
         return cls(x, c, g, L, ls, lsc, dens)
 
     def columns(self, level: int) -> np.ndarray:
         """Row indices compared at ``level``: the chosen row first, then that level's."""
         return np.concatenate([[self.chosen], np.flatnonzero(self.groups == level)])
+
+    def log_similarity(self, level: int, cols: Optional[np.ndarray] = None) -> np.ndarray:
+        """Return the set's similarity term at ``level``, ordered as :meth:`columns` (a copy).
+
+        The LESS log-similarity sums of the chosen row and that level's
+        alternatives within their set, computed once when the record was
+        built; ``cols``: :meth:`columns` of ``level`` when already at hand.
+        """
+        if self.log_sim is None:
+            raise ValueError('this choice record holds no similarity term (built without it)')
+        ls = self.log_sim[self.columns(level) if cols is None else cols]
+        ls[0] = self.log_sim_chosen[level]
+        return ls
+
+
+def set_log_similarity(records, bandwidth='scott') -> np.ndarray:
+    """Return the LESS log-similarity sums ``(K,)`` of a whole set, in the records' row order.
+
+    ``records``: choice records of one set (one per model, say). The term a
+    record stored when it was built is reused when it covers the whole set
+    (one option level); otherwise it is computed once here with
+    ``bandwidth``, the configured one. For diagnostics of the set (its
+    density around the demonstration), so they use the same term as the
+    likelihood.
+    """
+    records = list(records)
+    for rec in records:
+        if rec.log_sim is not None and rec.n_levels == 1:
+            cols = rec.columns(0)
+            out = np.empty(len(cols))
+            out[cols] = rec.log_similarity(0, cols)
+            return out
+    return choice.log_similarity_sums(records[0].features, bandwidth)
 
 
 # ---------------------------------------------------------------- likelihood expansion
@@ -222,7 +274,7 @@ class LikelihoodExpansion(NamedTuple):
     quartic: np.ndarray     # (P, P): the fourth-order coefficients
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
+        """Evaluate the expanded log-likelihood at ``u (n, d)``, ``(n,)``."""
         delta = np.atleast_2d(u) - self.anchor
         a, b = np.triu_indices(delta.shape[1])
         z = delta[:, a] * delta[:, b]
@@ -237,8 +289,9 @@ def expand_loglik(records: Sequence[ChoiceRecord], level: int, anchor: np.ndarra
     """Expand the summed log-likelihood of ``records`` at spread ``level`` around ``anchor``.
 
     ``anchor (d,)`` is a point ``u = beta theta``; ``less`` subtracts the
-    stored log-similarities (the LESS model). The cost is O(records x M x d^4)
-    once, in blocks of records (see :class:`LikelihoodExpansion`).
+    stored log-similarities (a model that ``uses_similarity``, LESS). The
+    cost is O(records x M x d^4) once, in blocks of records (see
+    :class:`LikelihoodExpansion`).
     """
     u0 = np.asarray(anchor, dtype=np.float64)
     d = u0.shape[0]
@@ -255,11 +308,7 @@ def expand_loglik(records: Sequence[ChoiceRecord], level: int, anchor: np.ndarra
         for rec in records[a:a + _EXPANSION_BLOCK]:
             cols = rec.columns(level)
             xs.append(rec.features[cols])
-            if less:
-                s = rec.log_sim[cols]
-                s[0] = rec.log_sim_chosen[level]
-            else:
-                s = np.zeros(len(cols))
+            s = rec.log_similarity(level, cols) if less else np.zeros(len(cols))
             ss.append(s)
             sizes.append(len(cols))
             value += float(u0 @ rec.features[rec.chosen] - s[0] + rec.log_density[level])
@@ -321,10 +370,7 @@ class StackedSets:
             for rec in self.records[a:a + _EXPANSION_BLOCK]:
                 cols = rec.columns(g)
                 xs.append(rec.features[cols])
-                s = np.zeros(len(cols))
-                if self.less:
-                    s = rec.log_sim[cols]
-                    s[0] = rec.log_sim_chosen[g]
+                s = rec.log_similarity(g, cols) if self.less else np.zeros(len(cols))
                 ss.append(s)
                 sizes.append(len(cols))
                 chosen = chosen + rec.features[rec.chosen]
@@ -334,7 +380,7 @@ class StackedSets:
                    np.concatenate([[0], np.cumsum(sizes)[:-1]]), chosen, constant)
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
-        """Summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
+        """Sum the log-likelihoods at ``u = beta theta (n, d)``, ``(n,)``."""
         out = np.zeros(u.shape[0])
         for x, s, sizes, starts, chosen, constant in self._blocks():
             for a in range(0, u.shape[0], self.BLOCK):
@@ -406,6 +452,184 @@ class MoveTarget:
         return out
 
 
+# ---------------------------------------------------------------- moves
+class CoordinateMove:
+    """A symmetric Metropolis-Hastings proposal for one coordinate of the particles.
+
+    ``coordinate`` names the posterior's attribute it moves; where that is
+    None (beta fixed, one option level) the move is off. ``dims`` is the
+    number of continuous dimensions it adds to the step's scaling (the
+    shared ``2.38 / sqrt(dims)`` base), ``setup`` the constants of one call
+    of the moves (taken from the cloud before it, fixed during the call) and
+    ``propose`` a proposal given ``scale`` (the tuned step factor times that
+    base). Every move of a round is accepted or rejected together; the
+    registry's order (:data:`MOVES`) is the order of the random draws.
+    """
+
+    name = ''
+    coordinate = ''
+
+    def dims(self, post: 'ParticlePosterior') -> int:
+        return 0
+
+    def setup(self, post: 'ParticlePosterior'):
+        return None
+
+    def propose(self, value: np.ndarray, scale: float, const, rng: np.random.Generator):
+        raise NotImplementedError
+
+
+class SphereMove(CoordinateMove):
+    """``theta' = normalise(theta + s eps)``, eps ~ N(0, I): symmetric (depends on theta.theta').
+
+    ``s``: the cloud's angular spread times the scale, within [1e-5, 1.5].
+    """
+
+    name = 'sphere'
+    coordinate = 'theta'
+
+    def dims(self, post):
+        return post.d - 1
+
+    def setup(self, post):
+        r_len = float(np.linalg.norm(post.theta.mean(axis=0)))
+        return math.sqrt(max(2.0 * (1.0 - min(r_len, 1.0)) / max(post.d - 1, 1), 1e-10))
+
+    def propose(self, theta, scale, spread, rng):
+        step = float(np.clip(scale * spread, 1e-5, 1.5))
+        prop = theta + step * rng.standard_normal(theta.shape)
+        prop /= np.linalg.norm(prop, axis=1, keepdims=True)
+        return prop
+
+
+class LogBetaMove(CoordinateMove):
+    """Gaussian random walk of log beta, step proportional to its spread (at least 0.02)."""
+
+    name = 'log_beta'
+    coordinate = 'log_beta'
+
+    def dims(self, post):
+        return 1
+
+    def setup(self, post):
+        return float(np.std(post.log_beta))
+
+    def propose(self, log_beta, scale, sd, rng):
+        return log_beta + scale * max(sd, 0.02) * rng.standard_normal(log_beta.shape[0])
+
+
+class LevelMove(CoordinateMove):
+    """The option level moves to a neighbour with probability 0.3 (the prior rejects outside)."""
+
+    name = 'level'
+    coordinate = 'level'
+
+    def propose(self, level, scale, const, rng):
+        n = level.shape[0]
+        jump = np.where(rng.random(n) < 0.3, rng.choice([-1, 1], n), 0)
+        return level + jump
+
+
+class MoveLikelihood:
+    """Provides the stored sets' log-likelihood that one call of the moves evaluates.
+
+    ``target(post, theta, beta, level)`` returns a :class:`MoveTarget`, one
+    fixed function for the whole call; selected by ``PosteriorConfig.move_likelihood``.
+    """
+
+    name = ''
+
+    def target(self, post: 'ParticlePosterior', theta: np.ndarray, beta: np.ndarray,
+               level: Optional[np.ndarray]) -> MoveTarget:
+        raise NotImplementedError
+
+
+class ExactMoveLikelihood(MoveLikelihood):
+    """Every stored set, exactly, at every move."""
+
+    name = 'exact'
+
+    def target(self, post, theta, beta, level):
+        return MoveTarget(post)
+
+
+class ExpansionMoveLikelihood(MoveLikelihood):
+    """The checked fourth-order expansion (see :meth:`ParticlePosterior.move_target`)."""
+
+    name = 'expansion'
+
+    def target(self, post, theta, beta, level):
+        cfg = post.config
+        if not post.records:
+            return MoveTarget(post)
+        less = cfg.choice_model.uses_similarity
+        u = beta[:, None] * theta
+        w = post.weights
+        anchor = w @ u
+        delta = u - anchor
+        cov = (delta * w[:, None]).T @ delta
+        cov += np.eye(post.d) * (1e-12 + 1e-9 * np.trace(cov) / post.d)
+        precision = np.linalg.inv(cov)
+        probe = MoveTarget(post, None, anchor, precision)
+        r = probe.radii(u)
+        n = len(r)
+        if not r.max() > 0:                # one point: no spread to fit a trust region to
+            return MoveTarget(post)
+        order = np.argsort(r, kind='stable')
+        spread = N_CHECK - N_OUTER
+        picks = np.concatenate([order[((np.arange(spread) + 0.5) * n / spread).astype(np.int64)],
+                                order[-N_OUTER:]])
+        tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
+        split = len(post.records)
+        for _ in range(3):
+            prefix = post.records[:split]
+            expansions, errs = [], []
+            for g in range(cfg.n_levels):    # every level at every checked point: particles jump
+                ex = expand_loglik(prefix, g, anchor, less)
+                expansions.append(ex)
+                errs.append(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
+            err = np.abs(np.array(errs))                 # (levels, checked particles)
+            mean, worst = float(err[:, :len(picks) - N_OUTER].mean()), float(err.max())
+            if mean <= tol and worst <= cap:
+                return MoveTarget(post, expansions, anchor, precision,
+                                  TRUST_REACH * float(r.max()), mean, worst, split)
+            # the error grows about in proportion to the number of expanded sets
+            split = int(0.8 * split * min(tol / mean, cap / worst))
+            if split < MIN_EXPANDED:
+                break
+        return MoveTarget(post, error=mean, error_max=worst)
+
+
+#: The registry of moves, in the order of their random draws (changing it changes results).
+MOVES: Dict[str, CoordinateMove] = {}
+#: The registry of the moves' likelihood providers (``PosteriorConfig.move_likelihood``).
+MOVE_LIKELIHOODS: Dict[str, MoveLikelihood] = {}
+
+
+def register_move(move: CoordinateMove) -> CoordinateMove:
+    """Add a coordinate move (an instance) to :data:`MOVES`, after the others."""
+    if not isinstance(move, CoordinateMove) or not move.name or move.name in MOVES:
+        raise ValueError(f'{move!r} is not a CoordinateMove with a new name')
+    MOVES[move.name] = move
+    return move
+
+
+def register_move_likelihood(provider: MoveLikelihood) -> MoveLikelihood:
+    """Add a likelihood provider (an instance) to :data:`MOVE_LIKELIHOODS`."""
+    if not isinstance(provider, MoveLikelihood) or not provider.name \
+            or provider.name in MOVE_LIKELIHOODS:
+        raise ValueError(f'{provider!r} is not a MoveLikelihood with a new name')
+    MOVE_LIKELIHOODS[provider.name] = provider
+    return provider
+
+
+for _m in (SphereMove(), LogBetaMove(), LevelMove()):
+    register_move(_m)
+for _p in (ExactMoveLikelihood(), ExpansionMoveLikelihood()):
+    register_move_likelihood(_p)
+del _m, _p
+
+
 @dataclass(frozen=True)
 class PosteriorConfig:
     """Hyperparameters of the particle posterior (stored unchanged).
@@ -449,7 +673,7 @@ class PosteriorConfig:
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:
             raise ValueError(f'n_particles must be an integer >= 1, got {self.n_particles!r}')
-        choice.get_model(self.model)
+        choice.get_model(self.model)          # a registered choice model
         if not (math.isfinite(self.beta) and self.beta > 0):
             raise ValueError(f'beta must be > 0, got {self.beta!r}')
         if self.beta_range is not None:
@@ -473,15 +697,15 @@ class PosteriorConfig:
         if not 0.0 <= self.diversity_target <= 1.0:
             raise ValueError(f'diversity_target must be in [0, 1], got '
                              f'{self.diversity_target!r}')
-        if self.option_density not in ('gaussian', 'kde'):
+        if self.option_density not in OPTION_DENSITIES:
             raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
-                             'gaussian, kde')
+                             f'{", ".join(OPTION_DENSITIES)}')
         if not 0 <= self.tempering_move_rounds <= self.max_move_rounds:
             raise ValueError(f'tempering_move_rounds must be in [0, max_move_rounds], got '
                              f'{self.tempering_move_rounds!r}')
-        if self.move_likelihood not in ('exact', 'expansion'):
+        if self.move_likelihood not in MOVE_LIKELIHOODS:
             raise ValueError(f'move_likelihood {self.move_likelihood!r} is unknown; allowed: '
-                             'exact, expansion')
+                             f'{", ".join(MOVE_LIKELIHOODS)}')
         if not (math.isfinite(self.expansion_tol) and self.expansion_tol > 0):
             raise ValueError(f'expansion_tol must be > 0, got {self.expansion_tol!r}')
         if not isinstance(self.n_levels, (int, np.integer)) or self.n_levels < 1:
@@ -494,6 +718,11 @@ class PosteriorConfig:
     @property
     def infer_beta(self) -> bool:
         return self.beta_range is not None
+
+    @property
+    def choice_model(self) -> choice.ChoiceModel:
+        """The registered :class:`choice.ChoiceModel` named by ``model``."""
+        return choice.get_model(self.model)
 
 
 class UpdateInfo(NamedTuple):
@@ -682,10 +911,11 @@ class ParticlePosterior:
 
         ``sel``: the particles at that level (a slice when it is all of them),
         ``cols``: the rows they compare (chosen first), ``r : (len(sel), len(cols))``:
-        ``beta theta.phi`` (minus the LESS log-similarity), the one place the
-        models' utilities are formed.
+        the choice model's utilities (:meth:`choice.ChoiceModel.utilities`,
+        ``beta theta.phi`` minus the set's stored offsets).
         """
         x = record.features
+        model = self.config.choice_model
         lev = np.zeros(theta.shape[0], dtype=np.int64) if level is None else level
         for g in range(record.n_levels):
             sel = np.flatnonzero(lev == g)
@@ -694,13 +924,8 @@ class ParticlePosterior:
             if sel.size == theta.shape[0]:
                 sel = slice(None)
             cols = record.columns(g)
-            r = theta[sel] @ x[cols].T
-            r *= beta[sel, None]
-            if self.config.model == 'less':
-                ls = record.log_sim[cols]
-                ls[0] = record.log_sim_chosen[g]
-                r -= ls[None, :]
-            yield g, sel, cols, r
+            offsets = record.log_similarity(g, cols) if model.uses_similarity else None
+            yield g, sel, cols, model.utilities(x[cols], theta[sel], beta[sel], offsets)
 
     def record_loglik(self, record: ChoiceRecord, theta: np.ndarray, beta: np.ndarray,
                       level: Optional[np.ndarray] = None,
@@ -719,8 +944,8 @@ class ParticlePosterior:
             for g, sel, _, r in self._level_utilities(record, theta[a:b], beta[a:b],
                                                       None if level is None else level[a:b]):
                 chosen = r[:, 0].copy()
-                part[sel] = chosen - _logsumexp_rows(r) + (record.log_density[g]
-                                                           if with_density else 0.0)
+                part[sel] = chosen - choice.logsumexp_rows(r) + (record.log_density[g]
+                                                                 if with_density else 0.0)
         return out
 
     def total_loglik(self, theta: np.ndarray, beta: np.ndarray,
@@ -741,10 +966,7 @@ class ParticlePosterior:
         out = np.zeros(record.features.shape[0])
         for _, sel, cols, r in self._level_utilities(record, self.theta, self.beta,
                                                      self.level):
-            r -= r.max(axis=1, keepdims=True)
-            np.exp(r, out=r)
-            r /= r.sum(axis=1, keepdims=True)
-            out[cols] += w[sel] @ r
+            out[cols] += w[sel] @ choice.softmax_rows(r)
         return out
 
     def predictive_pvalue(self, record: ChoiceRecord) -> float:
@@ -760,11 +982,13 @@ class ParticlePosterior:
         return float(np.sum(p[p <= p[record.chosen] * (1.0 + 1e-12)]))
 
     # ------------------------------------------------------------ update
-    def prepare(self, features, chosen, groups=None) -> ChoiceRecord:
+    def prepare(self, features, chosen, groups=None, deviation=None) -> ChoiceRecord:
         """Validate one choice set and precompute what this model needs.
 
         ``groups (K,)``: the spread level of each alternative (needed with
-        more than one level).
+        more than one level); ``deviation (K,)``: each row's deviation from the
+        straight line (needed with several levels and ``option_density:
+        deviation``).
         """
         x = choice._check_matrix(features)
         if x.shape[1] != self.d:
@@ -774,15 +998,16 @@ class ParticlePosterior:
             raise ValueError(f'the posterior has {self.config.n_levels} spread levels; give '
                              'the spread level (groups) of every alternative')
         return ChoiceRecord.build(x, chosen, self.config.bandwidth,
-                                  with_similarity=self.config.model == 'less', groups=groups,
+                                  with_similarity=self.config.choice_model.uses_similarity,
+                                  groups=groups,
                                   n_levels=self.config.n_levels,
-                                  density=self.config.option_density)
+                                  density=self.config.option_density, deviation=deviation)
 
     def update(self, record, rng: np.random.Generator, move: bool = True):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
 
-        ``record`` is a :class:`ChoiceRecord`, a ``(features (K, d), chosen)``
-        pair or a ``(features, chosen, groups)`` triple. The new likelihood
+        ``record`` is a :class:`ChoiceRecord` or the arguments of :meth:`prepare`
+        as a tuple: ``(features (K, d), chosen[, groups[, deviation]])``. The new likelihood
         enters in steps ``0 < phi_1 < ... < 1`` chosen by bisection so the ESS
         stays at least ``ess_target`` x N in each (Del Moral, Doucet & Jasra
         2006); between steps the particles are resampled and moved under the
@@ -797,10 +1022,10 @@ class ParticlePosterior:
         elif record.n_levels != self.config.n_levels:
             raise ValueError(f'record has {record.n_levels} spread levels, the posterior '
                              f'{self.config.n_levels}')
-        elif self.config.model == 'less' and record.log_sim is None:
-            record = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
-                                        True, record.groups, record.n_levels,
-                                        self.config.option_density)
+        elif self.config.choice_model.uses_similarity and record.log_sim is None:
+            sim = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
+                                     True, record.groups, record.n_levels, 'gaussian')
+            record = replace(sim, log_density=record.log_density)
         ll = self.record_loglik(record, self.theta, self.beta, self.level)
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '
@@ -864,7 +1089,7 @@ class ParticlePosterior:
 
     def move_target(self, theta: np.ndarray, beta: np.ndarray,
                     level: Optional[np.ndarray]) -> MoveTarget:
-        """The stored sets' log-likelihood for moves starting from these particles.
+        """Return the stored sets' log-likelihood for moves starting from these particles.
 
         With ``move_likelihood: expansion``: each level's
         :class:`LikelihoodExpansion` around the weighted mean of
@@ -879,56 +1104,21 @@ class ParticlePosterior:
         times; the newer sets stay exact; below :data:`MIN_EXPANDED` sets the
         moves are exact. Deterministic: no random numbers are drawn.
         """
-        cfg = self.config
-        if cfg.move_likelihood == 'exact' or not self.records:
-            return MoveTarget(self)
-        less = cfg.model == 'less'
-        u = beta[:, None] * theta
-        w = self.weights
-        anchor = w @ u
-        delta = u - anchor
-        cov = (delta * w[:, None]).T @ delta
-        cov += np.eye(self.d) * (1e-12 + 1e-9 * np.trace(cov) / self.d)
-        precision = np.linalg.inv(cov)
-        probe = MoveTarget(self, None, anchor, precision)
-        r = probe.radii(u)
-        n = len(r)
-        if not r.max() > 0:                # one point: no spread to fit a trust region to
-            return MoveTarget(self)
-        order = np.argsort(r, kind='stable')
-        spread = N_CHECK - N_OUTER
-        picks = np.concatenate([order[((np.arange(spread) + 0.5) * n / spread).astype(np.int64)],
-                                order[-N_OUTER:]])
-        tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
-        split = len(self.records)
-        for _ in range(3):
-            prefix = self.records[:split]
-            expansions, errs = [], []
-            for g in range(cfg.n_levels):    # every level at every checked point: particles jump
-                ex = expand_loglik(prefix, g, anchor, less)
-                expansions.append(ex)
-                errs.append(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
-            err = np.abs(np.array(errs))                 # (levels, checked particles)
-            mean, worst = float(err[:, :len(picks) - N_OUTER].mean()), float(err.max())
-            if mean <= tol and worst <= cap:
-                return MoveTarget(self, expansions, anchor, precision,
-                                  TRUST_REACH * float(r.max()), mean, worst, split)
-            # the error grows about in proportion to the number of expanded sets
-            split = int(0.8 * split * min(tol / mean, cap / worst))
-            if split < MIN_EXPANDED:
-                break
-        return MoveTarget(self, error=mean, error_max=worst)
+        provider = MOVE_LIKELIHOODS[self.config.move_likelihood]
+        return provider.target(self, theta, beta, level)
 
     def _move(self, rng, extra: Optional[ChoiceRecord], phi: float, ll_extra):
         """Metropolis-Hastings moves on equally weighted particles.
 
         Target: prior x all stored likelihoods (x the likelihood of ``extra``
-        raised to ``phi`` while tempering). Proposal: ``theta' =
-        normalise(theta + s eps)``, eps ~ N(0, I), whose density depends only
-        on theta.theta', hence symmetric; ``s`` follows the cloud's angular
-        spread times a factor tuned toward 15-40 % acceptance; log beta moves
-        by a Gaussian step proportional to its spread; the spread level moves
-        to a neighbour with probability 0.3 (rejected outside the range).
+        raised to ``phi`` while tempering). Proposals: the registered moves
+        (:data:`MOVES`, in that order) of the coordinates the posterior has:
+        ``theta' = normalise(theta + s eps)``, eps ~ N(0, I), whose density
+        depends only on theta.theta', hence symmetric; ``s`` follows the
+        cloud's angular spread times a factor tuned toward 15-40 % acceptance;
+        log beta moves by a Gaussian step proportional to its spread; the
+        spread level moves to a neighbour with probability 0.3 (rejected
+        outside the range).
         Rounds run until ``diversity_target`` of the particles have moved at
         least once (at least ``n_moves``, at most ``max_move_rounds``); while
         tempering (``extra`` given) exactly ``tempering_move_rounds`` rounds.
@@ -937,20 +1127,20 @@ class ParticlePosterior:
         moved_fraction)``.
         """
         cfg = self.config
-        theta, log_beta, level, log_lik = self.theta, self.log_beta, self.level, self.log_lik
-        n, d = theta.shape
+        log_lik = self.log_lik
+        n = self.n_particles
         if (cfg.max_move_rounds == 0 or (not self.records and extra is None)
                 or (extra is not None and cfg.tempering_move_rounds == 0)):
             return self, ll_extra, float('nan'), 0, 0.0
-        target = self.move_target(theta, self.beta, level)
+        moves = [m for m in MOVES.values() if getattr(self, m.coordinate) is not None]
+        state = {m.coordinate: getattr(self, m.coordinate) for m in moves}
+        target = self.move_target(self.theta, self.beta, self.level)
         if target.approximate or self.log_lik_approximate:
-            log_lik = target(theta, self.beta, level)
-        r_len = float(np.linalg.norm(theta.mean(axis=0)))
-        spread = math.sqrt(max(2.0 * (1.0 - min(r_len, 1.0)) / max(d - 1, 1), 1e-10))
-        base = 2.38 / math.sqrt(max(d - 1 + (log_beta is not None), 1))
+            log_lik = target(self.theta, self.beta, self.level)
+        consts = [m.setup(self) for m in moves]
+        base = 2.38 / math.sqrt(max(sum(m.dims(self) for m in moves), 1))
         factor = float(self.step_size)
-        sd_lb = float(np.std(log_beta)) if log_beta is not None else 0.0
-        lp = self.log_prior(theta, log_beta, level)
+        lp = self.log_prior(self.theta, self.log_beta, self.level)
         moved = np.zeros(n, dtype=bool)
         rates = []
         # between tempering steps (``extra`` given) a fixed number of rounds: publication
@@ -959,39 +1149,31 @@ class ParticlePosterior:
         for rnd in range(limit):
             if rnd >= cfg.n_moves and moved.mean() >= cfg.diversity_target:
                 break
-            step = float(np.clip(factor * base * spread, 1e-5, 1.5))
-            prop = theta + step * rng.standard_normal((n, d))
-            prop /= np.linalg.norm(prop, axis=1, keepdims=True)
-            prop_lb = None
-            if log_beta is not None:
-                prop_lb = log_beta + factor * base * max(sd_lb, 0.02) * rng.standard_normal(n)
-            prop_lv = None
-            if level is not None:
-                jump = np.where(rng.random(n) < 0.3, rng.choice([-1, 1], n), 0)
-                prop_lv = level + jump
-            lp_new = self.log_prior(prop, prop_lb, prop_lv)
+            scale = factor * base
+            prop = {m.coordinate: m.propose(state[m.coordinate], scale, c, rng)
+                    for m, c in zip(moves, consts)}
+            prop_lb, prop_lv = prop.get('log_beta'), prop.get('level')
+            lp_new = self.log_prior(prop['theta'], prop_lb, prop_lv)
             beta_new = self.beta if prop_lb is None else np.exp(prop_lb)
             ok = np.isfinite(lp_new)
             lv_eval = None if prop_lv is None else np.clip(prop_lv, 0, cfg.n_levels - 1)
-            ll_new = target(prop, beta_new, lv_eval)
+            ll_new = target(prop['theta'], beta_new, lv_eval)
             cur_extra = 0.0
             new_extra = 0.0
             if extra is not None:
-                ex = self.record_loglik(extra, prop, beta_new, lv_eval)
+                ex = self.record_loglik(extra, prop['theta'], beta_new, lv_eval)
                 new_extra = phi * ex
                 cur_extra = phi * ll_extra
             log_a = np.where(ok, (lp_new + ll_new + new_extra) - (lp + log_lik + cur_extra),
                              -np.inf)
             accept = np.log(rng.random(n)) < log_a
-            theta = np.where(accept[:, None], prop, theta)
+            for key, value in prop.items():
+                state[key] = np.where(accept.reshape((n,) + (1,) * (value.ndim - 1)), value,
+                                      state[key])
             log_lik = np.where(accept, ll_new, log_lik)
             lp = np.where(accept, lp_new, lp)
             if extra is not None:
                 ll_extra = np.where(accept, ex, ll_extra)
-            if log_beta is not None:
-                log_beta = np.where(accept, prop_lb, log_beta)
-            if level is not None:
-                level = np.where(accept, prop_lv, level)
             rate = float(accept.mean())
             rates.append(rate)
             moved |= accept
@@ -999,8 +1181,8 @@ class ParticlePosterior:
                 factor *= 0.6
             elif rate > 0.4:
                 factor = min(factor * 1.5, 10.0)
-        new = replace(self, theta=theta, log_beta=log_beta, level=level, log_lik=log_lik,
-                      step_size=factor, log_lik_approximate=target.approximate,
+        new = replace(self, **state, log_lik=log_lik, step_size=factor,
+                      log_lik_approximate=target.approximate,
                       likelihood_error=target.error if target.approximate else float('nan'))
         acc = float(np.mean(rates)) if rates else float('nan')
         return new, ll_extra, acc, len(rates), float(moved.mean())

@@ -21,8 +21,7 @@ from typing import Dict
 
 import numpy as np
 
-from .choice import log_similarity_sums
-from .posterior import ParticlePosterior
+from .posterior import ParticlePosterior, set_log_similarity
 from .safety import CAUTION
 from .store import StateStore
 
@@ -111,7 +110,7 @@ def _plot_marginals(names, posts, path):
 def _plot_density(post, path):
     def draw(i, ax):
         r = post.records[i]
-        ls = r.log_sim if r.log_sim is not None else log_similarity_sums(r.features)
+        ls = set_log_similarity([r], post.config.bandwidth)
         rel = ls - np.median(ls)
         ax.hist(rel, bins=30, color='0.6')
         ax.axvline(rel[r.chosen], color='k', lw=2)

@@ -66,21 +66,26 @@ def _joint_kind(jmodel) -> Tuple[str, np.ndarray]:
 
 
 def _rotate(r: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """``r @ v`` for a batch of rotations ``r (b, 3, 3)`` and one vector ``v (3,)``."""
+    """``r v`` for rotations ``r (3, 3, b)`` (component-major) and ``v (3,)``: ``(3, b)``."""
     nz = np.flatnonzero(v)
     if nz.size == 0:
-        return np.zeros(r.shape[:-1])
-    out = r[:, :, nz[0]] * v[nz[0]]
+        return np.zeros(r.shape[::2])
+    out = r[:, nz[0]] * v[nz[0]]
     for i in nz[1:]:
-        out = out + r[:, :, i] * v[i]
+        out = out + r[:, i] * v[i]
     return out
 
 
+def _times(r: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """``r m`` for ``r (3, 3, b)`` (component-major) and one fixed ``m (3, 3)``."""
+    return np.stack([_rotate(r, m[:, k]) for k in range(3)], axis=1)
+
+
 def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """``np.cross(a, b)`` over the last axis (length 3), without its per-call overhead."""
-    return np.stack([a[..., 1] * b[..., 2] - a[..., 2] * b[..., 1],
-                     a[..., 2] * b[..., 0] - a[..., 0] * b[..., 2],
-                     a[..., 0] * b[..., 1] - a[..., 1] * b[..., 0]], axis=-1)
+    """Cross product of component-major vectors ``(3, b)``."""
+    return np.stack([a[1] * b[2] - a[2] * b[1],
+                     a[2] * b[0] - a[0] * b[2],
+                     a[0] * b[1] - a[1] * b[0]])
 
 
 def _skew(a: np.ndarray) -> np.ndarray:
@@ -294,48 +299,52 @@ class RobotModel:
         qf = q.reshape(-1, self.n)
         b = qf.shape[0]
         model = self.model
-        eye = np.broadcast_to(np.eye(3), (b, 3, 3))
+        # Component-major layout: a rotation is (3, 3, b) and a position (3, b),
+        # so every operation runs on contiguous rows of b values (the
+        # batch-major layout's strided columns took about twice as long).
+        eye = np.zeros((3, 3, b))
+        eye[0, 0] = eye[1, 1] = eye[2, 2] = 1.0
         rot = {0: eye}
-        pos = {0: np.zeros((b, 3))}
+        pos = {0: np.zeros((3, b))}
         axis_w, origin_w = {}, {}
         for jid in range(1, model.njoints):
             parent = model.parents[jid]
             rp, tp = self._placements[jid]
             rpar = rot[parent]
-            r0 = rpar if self._identity[jid] else rpar @ rp      # (b, 3, 3)
-            p0 = pos[parent] + _rotate(rpar, tp)                   # (b, 3)
+            r0 = rpar if self._identity[jid] else _times(rpar, rp)
+            p0 = pos[parent] + _rotate(rpar, tp)
             kind, a = self._kinds[jid], self._axes[jid]
             iq = self._q_of_jid.get(jid)
             qj = qf[:, iq] if iq is not None else np.zeros(b)
             if kind == 'prismatic':
                 r = r0
-                p = p0 + (r0 @ a) * qj[:, None]
+                p = p0 + _rotate(r0, a) * qj
             else:
                 c, s = np.cos(qj), np.sin(qj)
+                r = np.empty_like(r0)
                 if np.array_equal(a, _AXES['Z']):
-                    r = np.empty_like(r0)
-                    r[:, :, 0] = r0[:, :, 0] * c[:, None] + r0[:, :, 1] * s[:, None]
-                    r[:, :, 1] = r0[:, :, 1] * c[:, None] - r0[:, :, 0] * s[:, None]
-                    r[:, :, 2] = r0[:, :, 2]
+                    r[:, 0] = r0[:, 0] * c + r0[:, 1] * s
+                    r[:, 1] = r0[:, 1] * c - r0[:, 0] * s
+                    r[:, 2] = r0[:, 2]
                 elif np.array_equal(a, _AXES['Y']):
-                    r = np.empty_like(r0)
-                    r[:, :, 0] = r0[:, :, 0] * c[:, None] - r0[:, :, 2] * s[:, None]
-                    r[:, :, 2] = r0[:, :, 2] * c[:, None] + r0[:, :, 0] * s[:, None]
-                    r[:, :, 1] = r0[:, :, 1]
+                    r[:, 0] = r0[:, 0] * c - r0[:, 2] * s
+                    r[:, 2] = r0[:, 2] * c + r0[:, 0] * s
+                    r[:, 1] = r0[:, 1]
                 elif np.array_equal(a, _AXES['X']):
-                    r = np.empty_like(r0)
-                    r[:, :, 1] = r0[:, :, 1] * c[:, None] + r0[:, :, 2] * s[:, None]
-                    r[:, :, 2] = r0[:, :, 2] * c[:, None] - r0[:, :, 1] * s[:, None]
-                    r[:, :, 0] = r0[:, :, 0]
-                else:
+                    r[:, 1] = r0[:, 1] * c + r0[:, 2] * s
+                    r[:, 2] = r0[:, 2] * c - r0[:, 1] * s
+                    r[:, 0] = r0[:, 0]
+                else:   # Rodrigues: R(q) = I + sin q K + (1 - cos q) K^2
                     k = _skew(a)
-                    rq = (np.eye(3)[None] + s[:, None, None] * k[None]
-                          + (1 - c)[:, None, None] * (k @ k)[None])
-                    r = r0 @ rq
+                    k2 = k @ k
+                    for col in range(3):
+                        rq = (np.eye(3)[:, col][:, None] + np.outer(k[:, col], s)
+                              + np.outer(k2[:, col], 1.0 - c))          # (3, b)
+                        r[:, col] = sum(r0[:, m] * rq[m] for m in range(3))
                 p = p0
             rot[jid], pos[jid] = r, p
             if with_jacobian and iq is not None:
-                axis_w[jid] = r0 @ a
+                axis_w[jid] = _rotate(r0, a)
                 origin_w[jid] = p
         names = tuple(frames)
         fpos = np.empty((b, len(names), 3))
@@ -349,8 +358,10 @@ class RobotModel:
             j = fr.parentJoint
             rf = np.array(fr.placement.rotation)
             tf = np.array(fr.placement.translation)
-            fpos[:, k] = pos[j] + _rotate(rot[j], tf)
-            frot[:, k] = rot[j] if np.array_equal(rf, np.eye(3)) else rot[j] @ rf
+            pk = pos[j] + _rotate(rot[j], tf)
+            fpos[:, k] = pk.T
+            frot[:, k] = (rot[j] if np.array_equal(rf, np.eye(3))
+                          else _times(rot[j], rf)).transpose(2, 0, 1)
             if with_jacobian:
                 anc = j
                 while anc > 0:
@@ -358,10 +369,10 @@ class RobotModel:
                     if iq is not None:
                         w = axis_w[anc]
                         if self._kinds[anc] == 'prismatic':
-                            jp[:, k, :, iq] = w
+                            jp[:, k, :, iq] = w.T
                         else:
-                            jp[:, k, :, iq] = _cross(w, fpos[:, k] - origin_w[anc])
-                            jr[:, k, :, iq] = w
+                            jp[:, k, :, iq] = _cross(w, pk - origin_w[anc]).T
+                            jr[:, k, :, iq] = w.T
                     anc = model.parents[anc]
         out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),
                          frot.reshape(lead + (len(names), 3, 3)))

@@ -57,7 +57,7 @@ from . import __version__
 from .progress import progress, quiet
 from .safety import CAUTION
 
-MODELS = ('boltzmann', 'less')
+from .choice import MODEL_NAMES as MODELS  # the registry's models, in one place
 QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 #: one BLAS thread per worker process (set before the worker imports numpy)
 WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THREADS': '1'}

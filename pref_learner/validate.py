@@ -35,7 +35,7 @@ from . import choice
 from .posterior import weighted_quantile
 from .progress import progress
 
-MODELS = ('boltzmann', 'less')
+MODELS = choice.MODEL_NAMES
 
 
 def _plt():

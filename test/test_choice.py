@@ -167,3 +167,64 @@ def test_bad_bandwidth():
             choice.log_similarity_sums(x, bad)
     with pytest.raises(ValueError, match='model'):
         choice.get_model('softmax')
+
+
+def test_model_names_come_from_the_registry():
+    # One list of model names: every place that names the models reads the registry.
+    from pref_learner import compare, learner, study, validate
+    assert choice.MODEL_NAMES == tuple(choice.MODELS) == ('boltzmann', 'less')
+    assert choice.MODEL_CHOICES == choice.MODEL_NAMES + ('both',)
+    assert learner.MODEL_CHOICES == choice.MODEL_CHOICES
+    assert compare.MODELS == study.MODELS == validate.MODELS == choice.MODEL_NAMES
+    assert learner.LearnerConfig(model='both').models == choice.MODEL_NAMES
+    with pytest.raises(ValueError, match='taken'):
+        choice.register_model(choice.Boltzmann())
+
+
+def test_model_probabilities_are_the_exponentiated_log_likelihoods():
+    # Definition (common practice): P(j) = exp(log P(chosen = j)) for every particle; each
+    # row sums to one; one weight vector gives choice_probabilities' vector.
+    rng = np.random.default_rng(8)
+    x = rng.standard_normal((12, 3))
+    th = rng.standard_normal((7, 3))
+    beta = rng.uniform(0.5, 4.0, 7)
+    for name, model in choice.MODELS.items():
+        p = model.probabilities(x, th, beta, bandwidth=0.7)
+        ref = np.exp(np.stack([model.loglik(x, j, th, beta, bandwidth=0.7)
+                               for j in range(12)], axis=1))
+        np.testing.assert_allclose(p, ref, rtol=1e-12, err_msg=name)
+        np.testing.assert_allclose(p.sum(axis=1), 1.0, rtol=1e-13)
+        np.testing.assert_allclose(
+            choice.choice_probabilities(x, th[2], beta[2], name, bandwidth=0.7), p[2],
+            rtol=1e-12)
+    ls = choice.log_similarity_sums(x, 0.7)
+    np.testing.assert_array_equal(choice.MODELS['less'].set_offsets(x, 0.7), ls)
+    assert choice.MODELS['boltzmann'].set_offsets(x, 0.7) is None
+
+
+def test_a_registered_model_is_used_by_the_posterior(monkeypatch):
+    # A model registered under a new name is accepted wherever a model is named and is the
+    # one the posterior evaluates: a copy of Boltzmann gives Boltzmann's posterior bit for
+    # bit, and an offset model's stored term enters the likelihood.
+    from pref_learner.posterior import ParticlePosterior, PosteriorConfig
+    monkeypatch.setattr(choice, 'MODELS', dict(choice.MODELS))
+    monkeypatch.setattr(choice, 'MODEL_NAMES', choice.MODEL_NAMES)
+    monkeypatch.setattr(choice, 'MODEL_CHOICES', choice.MODEL_CHOICES)
+
+    class Copy(choice.Boltzmann):
+        name = 'boltzmann_copy'
+
+    choice.register_model(Copy())
+    assert 'boltzmann_copy' in choice.MODEL_NAMES and 'boltzmann_copy' in choice.MODEL_CHOICES
+    rng = np.random.default_rng(2)
+    sets = [(rng.standard_normal((15, 3)), int(rng.integers(15))) for _ in range(6)]
+    posts = {}
+    for name in ('boltzmann', 'boltzmann_copy'):
+        g = np.random.default_rng(3)
+        post = ParticlePosterior.create(PosteriorConfig(n_particles=300, model=name), 3, g)
+        for x, c in sets:
+            post, _ = post.update((x, c), g)
+        posts[name] = post
+    np.testing.assert_array_equal(posts['boltzmann'].theta, posts['boltzmann_copy'].theta)
+    np.testing.assert_array_equal(posts['boltzmann'].log_lik,
+                                  posts['boltzmann_copy'].log_lik)

@@ -6,8 +6,10 @@ import numpy as np
 import pytest
 from scipy.optimize import check_grad
 
-from pref_learner.features import (FeatureConfigError, FeatureSet, allow_feature_modules,
-                                   allowed_feature_modules, default_features_path)
+from pref_learner.features import (FEATURE_TYPES, FeatureConfigError, FeatureSet,
+                                   WaypointType, allow_feature_modules,
+                                   allowed_feature_modules, builtin_feature_types,
+                                   default_features_path)
 from pref_learner.robot import RobotModel
 
 GANTRY = """<?xml version="1.0"?>
@@ -292,3 +294,64 @@ def test_value_and_gradient_of_the_shipped_set_against_finite_differences():
     for j in range(fs.d):
         scale = max(np.abs(fd[j]).max(), 1e-8)
         np.testing.assert_allclose(grads[j], fd[j], atol=1e-6 * scale, err_msg=fs.names[j])
+
+
+class UserClearance(WaypointType):
+    """A user type with a schema: the frame's height above ``level`` in units of ``unit``."""
+
+    params = {'level': 0.0, 'unit': 1.0}
+
+    def check(self, p, where):
+        u = p['unit']
+        if isinstance(u, bool) or not isinstance(u, (int, float)) or not u > 0:
+            raise FeatureConfigError(f'{where}: params.unit must be a number > 0, got {u!r}')
+        p['level'], p['unit'] = float(p['level']), float(u)
+
+    def waypoint(self, p, pos, rot, temperature=0.0):
+        g = (pos[..., 2] - p['level']) / p['unit']
+        d = np.zeros(pos.shape)
+        d[..., 2] = 1.0 / p['unit']
+        return g, d, None
+
+
+def test_user_feature_class_registers_like_a_built_in(gantry):
+    # A FeatureType subclass from an allowed module carries its schema, checks, value and
+    # gradient, and gets the built-ins' aggregates: values by hand on the gantry (tool z =
+    # q_z), gradients against central finite differences (scipy check_grad).
+    allow_feature_modules(['test_features'])
+    doc = {'features': [
+        {'name': 'c_max', 'type': 'test_features:UserClearance', 'aggregate': 'max',
+         'params': {'level': 0.5, 'unit': 2}},
+        {'name': 'c_int', 'type': 'test_features:UserClearance', 'aggregate': 'integral'}]}
+    fs = FeatureSet.from_yaml(doc, gantry)
+    assert isinstance(FEATURE_TYPES['test_features:UserClearance'], UserClearance)
+    q = np.zeros((4, 3))
+    q[:, 2] = [0, 1, 2, 3]
+    # max of (z - 0.5) / 2 = 1.25; integral of z over a 3 m straight climb = 4.5
+    np.testing.assert_allclose(fs.raw(q), [1.25, 4.5], rtol=1e-13)
+    rng = np.random.default_rng(6)
+    base = rng.standard_normal((6, 3))
+    for j in range(fs.d):
+        err = check_grad(lambda x: fs.raw(x.reshape(6, 3))[j],
+                         lambda x: fs.gradient(x.reshape(6, 3))[j].ravel(), base.ravel(),
+                         epsilon=1e-7)
+        assert err < 1e-5 * max(np.linalg.norm(fs.gradient(base)[j]), 1e-8)
+    with pytest.raises(FeatureConfigError, match='unit must be a number > 0'):
+        FeatureSet.from_yaml({'features': [{'name': 'a', 'type': 'test_features:UserClearance',
+                                            'params': {'unit': -1}}]}, gantry)
+    with pytest.raises(FeatureConfigError, match=r"unknown params \['colour'\]"):
+        FeatureSet.from_yaml({'features': [{'name': 'a', 'type': 'test_features:UserClearance',
+                                            'params': {'colour': 1}}]}, gantry)
+
+
+def test_built_in_types_are_registered_with_their_schema(gantry):
+    # Every built-in type is one registered object; a feature's parameters are its schema's
+    # defaults overridden by the file's (the in_box default softness, 5 mm, from the docs).
+    assert builtin_feature_types() == ['height', 'point_distance', 'capsule_distance', 'tilt',
+                                       'in_box', 'in_cylinder', 'path_length', 'effort',
+                                       'jerk', 'approach_offset']
+    fs = _one(gantry, 'in_box', {'min': [0, 0, 0], 'max': [1, 1, 1]})
+    assert fs.specs[0].params['softness'] == FEATURE_TYPES['in_box'].params['softness'] == 0.005
+    assert fs.types[0] is FEATURE_TYPES['in_box']
+    assert [t.uses_frame for t in (FEATURE_TYPES['effort'], FEATURE_TYPES['height'])] == \
+        [False, True]

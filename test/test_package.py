@@ -9,7 +9,8 @@ import sys
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
-import yaml
+from launch_util import (launch_nodes, launch_yaml_names, parameter_mismatches, settings,
+                         yaml_parameters)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -20,18 +21,17 @@ def _entry_points():
 
 
 def test_launch_file_names_existing_executables_and_files():
-    # the launch packages are not on PyPI: check the file statically
-    tree = ast.parse((ROOT / 'launch' / 'pref_learner_launch.py').read_text())
+    # the launch packages are not on PyPI: check the file statically (the installed
+    # executables and parameters: test_workspace.py)
+    launch = ROOT / 'launch' / 'pref_learner_launch.py'
     eps = _entry_points()
-    execs = [kw.value.value for node in ast.walk(tree) if isinstance(node, ast.Call)
-             for kw in node.keywords if kw.arg == 'executable']
+    execs = [n['executable'].value for n in launch_nodes(launch)]
     assert set(execs) == {'learner_node', 'teacher_node', 'planner_node'}
     for e in execs:
         mod, func = eps[e].split(':')
         path = ROOT / (mod.replace('.', '/') + '.py')
         assert path.exists() and f'def {func}(' in path.read_text()
-    strings = [n.value for n in ast.walk(tree) if isinstance(n, ast.Constant)
-               and isinstance(n.value, str) and n.value.endswith('.yaml')]
+    strings = launch_yaml_names(launch)
     assert strings and all((ROOT / 'launch' / s).exists() for s in strings)
     assert "glob('launch/*.yaml')" in (ROOT / 'setup.py').read_text()
 
@@ -45,8 +45,7 @@ def test_launch_feeds_the_learner_from_the_teacher_private_topic():
     consts = {t.id: n.value.value for n in tree.body if isinstance(n, ast.Assign)
               for t in n.targets if isinstance(n.value, ast.Constant)}
     assert consts['SIMULATED_JOINT_STATES'] == SIMULATED_JOINT_STATES
-    nodes = [{kw.arg: kw.value for kw in n.keywords} for n in ast.walk(tree)
-             if isinstance(n, ast.Call) and getattr(n.func, 'id', '') == 'Node']
+    nodes = launch_nodes(ROOT / 'launch' / 'pref_learner_launch.py')
     learners = [n for n in nodes if n['executable'].value == 'learner_node']
     conds = sorted(n['condition'].func.id for n in learners)
     assert conds == ['IfCondition', 'UnlessCondition']
@@ -60,12 +59,6 @@ def test_launch_feeds_the_learner_from_the_teacher_private_topic():
     assert "'allow_network'" in ast.unparse(teacher['parameters'])
 
 
-# Declared by a node but not settings for the params YAML: rclpy's own parameters, the QoS
-# overrides of joint_states (rclpy, named after the resolved topic) and feature_names (an
-# output, read-only: the order of the published weights).
-_NOT_IN_YAML = {'use_sim_time', 'start_type_description_service', 'feature_names'}
-
-
 def test_params_yaml_lists_exactly_the_declared_parameters_with_their_defaults():
     # ROS 2 silently ignores unknown parameter keys, and a missing key hides a setting:
     # check both directions against a real learner node started with its defaults, and
@@ -74,25 +67,17 @@ def test_params_yaml_lists_exactly_the_declared_parameters_with_their_defaults()
     from rclpy.context import Context
 
     from pref_learner.ros.learner_node import _PARAMS, LearnerNode
-    doc = yaml.safe_load((ROOT / 'launch' / 'pref_learner_params.yaml').read_text())
-    values = doc['/**']['ros__parameters']
+    values = yaml_parameters(ROOT / 'launch' / 'pref_learner_params.yaml')
     ctx = Context()
     rclpy.init(context=ctx)
     try:
         node = LearnerNode(context=ctx)
-        declared = {k: p.value for k, p in node._parameters.items()
-                    if k not in _NOT_IN_YAML and not k.startswith('qos_overrides.')}
+        declared = settings({k: p.value for k, p in node._parameters.items()})
         node.destroy_node()
     finally:
         rclpy.shutdown(context=ctx)
     assert set(_PARAMS) <= set(declared)
-    assert set(values) - set(declared) == set(), 'in the YAML, not declared'
-    assert set(declared) - set(values) == set(), 'declared, missing from the YAML'
-    for k, v in values.items():
-        d = declared[k]
-        assert type(v) is type(d) or (isinstance(d, list) and isinstance(v, list)), \
-            f'{k}: YAML {v!r} has not the declared type of {d!r}'
-        assert v == d, f'{k}: YAML says {v!r}, the node declares {d!r}'
+    assert parameter_mismatches(values, declared) == []
 
 
 def test_package_xml_dependencies_and_version():

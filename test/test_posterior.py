@@ -275,6 +275,49 @@ def test_option_densities_match_scipy():
             float(mvn.logpdf(x)), rel=1e-6)
 
 
+def test_deviation_evidence_of_option_levels_matches_scipy_kde():
+    # Reference: scipy.stats.gaussian_kde (Scott's factor, Scott 1992) of the log
+    # deviations of each level's own options, evaluated at the demonstration's log
+    # deviation; with one level the term is a constant (0).
+    from scipy.stats import gaussian_kde
+    from pref_learner.posterior import ChoiceRecord
+    rng = np.random.default_rng(81)
+    k = 1 + 3 * 60
+    x = rng.normal(size=(k, 3))
+    groups = np.concatenate([[-1], np.repeat(np.arange(3), 60)])
+    spreads = np.array([0.04, 0.08, 0.16])
+    dev = np.concatenate([[0.05], spreads[groups[1:]] * rng.uniform(0.05, 1.0, k - 1)])
+    rec = ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation',
+                             deviation=dev)
+    for lev in range(3):
+        ref = gaussian_kde(np.log(dev[1:][groups[1:] == lev])).logpdf(np.log(0.05))[0]
+        assert rec.log_density[lev] == pytest.approx(float(ref), rel=1e-9)
+    # the demonstration's deviation lies inside the middle level's range, beyond the
+    # narrow one's: the middle level has the larger density
+    assert rec.log_density[1] > rec.log_density[0]
+    with pytest.raises(ValueError, match='deviation'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation')
+    with pytest.raises(ValueError, match='deviation must be'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='deviation',
+                           deviation=-dev)
+    one = ChoiceRecord.build(x, 0, density='deviation', deviation=dev)
+    assert one.log_density.tolist() == [0.0]
+
+
+def test_path_deviation_by_hand():
+    # Worked by hand: joint 0 moves 0 -> 1 (span 2); joint 1 bulges by 0.3 (span 1.5)
+    # at the middle waypoint only, perpendicular to the line. Normalised, the middle
+    # waypoint is 0.2 from the line, the others 0, so the RMS over 5 waypoints is
+    # sqrt(0.2^2 / 5). A path retimed along its own line deviates by 0.
+    from pref_learner.alternatives import path_deviation
+    q = np.zeros((2, 5, 2))
+    q[:, :, 0] = np.linspace(0.0, 1.0, 5)
+    q[0, 2, 1] = 0.3
+    q[1, :, 0] = np.array([0.0, 0.1, 0.15, 0.9, 1.0])
+    span = np.array([2.0, 1.5])
+    np.testing.assert_allclose(path_deviation(q, span), [np.sqrt(0.04 / 5), 0.0], atol=1e-15)
+
+
 @pytest.mark.parametrize('model', ['boltzmann', 'less'])
 def test_tempered_update_of_a_sharp_demonstration_matches_quadrature(model):
     # One very informative demonstration (beta 40): tempering takes several steps with
@@ -320,3 +363,70 @@ def test_option_levels_and_near_optimal_alternatives():
     np.testing.assert_array_equal(q1[:, 0], np.broadcast_to(start, (20, 7)))
     _, feats, groups = L.choice_set(q1[0], 0)
     assert groups[0] == -1 and set(groups[1:]) == set(range(len(L.option_labels())))
+
+
+def _kernel_log_sums(x, h):
+    """log S_i = log sum_k exp(-|z_i - z_k|^2 / (2 h^2)), z standardised per column (ddof 1).
+
+    Straight from the definition of the similarity term (choice.py's docstring), with numpy.
+    """
+    z = (x - x.mean(axis=0)) / x.std(axis=0, ddof=1)
+    d2 = ((z[:, None, :] - z[None, :, :]) ** 2).sum(axis=2)
+    return np.log(np.exp(-d2 / (2.0 * h * h)).sum(axis=1))
+
+
+def test_set_log_similarity_reuses_the_records_term_at_the_configured_bandwidth():
+    # The diagnostics' similarity term is the likelihood's: the record's stored term (built
+    # with the configured bandwidth) where it covers the set, else computed with it. The
+    # stored term keeps the chosen row's value apart (log_sim_chosen) and holds 0 in its
+    # row, which the report's density plot used to read as the demonstration's.
+    from pref_learner.alternatives import set_diagnostics
+    from pref_learner.posterior import ChoiceRecord, set_log_similarity
+    rng = np.random.default_rng(12)
+    x = rng.standard_normal((30, 3))
+    ref = _kernel_log_sums(x, 0.6)
+    rec = ChoiceRecord.build(x, 4, 0.6)
+    assert rec.log_sim[4] == 0.0 and ref[4] > 0.1
+    np.testing.assert_allclose(set_log_similarity([rec], 'scott'), ref, rtol=1e-12)
+    two = ChoiceRecord.build(x, 4, 0.6, groups=np.arange(30) % 2, n_levels=2)
+    np.testing.assert_allclose(set_log_similarity([two], 0.6), ref, rtol=1e-12)
+    bolt = ChoiceRecord.build(x, 4, 0.6, with_similarity=False)
+    np.testing.assert_allclose(set_log_similarity([bolt, rec], 0.9), ref, rtol=1e-12)
+    np.testing.assert_allclose(set_log_similarity([bolt], 0.6), ref, rtol=1e-12)
+    diag = set_diagnostics(x, 4, bandwidth=0.6)
+    assert diag['relative_density'] == pytest.approx(np.exp(ref[4] - np.median(ref)),
+                                                     rel=1e-12)
+
+
+def test_moves_and_their_likelihoods_come_from_registries(monkeypatch):
+    # The moves draw in registry order (sphere, log beta, level: the order results were
+    # stored with); the likelihood a move evaluates comes from the provider that
+    # move_likelihood names: a registered copy of the exact provider gives the exact
+    # provider's posterior bit for bit, and an unknown name lists the registry.
+    from pref_learner import posterior as pm
+    assert list(pm.MOVES) == ['sphere', 'log_beta', 'level']
+    assert list(pm.MOVE_LIKELIHOODS) == ['exact', 'expansion']
+    monkeypatch.setattr(pm, 'MOVE_LIKELIHOODS', dict(pm.MOVE_LIKELIHOODS))
+    calls = []
+
+    class Counted(pm.ExactMoveLikelihood):
+        name = 'exact_counted'
+
+        def target(self, post, theta, beta, level):
+            calls.append(len(post.records))
+            return super().target(post, theta, beta, level)
+
+    pm.register_move_likelihood(Counted())
+    rng = np.random.default_rng(4)
+    sets = _demo_sets(rng, 8, 12, 3, np.array([0.6, 0.8, 0.0]), 3.0)
+    posts = {}
+    for ml in ('exact', 'exact_counted'):
+        cfg = PosteriorConfig(n_particles=400, model='less', beta_range=(0.5, 20.0),
+                              move_likelihood=ml)
+        posts[ml] = _run(cfg, sets, 3, 5)[0]
+    assert calls and max(calls) <= len(sets)
+    for key in ('theta', 'log_beta', 'log_lik', 'log_weights'):
+        np.testing.assert_array_equal(getattr(posts['exact'], key),
+                                      getattr(posts['exact_counted'], key))
+    with pytest.raises(ValueError, match='exact, expansion, exact_counted'):
+        PosteriorConfig(move_likelihood='quadratic')

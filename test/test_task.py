@@ -84,12 +84,14 @@ def test_scales_come_from_the_file_else_the_calibration(tmp_path, arm6_record):
     rec = task_record(LearnerConfig(**dict(ARM6_CFG, features=str(f))))
     assert rec.scales == (0.5, 0.25, 2.0)
     # Calibrated: the standard deviation of each raw feature over smooth paths of the
-    # tasks (numpy's std over the same rows, computed here from the sampler's draws).
+    # tasks at the middle option spread (numpy's std over the same rows, computed here
+    # from the sampler's draws).
     task = TaskModel.from_record(arm6_record)
     from pref_learner.alternatives import AlternativeSampler, SamplerConfig
     r = arm6_record
     sampler = AlternativeSampler(task.robot, r.n_waypoints,
-                                 SamplerConfig(r.n_calibration, {'smooth': 1.0}, r.spreads))
+                                 SamplerConfig(r.n_calibration, {'smooth': 1.0},
+                                               (task.sampler_config.noise_scale,)))
     rng = np.random.default_rng(r.calibration_seed)
     rows = np.concatenate([task.features.raw(task.condition(task.retime(
         sampler.sample(s, g, rng, m=r.n_calibration)[0]))) for _, s, g in task.tasks()])

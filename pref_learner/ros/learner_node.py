@@ -47,6 +47,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
 from ..bags import estimate_arrays
+from ..choice import MODEL_CHOICES
 from ..guidance import TaskGuide, unknown_lines
 from ..learner import Learner, LearnerConfig, StepResult
 from ..report import estimate_status_values
@@ -108,7 +109,8 @@ _PARAMS = {
                 None, True),
     'ascent_steps': ('reward-ascent steps of a near-optimal alternative', (0, 200), True),
     'ascent_step': ('largest waypoint move per ascent step, x the spread', (1e-3, 10.0), True),
-    'option_density': ('density of an option level\'s features: gaussian or kde', None, True),
+    'option_density': ('evidence of an option level: deviation (of the path from the straight '
+                       'line), or gaussian or kde (of the features)', None, True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
@@ -292,9 +294,9 @@ class LearnerNode(Node):
         if not hasattr(self, 'config'):
             # declaration time: check the value's own constraints only
             for p in params:
-                if p.name == 'model' and p.value not in ('boltzmann', 'less', 'both'):
+                if p.name == 'model' and p.value not in MODEL_CHOICES:
                     return SetParametersResult(successful=False, reason=(
-                        f'model {p.value!r} is unknown; allowed: boltzmann, less, both'))
+                        f'model {p.value!r} is unknown; allowed: {", ".join(MODEL_CHOICES)}'))
                 if p.name == 'segmentation' and p.value not in ('manual', 'signal', 'motion'):
                     return SetParametersResult(successful=False, reason=(
                         f'segmentation {p.value!r} is unknown; allowed: manual, signal, motion'))
