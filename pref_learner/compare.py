@@ -17,14 +17,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import replace
-from typing import Dict, List, Sequence, Tuple
+from typing import Dict, List, Sequence
 
 import numpy as np
 from scipy.special import logsumexp
 
 from .demonstrations import Demonstration, prepare
 from .learner import Learner, stored_session
-from .posterior import ParticlePosterior
+from .posterior import ChoiceRecord, ParticlePosterior
 from .progress import progress
 from .store import StateStore
 
@@ -49,12 +49,17 @@ def stored_learner(state_dir, **over) -> Learner:
     return Learner(cfg, scales=scales or None)
 
 
-def loo_scores(records: Sequence[Tuple[np.ndarray, ...]], configs: dict,
+def _record(post: ParticlePosterior, r) -> ChoiceRecord:
+    return r if isinstance(r, ChoiceRecord) else post.prepare(r[0], 0, *r[1:])
+
+
+def loo_scores(records: Sequence, configs: dict,
                d: int, seed: int = 0) -> Dict[str, List[float]]:
     """Leave-one-out predictive log-probability of each held-out choice, per model.
 
-    ``records``: ``(features (K, d), groups (K,)[, deviation (K,)])`` per
-    demonstration (row 0 chosen); ``configs``: model -> :class:`PosteriorConfig`. For held-out
+    ``records``: a posterior's stored :class:`ChoiceRecord` or ``(features (K, d),
+    groups (K,)[, deviation (K,)])`` (row 0 chosen) per demonstration;
+    ``configs``: model -> :class:`PosteriorConfig`. For held-out
     demonstration i the posterior is built from all the others, then scored
     on ``log sum_p w_p P(row 0 | theta_p, beta_p, level_p)`` with the choice
     probability alone: the set only depends on the task's start and goal (and
@@ -68,8 +73,8 @@ def loo_scores(records: Sequence[Tuple[np.ndarray, ...]], configs: dict,
             post = ParticlePosterior.create(pcfg, d, rng)
             for j in range(k):
                 if j != i:
-                    post, _ = post.update(post.prepare(records[j][0], 0, *records[j][1:]), rng)
-            rec = post.prepare(records[i][0], 0, *records[i][1:])
+                    post, _ = post.update(_record(post, records[j]), rng)
+            rec = _record(post, records[i])
             ll = post.record_loglik(rec, post.theta, post.beta, post.level, with_density=False)
             out[m].append(float(logsumexp(post.log_weights + ll)))
     return out

@@ -514,7 +514,7 @@ def _estimates(L) -> dict:
 def _comparison(L, seed: int, rows: list) -> dict:
     """Leave-one-out scores of every accepted demonstration and the verdict (compare.py)."""
     from .compare import loo_scores, verdict
-    recs = [(r.features, r.groups) for r in L.posteriors[MODELS[1]].records]
+    recs = list(L.posteriors[MODELS[1]].records)
     cfgs = {m: L.config.posterior_config(m) for m in MODELS}
     loo = loo_scores(recs, cfgs, L.features.d, seed)
     v = verdict(loo)

@@ -178,3 +178,25 @@ def test_report_shows_information_per_demonstration_and_what_is_unknown(state, t
         s = ParticlePosterior.load(state / f'posterior_{m}').summary()
         for line in unknown_lines(s, names):
             assert html.escape(f'{m}: {line}') in unknown
+
+
+def test_leave_one_out_takes_stored_records_or_redrawn_sets_alike(state):
+    # The study scores a session from its posterior's stored choice records; compare
+    # redraws the sets from the stored demonstrations. With the default inferred option
+    # spreads (the level evidence needs each row's deviation) both give the same
+    # leave-one-out scores: the records carry the same sets and level densities.
+    from pref_learner.compare import _config_from_manifest, loo_scores, stored_choice_sets
+    from pref_learner.store import StateStore
+    store = StateStore(state)
+    cfg = _config_from_manifest(store.read_manifest(), state_dir=str(state))
+    assert len(cfg.spreads) == 3
+    L = Learner(cfg)                                  # loads the stored posteriors
+    demos, tuples = stored_choice_sets(store, L)
+    stored = list(L.posteriors['less'].records)
+    assert len(stored) == len(tuples) == 4
+    configs = {m: cfg.posterior_config(m) for m in ('boltzmann', 'less')}
+    a = loo_scores(stored, configs, L.features.d, seed=1)
+    b = loo_scores(tuples, configs, L.features.d, seed=1)
+    for m in configs:
+        np.testing.assert_allclose(a[m], b[m], rtol=1e-12)
+        assert np.all(np.isfinite(a[m]))
