@@ -185,12 +185,12 @@ def test_leave_one_out_takes_stored_records_or_redrawn_sets_alike(state):
     # redraws the sets from the stored demonstrations. With the default inferred option
     # spreads (the level evidence needs each row's deviation) both give the same
     # leave-one-out scores: the records carry the same sets and level densities.
-    from pref_learner.compare import _config_from_manifest, loo_scores, stored_choice_sets
+    from pref_learner.compare import loo_scores, stored_choice_sets
     from pref_learner.store import StateStore
     store = StateStore(state)
-    cfg = _config_from_manifest(store.read_manifest(), state_dir=str(state))
+    L = Learner.open(state)                           # loads the stored posteriors
+    cfg = L.config
     assert len(cfg.spreads) == 3
-    L = Learner(cfg)                                  # loads the stored posteriors
     demos, tuples = stored_choice_sets(store, L)
     stored = list(L.posteriors['less'].records)
     assert len(stored) == len(tuples) == 4
