@@ -400,8 +400,9 @@ class MoveTarget:
     """The log-likelihood of the stored sets as the moves evaluate it.
 
     Exact (``expansions is None``: every stored set, as :meth:`ParticlePosterior.total_loglik`),
-    or, for the oldest ``split`` sets, each level's fourth-order
-    :class:`LikelihoodExpansion` (the newer sets exact) inside the
+    or, per level ``g``, the fourth-order :class:`LikelihoodExpansion` of
+    its oldest ``split[g]`` sets (the newer sets exact; ``expansions[g] is
+    None``: that level failed its check and is exact) inside the
     ellipsoid of Mahalanobis radius ``radius`` around ``anchor`` (metric
     ``precision``) and ``-inf`` beyond it, so that proposals there are
     rejected (the region reaches :data:`TRUST_REACH` times beyond the
@@ -415,7 +416,7 @@ class MoveTarget:
     """
 
     def __init__(self, posterior, expansions=None, anchor=None, precision=None,
-                 radius=0.0, error=float('nan'), error_max=float('nan'), split=0):
+                 radius=0.0, error=float('nan'), error_max=float('nan'), split=None):
         self.posterior = posterior
         self.split = split
         self.expansions = expansions
@@ -441,13 +442,19 @@ class MoveTarget:
         u = beta[:, None] * theta
         lev = np.zeros(len(u), dtype=np.int64) if level is None else level
         out = np.empty(len(u))
+        post = self.posterior
         for g, ex in enumerate(self.expansions):
             sel = np.flatnonzero(lev == g)
-            if sel.size:
-                out[sel] = ex(u[sel])
-        post = self.posterior
-        for rec in post.records[self.split:]:
-            out += post.record_loglik(rec, theta, beta, level)
+            if not sel.size:
+                continue
+            if ex is None and sel.size == len(u):      # every point at an exact level
+                out[:] = post.total_loglik(theta, beta, level)
+                continue
+            part = ex(u[sel]) if ex is not None else np.zeros(sel.size)
+            lv = None if level is None else level[sel]
+            for rec in post.records[self.split[g]:]:
+                part += post.record_loglik(rec, theta[sel], beta[sel], lv)
+            out[sel] = part
         out[self.radii(u) > self.radius] = -np.inf
         return out
 
@@ -580,24 +587,33 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         picks = np.concatenate([order[((np.arange(spread) + 0.5) * n / spread).astype(np.int64)],
                                 order[-N_OUTER:]])
         tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
-        split = len(post.records)
-        for _ in range(3):
-            prefix = post.records[:split]
-            expansions, errs = [], []
-            for g in range(cfg.n_levels):    # every level at every checked point: particles jump
+        # each level on its own (its sets' spread sets its error): every level is checked at
+        # every checked point, since particles jump levels
+        expansions, splits, means, worsts = [], [], [], []
+        for g in range(cfg.n_levels):
+            split, found = len(post.records), None
+            for _ in range(3):
+                prefix = post.records[:split]
                 ex = expand_loglik(prefix, g, anchor, less)
-                expansions.append(ex)
-                errs.append(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
-            err = np.abs(np.array(errs))                 # (levels, checked particles)
-            mean, worst = float(err[:, :len(picks) - N_OUTER].mean()), float(err.max())
-            if mean <= tol and worst <= cap:
-                return MoveTarget(post, expansions, anchor, precision,
-                                  TRUST_REACH * float(r.max()), mean, worst, split)
-            # the error grows about in proportion to the number of expanded sets
-            split = int(0.8 * split * min(tol / mean, cap / worst))
-            if split < MIN_EXPANDED:
-                break
-        return MoveTarget(post, error=mean, error_max=worst)
+                err = np.abs(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
+                mean, worst = float(err[:len(picks) - N_OUTER].mean()), float(err.max())
+                if mean <= tol and worst <= cap:
+                    found = ex
+                    break
+                # the error grows about in proportion to the number of expanded sets
+                split = int(0.8 * split * min(tol / mean, cap / worst))
+                if split < MIN_EXPANDED:
+                    break
+            expansions.append(found)
+            splits.append(split if found is not None else 0)
+            means.append(mean)
+            worsts.append(worst)
+        if all(ex is None for ex in expansions):
+            return MoveTarget(post, error=float(np.mean(means)), error_max=float(max(worsts)))
+        used = [i for i, ex in enumerate(expansions) if ex is not None]
+        return MoveTarget(post, expansions, anchor, precision, TRUST_REACH * float(r.max()),
+                          float(np.mean([means[i] for i in used])),
+                          float(max(worsts[i] for i in used)), splits)
 
 
 #: The registry of moves, in the order of their random draws (changing it changes results).
@@ -1096,13 +1112,15 @@ class ParticlePosterior:
         ``u = beta theta``, in the metric of its weighted covariance. It is
         checked against the exact log-likelihood (:class:`StackedSets`) at
         :data:`N_CHECK` particles, at evenly spaced ranks of their radius and
-        the :data:`N_OUTER` outermost, at every level; it is used when the mean absolute error
-        there is at most ``expansion_tol`` and the largest at most
-        :data:`MAX_ERROR_FACTOR` times that. Otherwise (the cloud still wide)
-        the oldest sets alone are expanded, as many as the errors suggest
-        (they grow about in proportion), and checked again, at most three
-        times; the newer sets stay exact; below :data:`MIN_EXPANDED` sets the
-        moves are exact. Deterministic: no random numbers are drawn.
+        the :data:`N_OUTER` outermost, level by level (every level at every
+        checked particle: particles jump levels); a level's expansion is used
+        when the mean absolute error there is at most ``expansion_tol`` and the
+        largest at most :data:`MAX_ERROR_FACTOR` times that. Otherwise (the
+        cloud still wide, or the level's options spread wide) that level's
+        oldest sets alone are expanded, as many as the errors suggest (they
+        grow about in proportion), and checked again, at most three times; the
+        newer sets stay exact; below :data:`MIN_EXPANDED` sets the level is
+        exact. Deterministic: no random numbers are drawn.
         """
         provider = MOVE_LIKELIHOODS[self.config.move_likelihood]
         return provider.target(self, theta, beta, level)
