@@ -758,15 +758,8 @@ NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feat
              'robot_description_topic', 'robot_description_timeout', 'max_stamp_skew')
 
 
-def read_parameters_file(path, node: str = 'pref_learner') -> Tuple[dict, dict]:
-    """Read the learner settings of a ROS 2 parameters file (``node: ros__parameters:``).
-
-    Sections for ``/**`` and for the node (``node``, ``/node`` or a namespaced
-    ``/ns/node``) apply in that order. Returns ``(settings, node_only)``:
-    LearnerConfig fields (relative ``urdf`` and ``features`` paths resolved
-    against the file's directory, else the current one) and the node-only
-    values (``NODE_ONLY``). Unknown keys are errors naming the file.
-    """
+def read_parameters_mapping(path) -> dict:
+    """Return the YAML mapping of a parameters file; ``ValueError`` naming the file if not one."""
     import yaml
     path = Path(path)
     try:
@@ -777,6 +770,20 @@ def read_parameters_file(path, node: str = 'pref_learner') -> Tuple[dict, dict]:
         raise ValueError(f'parameters file {path} is not valid YAML: {exc}') from None
     if not isinstance(doc, dict):
         raise ValueError(f'parameters file {path} must hold a mapping')
+    return doc
+
+
+def read_parameters_file(path, node: str = 'pref_learner') -> Tuple[dict, dict]:
+    """Read the learner settings of a ROS 2 parameters file (``node: ros__parameters:``).
+
+    Sections for ``/**`` and for the node (``node``, ``/node`` or a namespaced
+    ``/ns/node``) apply in that order. Returns ``(settings, node_only)``:
+    LearnerConfig fields (relative ``urdf`` and ``features`` paths resolved
+    against the file's directory, else the current one) and the node-only
+    values (``NODE_ONLY``). Unknown keys are errors naming the file.
+    """
+    path = Path(path)
+    doc = read_parameters_mapping(path)
     sections = [(k, v['ros__parameters']) for k, v in doc.items()
                 if isinstance(v, dict) and isinstance(v.get('ros__parameters'), dict)]
     if not sections:

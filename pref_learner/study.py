@@ -235,18 +235,9 @@ def load_settings(path) -> StudySettings:
 
     Raises ``ValueError`` naming the file and the key for anything unknown or invalid.
     """
-    import yaml
-
-    from .learner import LearnerConfig
+    from .learner import LearnerConfig, read_parameters_mapping
     path = Path(path)
-    try:
-        doc = yaml.safe_load(path.read_text()) or {}
-    except OSError as exc:
-        raise ValueError(f'parameters file {path} cannot be read: {exc.strerror}') from None
-    except yaml.YAMLError as exc:
-        raise ValueError(f'parameters file {path} is not valid YAML: {exc}') from None
-    if not isinstance(doc, dict):
-        raise ValueError(f'parameters file {path} must hold a mapping')
+    doc = read_parameters_mapping(path)
     params, where = _learner_section(doc)
     known = {f.name for f in fields(LearnerConfig)}
     notes = []
