@@ -176,27 +176,34 @@ def test_exact_moves_option_and_bad_settings():
     assert not post.log_lik_approximate
 
 
-def test_expansion_with_option_levels_matches_each_levels_likelihood():
-    # Two option levels: a particle at level g compares the demonstration with level g's
-    # alternatives and adds that level's log density. The moves' likelihood for particles at
-    # either level is checked against the exact per-set sum (total_loglik), as above.
-    rng = np.random.default_rng(8)
-    cfg = PosteriorConfig(n_particles=2000, model='less', beta_range=(0.5, 20.0), n_levels=2)
+def _two_level_cloud(seed, model, wide, width):
+    """60 sets of 12 + 12 options (level 1 ``wide`` times level 0's spread), a person at
+    level 0, and a cloud of 2,000 particles of Gaussian ``width`` around the true u, at
+    random levels."""
+    rng = np.random.default_rng(seed)
+    cfg = PosteriorConfig(n_particles=2000, model=model, beta_range=(0.5, 20.0), n_levels=2)
     post = ParticlePosterior.create(cfg, 3, rng)
     true_u = np.array([2.0, -1.0, 1.5])
     recs = []
     for _ in range(60):
-        x = np.vstack([rng.standard_normal((13, 3)), 1.5 * rng.standard_normal((12, 3))])
+        x = np.vstack([rng.standard_normal((13, 3)), wide * rng.standard_normal((12, 3))])
         groups = np.array([-1] + [0] * 12 + [1] * 12)
-        p = choice.choice_probabilities(x[:13], true_u / 2.693, 2.693, 'less')
+        p = choice.choice_probabilities(x[:13], true_u / 2.693, 2.693, model)
         c = int(rng.choice(13, p=p))
         x[[0, c]] = x[[c, 0]]
         recs.append(post.prepare(x, 0, groups))
-    u = true_u + 0.03 * rng.standard_normal((2000, 3))
+    u = true_u + width * rng.standard_normal((2000, 3))
     b = np.linalg.norm(u, axis=1)
     level = rng.integers(0, 2, 2000)
-    p = replace(post, theta=u / b[:, None], log_beta=np.log(b), level=level,
-                records=tuple(recs))
+    return cfg, replace(post, theta=u / b[:, None], log_beta=np.log(b), level=level,
+                        records=tuple(recs))
+
+
+def test_expansion_with_option_levels_matches_each_levels_likelihood():
+    # Two option levels: a particle at level g compares the demonstration with level g's
+    # alternatives and adds that level's log density. The moves' likelihood for particles at
+    # either level is checked against the exact per-set sum (total_loglik), as above.
+    cfg, p = _two_level_cloud(8, 'less', 1.5, 0.03)
     target = p.move_target(p.theta, p.beta, p.level)
     assert target.approximate
     err = np.abs(target(p.theta, p.beta, p.level) - p.total_loglik(p.theta, p.beta, p.level))
@@ -207,32 +214,15 @@ def test_expansion_with_option_levels_matches_each_levels_likelihood():
 def test_a_level_whose_expansion_fails_its_check_stays_exact_alone():
     # Level 1's options spread 4 times wider than level 0's, so its expansion's remainder
     # (growing with the spread's fifth power, Taylor) fails the check while level 0's
-    # passes: level 0 is expanded, level 1 exact. Reference: the exact per-set sum
-    # (total_loglik); particles at level 1 must match it to rounding.
-    rng = np.random.default_rng(9)
-    cfg = PosteriorConfig(n_particles=2000, model='boltzmann', beta_range=(0.5, 20.0),
-                          n_levels=2)
-    post = ParticlePosterior.create(cfg, 3, rng)
-    true_u = np.array([2.0, -1.0, 1.5])
-    recs = []
-    for _ in range(60):
-        x = np.vstack([rng.standard_normal((13, 3)), 4.0 * rng.standard_normal((12, 3))])
-        groups = np.array([-1] + [0] * 12 + [1] * 12)
-        p = choice.choice_probabilities(x[:13], true_u / 2.693, 2.693, 'boltzmann')
-        c = int(rng.choice(13, p=p))
-        x[[0, c]] = x[[c, 0]]
-        recs.append(post.prepare(x, 0, groups))
-    u = true_u + 0.2 * rng.standard_normal((2000, 3))        # a cloud still wide
-    b = np.linalg.norm(u, axis=1)
-    level = rng.integers(0, 2, 2000)
-    p = replace(post, theta=u / b[:, None], log_beta=np.log(b), level=level,
-                records=tuple(recs))
+    # passes (the cloud still wide): level 0 is expanded, level 1 exact. Reference: the
+    # exact per-set sum (total_loglik); particles at level 1 must match it to rounding.
+    cfg, p = _two_level_cloud(9, 'boltzmann', 4.0, 0.2)
     target = p.move_target(p.theta, p.beta, p.level)
     assert target.approximate
     assert target.expansions[0] is not None and target.expansions[1] is None
     exact = p.total_loglik(p.theta, p.beta, p.level)
     got = target(p.theta, p.beta, p.level)
-    at1 = level == 1
+    at1 = p.level == 1
     np.testing.assert_allclose(got[at1], exact[at1], rtol=1e-12, atol=1e-9)
     err = np.abs(got[~at1] - exact[~at1])
     assert err.mean() <= cfg.expansion_tol
