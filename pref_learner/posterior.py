@@ -402,7 +402,8 @@ class MoveTarget:
     Exact (``expansions is None``: every stored set, as :meth:`ParticlePosterior.total_loglik`),
     or, per level ``g``, the fourth-order :class:`LikelihoodExpansion` of
     its oldest ``split[g]`` sets (the newer sets exact; ``expansions[g] is
-    None``: that level failed its check and is exact) inside the
+    None``: that level failed its check and is exact; beyond the radius
+    ``inner[g]`` its points are scored exactly too) inside the
     ellipsoid of Mahalanobis radius ``radius`` around ``anchor`` (metric
     ``precision``) and ``-inf`` beyond it, so that proposals there are
     rejected (the region reaches :data:`TRUST_REACH` times beyond the
@@ -416,9 +417,11 @@ class MoveTarget:
     """
 
     def __init__(self, posterior, expansions=None, anchor=None, precision=None,
-                 radius=0.0, error=float('nan'), error_max=float('nan'), split=None):
+                 radius=0.0, error=float('nan'), error_max=float('nan'), split=None,
+                 inner=None):
         self.posterior = posterior
         self.split = split
+        self.inner = inner
         self.expansions = expansions
         self.anchor = anchor
         self.precision = precision
@@ -450,8 +453,19 @@ class MoveTarget:
             if ex is None and sel.size == len(u):      # every point at an exact level
                 out[:] = post.total_loglik(theta, beta, level)
                 continue
-            part = ex(u[sel]) if ex is not None else np.zeros(sel.size)
             lv = None if level is None else level[sel]
+            if ex is None:
+                part = np.zeros(sel.size)
+            else:
+                part = ex(u[sel])
+                reach = np.inf if self.inner is None else self.inner[g]
+                far = np.flatnonzero(self.radii(u[sel]) > reach)
+                if far.size:                  # beyond the checked radius: exact
+                    rows = sel[far]
+                    lf = None if level is None else level[rows]
+                    part[far] = 0.0
+                    for rec in post.records[:self.split[g]]:
+                        part[far] += post.record_loglik(rec, theta[rows], beta[rows], lf)
             for rec in post.records[self.split[g]:]:
                 part += post.record_loglik(rec, theta[sel], beta[sel], lv)
             out[sel] = part
@@ -589,23 +603,37 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
         # each level on its own (its sets' spread sets its error): every level is checked at
         # every checked point, since particles jump levels
-        expansions, splits, means, worsts = [], [], [], []
+        expansions, splits, means, worsts, inner = [], [], [], [], []
+        r_picks = r[picks]
         for g in range(cfg.n_levels):
-            split, found = len(post.records), None
+            split, found, reach = len(post.records), None, np.inf
             for _ in range(3):
                 prefix = post.records[:split]
                 ex = expand_loglik(prefix, g, anchor, less)
                 err = np.abs(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
-                mean, worst = float(err[:len(picks) - N_OUTER].mean()), float(err.max())
+                mean, worst = float(err[:spread].mean()), float(err.max())
                 if mean <= tol and worst <= cap:
                     found = ex
                     break
+                # only the cloud's edge fails: expand inside the largest checked radius
+                # below the first failure (holding at least half of the evenly spaced
+                # checks), score exactly beyond it
+                if worst > cap:
+                    good = (err <= cap) & (r_picks < r_picks[err > cap].min())
+                    inside = good[:spread]
+                    if good.any() and inside.sum() >= spread // 2:
+                        m_in = float(err[:spread][inside].mean())
+                        if m_in <= tol:
+                            found, reach = ex, float(r_picks[good].max())
+                            mean, worst = m_in, float(err[good].max())
+                            break
                 # the error grows about in proportion to the number of expanded sets
                 split = int(0.8 * split * min(tol / mean, cap / worst))
                 if split < MIN_EXPANDED:
                     break
             expansions.append(found)
             splits.append(split if found is not None else 0)
+            inner.append(reach)
             means.append(mean)
             worsts.append(worst)
         if all(ex is None for ex in expansions):
@@ -613,7 +641,7 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         used = [i for i, ex in enumerate(expansions) if ex is not None]
         return MoveTarget(post, expansions, anchor, precision, TRUST_REACH * float(r.max()),
                           float(np.mean([means[i] for i in used])),
-                          float(max(worsts[i] for i in used)), splits)
+                          float(max(worsts[i] for i in used)), splits, inner)
 
 
 #: The registry of moves, in the order of their random draws (changing it changes results).
@@ -1115,8 +1143,10 @@ class ParticlePosterior:
         the :data:`N_OUTER` outermost, level by level (every level at every
         checked particle: particles jump levels); a level's expansion is used
         when the mean absolute error there is at most ``expansion_tol`` and the
-        largest at most :data:`MAX_ERROR_FACTOR` times that. Otherwise (the
-        cloud still wide, or the level's options spread wide) that level's
+        largest at most :data:`MAX_ERROR_FACTOR` times that. When only the
+        cloud's edge fails, it is used inside the largest checked radius below
+        the first failure (``inner[g]``) and points beyond are scored exactly.
+        Otherwise (the cloud still wide, or the level's options spread wide) that level's
         oldest sets alone are expanded, as many as the errors suggest (they
         grow about in proportion), and checked again, at most three times; the
         newer sets stay exact; below :data:`MIN_EXPANDED` sets the level is
