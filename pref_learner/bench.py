@@ -12,14 +12,18 @@ iterations, ours against L-BFGS-B on the raw waypoints).
 
 from __future__ import annotations
 
+import math
 import os
 import random
 import subprocess
 import sys
 import time
-from typing import Callable, Dict, List
+from typing import TYPE_CHECKING, Callable, Dict, List, Tuple
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from .planner import TrajectoryPlanner
 
 
 def _median_ms(fn: Callable, reps: int) -> float:
@@ -516,6 +520,137 @@ def study_benchmark(quick: bool = False) -> Dict[str, float]:
     return out
 
 
+# ---------------------------------------------------------------- planner
+def _traced_plan(planner: 'TrajectoryPlanner', w, start, goal) -> Tuple[object, np.ndarray]:
+    """Plan once; trace ``(wall s, iteration, exact cost)`` per iteration (tracing not timed)."""
+    trace, excluded = [], [0.0]
+    t0 = time.perf_counter()
+
+    def record(q):
+        t = time.perf_counter()
+        cost = planner.objective(q[1:-1].ravel(), start, goal, w, None, exact=True)[0]
+        trace.append((t - t0 - excluded[0], len(trace), cost))
+        excluded[0] += time.perf_counter() - t
+    q0 = start + np.linspace(0, 1, planner.T)[:, None] * (goal - start)
+    trace.append((0.0, 0, planner.objective(q0[1:-1].ravel(), start, goal, w, None,
+                                            exact=True)[0]))
+    excluded[0] += time.perf_counter() - t0
+    res = planner.plan(w, start, goal, callback=record)
+    return res, np.array(trace)
+
+
+def raw_waypoint_lbfgsb(planner: 'TrajectoryPlanner', w, start, goal, target: float,
+                        max_iter: int) -> np.ndarray:
+    """Run the peer: scipy L-BFGS-B on the raw interior waypoints, exact objective, to ``target``.
+
+    Starts from the straight line with the joint limits as bounds (continuous
+    joints within half a turn of the line) and scipy's own stopping tests off,
+    so it runs until its exact cost is at most ``target``, ``max_iter``
+    iterations or a failed line search. Returns the trace
+    ``(wall s, iteration, exact cost)``, one row per iteration.
+    """
+    from scipy.optimize import Bounds, minimize
+    line = start + np.linspace(0, 1, planner.T)[:, None] * (goal - start)
+    lo = np.where(np.isfinite(planner.robot.lower), planner.robot.lower, line - math.pi)
+    hi = np.where(np.isfinite(planner.robot.upper), planner.robot.upper, line + math.pi)
+    x0 = line[1:-1].ravel()
+    trace = [(0.0, 0, planner.objective(x0, start, goal, w, None, exact=True)[0])]
+    t0 = time.perf_counter()
+
+    def stop(intermediate_result):
+        trace.append((time.perf_counter() - t0, len(trace), float(intermediate_result.fun)))
+        if intermediate_result.fun <= target:
+            raise StopIteration
+    minimize(lambda x: planner.objective(x, start, goal, w, None, exact=True), x0, jac=True,
+             method='L-BFGS-B', bounds=Bounds(lo[1:-1].ravel(), hi[1:-1].ravel()),
+             callback=stop, options={'maxiter': max_iter, 'maxfun': 20 * max_iter,
+                                     'ftol': 0.0, 'gtol': 0.0})
+    return np.array(trace)
+
+
+def _convergence_figure(ours: np.ndarray, peer: np.ndarray, path) -> None:
+    import matplotlib
+    matplotlib.use('Agg')
+    import matplotlib.pyplot as plt
+    fig, axes = plt.subplots(1, 2, figsize=(10, 4))
+    for ax, col, label in ((axes[0], 0, 'wall time (ms)'), (axes[1], 1, 'iteration')):
+        scale = 1e3 if col == 0 else 1.0
+        ax.plot(ours[:, col] * scale, ours[:, 2], label='B-spline controls, smooth surrogate, '
+                'projected quasi-Newton')
+        ax.plot(peer[:, col] * scale, peer[:, 2], label='L-BFGS-B on raw waypoints, exact')
+        ax.axhline(ours[-1, 2], color='grey', lw=0.8, ls='--')
+        ax.set_xscale('symlog', linthresh=1.0)
+        ax.set_xlim(left=0.0)
+        ax.set_xlabel(label)
+        ax.set_ylabel('exact cost J')
+        lo = min(ours[:, 2].min(), peer[:, 2].min())
+        ax.set_ylim(lo - 0.05 * abs(lo) - 0.1, max(ours[0, 2], peer[0, 2]) + 0.1)
+    axes[0].legend(fontsize=8)
+    fig.suptitle('one 64-waypoint plan, shipped arm; dashed: final cost of ours')
+    fig.tight_layout()
+    fig.savefig(path, dpi=90)
+    plt.close(fig)
+
+
+def plan_benchmark(quick: bool = False, out_dir=None) -> dict:
+    """Plan figures: one 64-waypoint plan, shipped arm and features, no restart.
+
+    ``plan_ms_median``, ``plan_converged_fraction`` (projected-gradient rule
+    met), iterations and evaluations over seeded random weights and the
+    scenario's tasks; then, on the first few of the same problems, the peer
+    (:func:`raw_waypoint_lbfgsb`) run until it reaches our final exact cost:
+    its time and iterations to get there, the fraction that did, and the
+    median ratio of its time to ours (its whole run's time where it never
+    got there: a lower bound). With ``out_dir``, ``plan_convergence.png``
+    there shows exact cost against wall time and iterations for both on the
+    first problem.
+    """
+    from pathlib import Path
+
+    from .learner import LearnerConfig
+    from .planner import PlannerConfig, TrajectoryPlanner
+    from .task import TaskModel
+    L = TaskModel.from_config(LearnerConfig(n_alternatives=1))
+    planner = TrajectoryPlanner(L.features, PlannerConfig(restarts=0))
+    tasks = L.tasks()
+    rng = np.random.default_rng(0)
+    problems, times, iters, evals, conv = [], [], [], [], []
+    for k in range(4 if quick else 10):
+        w = rng.standard_normal(L.features.d)
+        _, s, g = tasks[k % len(tasks)]
+        r = planner.plan(w, s, g, rng)
+        problems.append((w, s, g))
+        times.append(r.time_s)
+        iters.append(r.n_iter)
+        evals.append(r.n_eval)
+        conv.append(r.converged)
+    out = {'plan_ms_median': float(np.median(times) * 1e3),
+           'plan_converged_fraction': float(np.mean(conv)),
+           'plan_iterations_median': float(np.median(iters)),
+           'plan_evaluations_median': float(np.median(evals))}
+    peer_ms, peer_it, reached, ratio = [], [], [], []
+    for i, (w, s, g) in enumerate(problems[:1 if quick else 3]):
+        res, ours = _traced_plan(planner, w, s, g)
+        peer = raw_waypoint_lbfgsb(planner, w, s, g, res.cost, 1000 if quick else 3000)
+        ok = bool(peer[-1, 2] <= res.cost)
+        reached.append(ok)
+        if ok:
+            peer_ms.append(peer[-1, 0] * 1e3)
+            peer_it.append(peer[-1, 1])
+        ratio.append(peer[-1, 0] / ours[-1, 0])
+        if i == 0 and out_dir is not None:
+            Path(out_dir).mkdir(parents=True, exist_ok=True)
+            _convergence_figure(ours, peer, Path(out_dir) / 'plan_convergence.png')
+    nan = float('nan')
+    out.update({
+        'plan_raw_lbfgsb_reached_fraction': float(np.mean(reached)),
+        'plan_raw_lbfgsb_ms_to_equal_cost_median': float(np.median(peer_ms)) if peer_ms else nan,
+        'plan_raw_lbfgsb_iterations_to_equal_cost_median':
+            float(np.median(peer_it)) if peer_it else nan,
+        'plan_speedup_vs_raw_lbfgsb': float(np.median(ratio))})
+    return out
+
+
 def run_benchmarks(quick: bool = False, parts: List[str] = None,
                    out_dir=None) -> Dict[str, float]:
     """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
@@ -529,7 +664,6 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
     if 'speed' in parts:
         res.update(speed_benchmarks(quick))
     if 'planner' in parts:
-        from .planner import plan_benchmark
         res.update(plan_benchmark(quick, out_dir))
     if 'node' in parts:
         from .ros.bench_node import node_benchmarks
