@@ -29,7 +29,7 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 
 from . import __version__
-from .alternatives import SamplerConfig, path_deviation, set_diagnostics
+from .alternatives import SamplerConfig, set_diagnostics
 from .choice import BOTH, MODEL_CHOICES, MODEL_NAMES
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
                              Rejection, SegmentConfig, prepare)
@@ -545,12 +545,8 @@ class Learner:
         return self.task.choice_set(q_demo, rng, weights=self._weight_source)
 
     def path_deviation(self, allq: np.ndarray) -> np.ndarray:
-        """Each row's deviation from its straight line (:func:`~.alternatives.path_deviation`).
-
-        The evidence that tells the option spreads apart (``option_density:
-        deviation``); ``allq`` as :meth:`choice_set` returns it.
-        """
-        return path_deviation(allq, self.sampler.span)
+        """Each row's deviation from its straight line (:meth:`TaskModel.path_deviation`)."""
+        return self.task.path_deviation(allq)
 
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
                           demo: Optional[np.ndarray] = None, m: Optional[int] = None):

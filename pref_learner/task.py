@@ -28,7 +28,7 @@ from typing import Callable, Optional, Tuple
 import numpy as np
 import yaml
 
-from .alternatives import AlternativeSampler, SamplerConfig
+from .alternatives import AlternativeSampler, SamplerConfig, path_deviation
 from .demonstrations import PrepareConfig, condition, reparametrize_arc_length
 from .features import FeatureConfigError, FeatureSet, default_features_path, load_scenario
 from .robot import RobotModel, default_urdf_path
@@ -359,6 +359,15 @@ class TaskModel:
         """
         alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m, weights=weights)
         return self.retime(alts), groups
+
+    def path_deviation(self, allq: np.ndarray) -> np.ndarray:
+        """Each row's deviation from its straight line (:func:`~.alternatives.path_deviation`).
+
+        The evidence that tells the option spreads apart (``option_density:
+        deviation``), in the sampler's joint spans; ``allq`` as
+        :meth:`choice_set` returns it.
+        """
+        return path_deviation(allq, self.sampler.span)
 
     def choice_set(self, q_demo: np.ndarray, rng: np.random.Generator,
                    weights: Optional[Callable] = None):
