@@ -450,9 +450,6 @@ class MoveTarget:
             sel = np.flatnonzero(lev == g)
             if not sel.size:
                 continue
-            if ex is None and sel.size == len(u):      # every point at an exact level
-                out[:] = post.total_loglik(theta, beta, level)
-                continue
             lv = None if level is None else level[sel]
             if ex is None:
                 part = np.zeros(sel.size)
