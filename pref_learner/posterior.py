@@ -418,10 +418,12 @@ class MoveTarget:
 
     def __init__(self, posterior, expansions=None, anchor=None, precision=None,
                  radius=0.0, error=float('nan'), error_max=float('nan'), split=None,
-                 inner=None):
+                 inner=None, screens=None, screen_exact=None):
         self.posterior = posterior
         self.split = split
         self.inner = inner
+        self.screens = screens
+        self.screen_exact = screen_exact
         self.expansions = expansions
         self.anchor = anchor
         self.precision = precision
@@ -432,6 +434,39 @@ class MoveTarget:
     @property
     def approximate(self) -> bool:
         return self.expansions is not None
+
+    @property
+    def screened(self) -> bool:
+        """Whether the moves may screen proposals with :meth:`screen` (delayed acceptance)."""
+        return self.screens is not None
+
+    def screen(self, theta: np.ndarray, beta: np.ndarray,
+               level: Optional[np.ndarray]) -> Tuple[np.ndarray, np.ndarray]:
+        """Return a cheap stand-in for the target and where the target differs from it.
+
+        ``(s (n,), differs (n,) bool)``: ``s`` is each level's expansion of all
+        its stored sets (``screens[g]``, checked or not), ``-inf`` beyond the
+        trust region as the target; ``differs`` marks the points whose target
+        is not ``s``: their level's expansion failed its check or covers only
+        its oldest sets (``screen_exact[g]``), or they lie beyond the level's
+        checked radius. The moves evaluate the target at those points only
+        when the screen accepts them (delayed acceptance, Christen & Fox 2005).
+        """
+        u = beta[:, None] * theta
+        lev = np.zeros(len(u), dtype=np.int64) if level is None else level
+        s = np.empty(len(u))
+        differs = np.zeros(len(u), dtype=bool)
+        r = self.radii(u)
+        for g, sc in enumerate(self.screens):
+            sel = np.flatnonzero(lev == g)
+            if not sel.size:
+                continue
+            s[sel] = sc(u[sel])
+            differs[sel] = True if self.screen_exact[g] else r[sel] > self.inner[g]
+        outside = r > self.radius
+        s[outside] = -np.inf
+        differs[outside] = False
+        return s, differs
 
     def radii(self, u: np.ndarray) -> np.ndarray:
         """Mahalanobis radius of each ``u (n, d)`` around the anchor, ``(n,)``."""
@@ -600,13 +635,15 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         tol, cap = cfg.expansion_tol, MAX_ERROR_FACTOR * cfg.expansion_tol
         # each level on its own (its sets' spread sets its error): every level is checked at
         # every checked point, since particles jump levels
-        expansions, splits, means, worsts, inner = [], [], [], [], []
+        expansions, splits, means, worsts, inner, screens = [], [], [], [], [], []
         r_picks = r[picks]
         for g in range(cfg.n_levels):
             split, found, reach = len(post.records), None, np.inf
-            for _ in range(3):
+            for attempt in range(3):
                 prefix = post.records[:split]
                 ex = expand_loglik(prefix, g, anchor, less)
+                if attempt == 0:
+                    screens.append(ex)        # every set: the level's screen (checked or not)
                 err = np.abs(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
                 mean, worst = float(err[:spread].mean()), float(err.max())
                 if mean <= tol and worst <= cap:
@@ -636,9 +673,12 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         if all(ex is None for ex in expansions):
             return MoveTarget(post, error=float(np.mean(means)), error_max=float(max(worsts)))
         used = [i for i, ex in enumerate(expansions) if ex is not None]
+        n_sets = len(post.records)
+        screen_exact = [ex is None or splits[i] < n_sets for i, ex in enumerate(expansions)]
         return MoveTarget(post, expansions, anchor, precision, TRUST_REACH * float(r.max()),
                           float(np.mean([means[i] for i in used])),
-                          float(max(worsts[i] for i in used)), splits, inner)
+                          float(max(worsts[i] for i in used)), splits, inner, screens,
+                          screen_exact)
 
 
 #: The registry of moves, in the order of their random draws (changing it changes results).
@@ -1168,8 +1208,12 @@ class ParticlePosterior:
         least once (at least ``n_moves``, at most ``max_move_rounds``); while
         tempering (``extra`` given) exactly ``tempering_move_rounds`` rounds.
         The stored sets' likelihood is :meth:`move_target`'s, fixed for the
-        whole call. Returns ``(posterior, ll_extra, acceptance, rounds,
-        moved_fraction)``.
+        whole call; where it scores some points exactly, proposals are first
+        screened with each level's expansion of all its sets and the exact
+        value is computed only for those the screen accepts (delayed
+        acceptance, Christen & Fox 2005: a second test corrects by the
+        difference, so the invariant distribution is unchanged). Returns
+        ``(posterior, ll_extra, acceptance, rounds, moved_fraction)``.
         """
         cfg = self.config
         log_lik = self.log_lik
@@ -1182,6 +1226,9 @@ class ParticlePosterior:
         target = self.move_target(self.theta, self.beta, self.level)
         if target.approximate or self.log_lik_approximate:
             log_lik = target(self.theta, self.beta, self.level)
+        screened = target.screened
+        if screened:
+            screen_now, _ = target.screen(self.theta, self.beta, self.level)
         consts = [m.setup(self) for m in moves]
         base = 2.38 / math.sqrt(max(sum(m.dims(self) for m in moves), 1))
         factor = float(self.step_size)
@@ -1202,16 +1249,36 @@ class ParticlePosterior:
             beta_new = self.beta if prop_lb is None else np.exp(prop_lb)
             ok = np.isfinite(lp_new)
             lv_eval = None if prop_lv is None else np.clip(prop_lv, 0, cfg.n_levels - 1)
-            ll_new = target(prop['theta'], beta_new, lv_eval)
             cur_extra = 0.0
             new_extra = 0.0
             if extra is not None:
                 ex = self.record_loglik(extra, prop['theta'], beta_new, lv_eval)
                 new_extra = phi * ex
                 cur_extra = phi * ll_extra
-            log_a = np.where(ok, (lp_new + ll_new + new_extra) - (lp + log_lik + cur_extra),
-                             -np.inf)
-            accept = np.log(rng.random(n)) < log_a
+            if screened:
+                # delayed acceptance (Christen & Fox 2005): the screen decides first; the
+                # target is evaluated only where it differs from the screen and the screen
+                # accepted, and a second test corrects by the difference, so the chain
+                # still leaves prior x exp(target) invariant
+                ll_new, differs = target.screen(prop['theta'], beta_new, lv_eval)
+                log_a = np.where(ok, (lp_new + ll_new + new_extra)
+                                 - (lp + screen_now + cur_extra), -np.inf)
+                accept = np.log(rng.random(n)) < log_a
+                second = np.log(rng.random(n))
+                rows = np.flatnonzero(accept & differs)
+                s_new = ll_new.copy()
+                if rows.size:
+                    ll_new[rows] = target(prop['theta'][rows], beta_new[rows],
+                                          None if lv_eval is None else lv_eval[rows])
+                acc = np.flatnonzero(accept)
+                accept[acc] = second[acc] < ((ll_new[acc] - s_new[acc])
+                                             - (log_lik[acc] - screen_now[acc]))
+                screen_now = np.where(accept, s_new, screen_now)
+            else:
+                ll_new = target(prop['theta'], beta_new, lv_eval)
+                log_a = np.where(ok, (lp_new + ll_new + new_extra)
+                                 - (lp + log_lik + cur_extra), -np.inf)
+                accept = np.log(rng.random(n)) < log_a
             for key, value in prop.items():
                 state[key] = np.where(accept.reshape((n,) + (1,) * (value.ndim - 1)), value,
                                       state[key])

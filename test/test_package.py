@@ -163,3 +163,21 @@ def test_repository_refers_only_to_files_it_contains():
             if token.split('/')[0] in ('pref_learner', 'test', 'launch', 'resource', '.ci') \
                     or token in ('requirements.txt', 'setup.py'):
                 assert (ROOT / token).exists(), f'{doc} quotes {token}, which does not exist'
+
+
+def test_node_processes_default_to_one_blas_thread_and_keep_a_users_setting():
+    # The ROS shell sets OPENBLAS/OMP/MKL_NUM_THREADS to 1 before a node module imports
+    # numpy, unless the environment already has a value (common practice for many
+    # mid-sized products on few cores).
+    import os
+    code = ('import pref_learner.ros, os; '
+            'print(os.environ["OPENBLAS_NUM_THREADS"], os.environ["OMP_NUM_THREADS"])')
+    env = {k: v for k, v in os.environ.items()
+           if k not in ('OPENBLAS_NUM_THREADS', 'OMP_NUM_THREADS', 'MKL_NUM_THREADS')}
+    out = subprocess.run([sys.executable, '-c', code], env=env, capture_output=True,
+                         text=True, check=True).stdout.split()
+    assert out == ['1', '1']
+    env['OPENBLAS_NUM_THREADS'] = '2'
+    out = subprocess.run([sys.executable, '-c', code], env=env, capture_output=True,
+                         text=True, check=True).stdout.split()
+    assert out == ['2', '1']
