@@ -700,7 +700,12 @@ def reparametrize_arc_length(q: np.ndarray, tool: np.ndarray) -> np.ndarray:
     ok = total[:, 0] > 1e-9
     u = np.where(ok[:, None], s / np.where(ok[:, None], total, 1.0), np.linspace(0, 1, T))
     g = np.linspace(0.0, 1.0, T)
-    idx = np.clip((u[:, None, :] <= g[None, :, None]).sum(-1) - 1, 0, T - 2)   # (M, T)
+    # u rises along each row, so the count of u <= g is a binary search (O(T log T) per
+    # row; counting over every pair was O(T^2) and the larger part of the retiming)
+    idx = np.empty((M, T), dtype=np.int64)
+    for i in range(M):
+        idx[i] = np.searchsorted(u[i], g, side='right')
+    idx = np.clip(idx - 1, 0, T - 2)                                        # (M, T)
     u0 = np.take_along_axis(u, idx, 1)
     u1 = np.take_along_axis(u, idx + 1, 1)
     w = np.where(u1 > u0, (g[None] - u0) / np.where(u1 > u0, u1 - u0, 1.0), 0.0)

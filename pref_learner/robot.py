@@ -65,6 +65,10 @@ def _joint_kind(jmodel) -> Tuple[str, np.ndarray]:
                      'continuous and prismatic joints')
 
 
+#: configurations per block of :meth:`RobotModel.frame_poses`
+_FK_BLOCK = 2048
+
+
 def _rotate(r: np.ndarray, v: np.ndarray) -> np.ndarray:
     """``r v`` for rotations ``r (3, 3, b)`` (component-major) and ``v (3,)``: ``(3, b)``."""
     nz = np.flatnonzero(v)
@@ -298,6 +302,31 @@ class RobotModel:
         lead = q.shape[:-1]
         qf = q.reshape(-1, self.n)
         b = qf.shape[0]
+        names = tuple(frames)
+        fpos = np.empty((b, len(names), 3))
+        frot = np.empty((b, len(names), 3, 3))
+        jp = jr = None
+        if with_jacobian:
+            jp = np.zeros((b, len(names), 3, self.n))
+            jr = np.zeros((b, len(names), 3, self.n))
+        # blocks of configurations: a block's (3, 3, block) rotations stay in cache (one
+        # 64-waypoint set of 500 paths at once took about 1.5 times as long); every value
+        # is computed element by element, so the blocks do not change a bit of the result
+        for a in range(0, b, _FK_BLOCK):
+            e = min(b, a + _FK_BLOCK)
+            self._frame_block(qf[a:e], names, fpos[a:e], frot[a:e],
+                              None if jp is None else jp[a:e], None if jr is None else jr[a:e])
+        out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),
+                         frot.reshape(lead + (len(names), 3, 3)))
+        if with_jacobian:
+            return out, (jp.reshape(lead + (len(names), 3, self.n)),
+                         jr.reshape(lead + (len(names), 3, self.n)))
+        return out
+
+    def _frame_block(self, qf, names, fpos, frot, jp, jr) -> None:
+        """Fill one block's ``fpos, frot`` (and ``jp, jr`` when given) for ``qf (b, n)``."""
+        with_jacobian = jp is not None
+        b = qf.shape[0]
         model = self.model
         # Component-major layout: a rotation is (3, 3, b) and a position (3, b),
         # so every operation runs on contiguous rows of b values (the
@@ -346,13 +375,6 @@ class RobotModel:
             if with_jacobian and iq is not None:
                 axis_w[jid] = _rotate(r0, a)
                 origin_w[jid] = p
-        names = tuple(frames)
-        fpos = np.empty((b, len(names), 3))
-        frot = np.empty((b, len(names), 3, 3))
-        jp = jr = None
-        if with_jacobian:
-            jp = np.zeros((b, len(names), 3, self.n))
-            jr = np.zeros((b, len(names), 3, self.n))
         for k, name in enumerate(names):
             fr = model.frames[self.frame_id(name)]
             j = fr.parentJoint
@@ -374,12 +396,6 @@ class RobotModel:
                             jp[:, k, :, iq] = _cross(w, pk - origin_w[anc]).T
                             jr[:, k, :, iq] = w.T
                     anc = model.parents[anc]
-        out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),
-                         frot.reshape(lead + (len(names), 3, 3)))
-        if with_jacobian:
-            return out, (jp.reshape(lead + (len(names), 3, self.n)),
-                         jr.reshape(lead + (len(names), 3, self.n)))
-        return out
 
     def pin_frame_jacobian(self, q: np.ndarray, frame: str) -> np.ndarray:
         """6 x n frame Jacobian (LOCAL_WORLD_ALIGNED) by pinocchio, chain columns only."""

@@ -72,6 +72,26 @@ def test_batched_fk_and_jacobian_match_pinocchio(arm):
         np.testing.assert_allclose(jr[i, 0], jac[3:], atol=1e-12)
 
 
+def test_fk_in_blocks_matches_pinocchio_across_block_boundaries(arm):
+    # frame_poses works through blocks of configurations (robot._FK_BLOCK); configurations
+    # on either side of each boundary, and the batch's shape, must come out as pinocchio
+    # computes them one at a time (reference), and equal to an unblocked computation.
+    from pref_learner import robot as robot_mod
+    rng = np.random.default_rng(2)
+    blk = robot_mod._FK_BLOCK
+    q = arm.random_configurations(2 * blk + 7, rng).reshape(1, 2 * blk + 7, -1)
+    poses, (jp, _) = arm.frame_poses(q, ['tool_tip', 'link_4'], with_jacobian=True)
+    assert poses.positions.shape == (1, 2 * blk + 7, 2, 3)
+    for i in (0, blk - 1, blk, 2 * blk - 1, 2 * blk, 2 * blk + 6):
+        p, r = arm.pin_frame_pose(q[0, i], 'tool_tip')
+        np.testing.assert_allclose(poses.positions[0, i, 0], p, atol=1e-12)
+        np.testing.assert_allclose(poses.rotations[0, i, 0], r, atol=1e-12)
+        np.testing.assert_allclose(jp[0, i, 0], arm.pin_frame_jacobian(q[0, i], 'tool_tip')[:3],
+                                   atol=1e-12)
+    one = arm.frame_poses(q[0, blk - 3:blk + 3], ['tool_tip', 'link_4'])
+    np.testing.assert_array_equal(one.positions, poses.positions[0, blk - 3:blk + 3])
+
+
 @pytest.mark.parametrize('l1, l2', [(0.3, 0.25), (0.4, 0.1)])
 def test_planar_two_link_closed_form(l1, l2):
     # Reference: Spong, Hutchinson & Vidyasagar, Robot Modeling and Control (2006),
