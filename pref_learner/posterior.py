@@ -396,6 +396,83 @@ class StackedSets:
         return out
 
 
+#: alternatives per stored set and level that the moves' screen compares the demonstration with
+SCREEN_OPTIONS = 24
+
+
+class SubsetScreen:
+    """A cheap stand-in for the summed log-likelihood of stored sets at one level.
+
+    Each set's demonstration is compared with the first ``k`` of the level's
+    ``m`` alternatives (independent draws, so a random subset of them), each
+    standing for ``m / k`` of them in the log-partition; the demonstration's
+    own terms (linear in ``u``, the level's density, its similarity term) are
+    the target's. Deterministic and O(sets x k) per point, so the moves can
+    screen proposals with it before computing the exact value (delayed
+    acceptance, see :meth:`MoveTarget.screen`); with ``k >= m`` it is exact.
+    """
+
+    #: points per block (bounds the (points, sets, k) temporaries to a few MB)
+    BLOCK = 128
+
+    def __init__(self, records: Sequence[ChoiceRecord], level: int, less: bool,
+                 k: int = SCREEN_OPTIONS):
+        cols = [rec.columns(level) for rec in records]
+        kk = max(1, min([k] + [len(c) - 1 for c in cols]))
+        x, off = [], []
+        chosen, constant = 0.0, 0.0
+        for rec, c in zip(records, cols):
+            sub = c[:1 + kk]
+            s = rec.log_similarity(level, c)[:1 + kk] if less else np.zeros(1 + kk)
+            weight = np.full(1 + kk, math.log((len(c) - 1) / kk))
+            weight[0] = 0.0
+            x.append(rec.features[sub])
+            off.append(weight - s)
+            chosen = chosen + rec.features[rec.chosen]
+            constant += float(rec.log_density[level] - s[0])
+        self.n_sets = len(records)
+        self.x = np.concatenate(x).T.copy()                  # (d, sets (1 + k))
+        self.offsets = np.concatenate(off).reshape(self.n_sets, 1 + kk)
+        self.chosen = np.asarray(chosen, dtype=np.float64)
+        self.constant = constant
+
+    def __call__(self, u: np.ndarray) -> np.ndarray:
+        """Return the screen's summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
+        out = u @ self.chosen + self.constant
+        for a in range(0, u.shape[0], self.BLOCK):
+            e = (u[a:a + self.BLOCK] @ self.x).reshape(-1, self.n_sets, self.offsets.shape[1])
+            e += self.offsets
+            top = e.max(axis=2, keepdims=True)
+            e -= top
+            np.exp(e, out=e)
+            out[a:a + self.BLOCK] -= (np.log(e.sum(axis=2)) + top[..., 0]).sum(axis=1)
+        return out
+
+
+class _Sum:
+    """The sum of several functions of ``u`` (an expansion of older sets, a screen of newer)."""
+
+    def __init__(self, parts):
+        self.parts = tuple(parts)
+
+    def __call__(self, u: np.ndarray) -> np.ndarray:
+        return sum(p(u) for p in self.parts)
+
+
+def _by_level(screens, theta: np.ndarray, beta: np.ndarray,
+              level: Optional[np.ndarray]) -> np.ndarray:
+    """Evaluate per-level functions of ``u = beta theta`` at points ``(n,)`` of their levels."""
+    u = beta[:, None] * theta
+    if level is None:
+        return screens[0](u)
+    out = np.empty(len(u))
+    for g, sc in enumerate(screens):
+        sel = np.flatnonzero(level == g)
+        if sel.size:
+            out[sel] = sc(u[sel])
+    return out
+
+
 class MoveTarget:
     """The log-likelihood of the stored sets as the moves evaluate it.
 
@@ -444,28 +521,32 @@ class MoveTarget:
                level: Optional[np.ndarray]) -> Tuple[np.ndarray, np.ndarray]:
         """Return a cheap stand-in for the target and where the target differs from it.
 
-        ``(s (n,), differs (n,) bool)``: ``s`` is each level's expansion of all
-        its stored sets (``screens[g]``, checked or not), ``-inf`` beyond the
-        trust region as the target; ``differs`` marks the points whose target
-        is not ``s``: their level's expansion failed its check or covers only
-        its oldest sets (``screen_exact[g]``), or they lie beyond the level's
-        checked radius. The moves evaluate the target at those points only
+        ``(s (n,), differs (n,) bool)``: ``s`` is each level's screen
+        (``screens[g]``): its checked expansion where the target is that
+        expansion, else the expansion of the sets it covers plus a
+        :class:`SubsetScreen` of the sets scored exactly; ``-inf`` beyond the
+        trust region as the target. ``differs`` marks the points whose target
+        is not ``s``: their level scores some sets exactly
+        (``screen_exact[g]``; every level when the target is exact), or they
+        lie beyond the level's checked radius. The moves evaluate the target at those points only
         when the screen accepts them (delayed acceptance, Christen & Fox 2005).
         """
         u = beta[:, None] * theta
         lev = np.zeros(len(u), dtype=np.int64) if level is None else level
         s = np.empty(len(u))
-        differs = np.zeros(len(u), dtype=bool)
-        r = self.radii(u)
+        differs = np.ones(len(u), dtype=bool)
+        r = self.radii(u) if self.approximate else None
         for g, sc in enumerate(self.screens):
             sel = np.flatnonzero(lev == g)
             if not sel.size:
                 continue
             s[sel] = sc(u[sel])
-            differs[sel] = True if self.screen_exact[g] else r[sel] > self.inner[g]
-        outside = r > self.radius
-        s[outside] = -np.inf
-        differs[outside] = False
+            if r is not None and not self.screen_exact[g]:
+                differs[sel] = r[sel] > self.inner[g]
+        if r is not None:
+            outside = r > self.radius
+            s[outside] = -np.inf
+            differs[outside] = False
         return s, differs
 
     def radii(self, u: np.ndarray) -> np.ndarray:
@@ -639,11 +720,9 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         r_picks = r[picks]
         for g in range(cfg.n_levels):
             split, found, reach = len(post.records), None, np.inf
-            for attempt in range(3):
+            for _ in range(3):
                 prefix = post.records[:split]
                 ex = expand_loglik(prefix, g, anchor, less)
-                if attempt == 0:
-                    screens.append(ex)        # every set: the level's screen (checked or not)
                 err = np.abs(ex(u[picks]) - StackedSets(prefix, g, less)(u[picks]))
                 mean, worst = float(err[:spread].mean()), float(err.max())
                 if mean <= tol and worst <= cap:
@@ -667,14 +746,22 @@ class ExpansionMoveLikelihood(MoveLikelihood):
                     break
             expansions.append(found)
             splits.append(split if found is not None else 0)
+            rest = post.records[splits[-1]:]
+            if found is None:
+                screens.append(SubsetScreen(rest, g, less))
+            elif rest:
+                screens.append(_Sum([found, SubsetScreen(rest, g, less)]))
+            else:
+                screens.append(found)
             inner.append(reach)
             means.append(mean)
             worsts.append(worst)
-        if all(ex is None for ex in expansions):
-            return MoveTarget(post, error=float(np.mean(means)), error_max=float(max(worsts)))
-        used = [i for i, ex in enumerate(expansions) if ex is not None]
         n_sets = len(post.records)
         screen_exact = [ex is None or splits[i] < n_sets for i, ex in enumerate(expansions)]
+        if all(ex is None for ex in expansions):
+            return MoveTarget(post, error=float(np.mean(means)), error_max=float(max(worsts)),
+                              screens=screens, screen_exact=screen_exact)
+        used = [i for i, ex in enumerate(expansions) if ex is not None]
         return MoveTarget(post, expansions, anchor, precision, TRUST_REACH * float(r.max()),
                           float(np.mean([means[i] for i in used])),
                           float(max(worsts[i] for i in used)), splits, inner, screens,
@@ -1229,6 +1316,11 @@ class ParticlePosterior:
         screened = target.screened
         if screened:
             screen_now, _ = target.screen(self.theta, self.beta, self.level)
+            if extra is not None:       # the demonstration being weighed in, screened too
+                less = cfg.choice_model.uses_similarity
+                extra_screen = [SubsetScreen([extra], g, less) for g in range(cfg.n_levels)]
+                screen_now = screen_now + phi * _by_level(extra_screen, self.theta, self.beta,
+                                                          self.level)
         consts = [m.setup(self) for m in moves]
         base = 2.38 / math.sqrt(max(sum(m.dims(self) for m in moves), 1))
         factor = float(self.step_size)
@@ -1249,32 +1341,43 @@ class ParticlePosterior:
             beta_new = self.beta if prop_lb is None else np.exp(prop_lb)
             ok = np.isfinite(lp_new)
             lv_eval = None if prop_lv is None else np.clip(prop_lv, 0, cfg.n_levels - 1)
-            cur_extra = 0.0
-            new_extra = 0.0
-            if extra is not None:
-                ex = self.record_loglik(extra, prop['theta'], beta_new, lv_eval)
-                new_extra = phi * ex
-                cur_extra = phi * ll_extra
             if screened:
                 # delayed acceptance (Christen & Fox 2005): the screen decides first; the
                 # target is evaluated only where it differs from the screen and the screen
                 # accepted, and a second test corrects by the difference, so the chain
-                # still leaves prior x exp(target) invariant
+                # still leaves prior x exp(target) x (extra's likelihood)^phi invariant
                 ll_new, differs = target.screen(prop['theta'], beta_new, lv_eval)
-                log_a = np.where(ok, (lp_new + ll_new + new_extra)
-                                 - (lp + screen_now + cur_extra), -np.inf)
+                s_new = ll_new.copy()
+                if extra is not None:
+                    s_new += phi * _by_level(extra_screen, prop['theta'], beta_new, lv_eval)
+                log_a = np.where(ok, (lp_new + s_new) - (lp + screen_now), -np.inf)
                 accept = np.log(rng.random(n)) < log_a
                 second = np.log(rng.random(n))
-                rows = np.flatnonzero(accept & differs)
-                s_new = ll_new.copy()
+                acc = np.flatnonzero(accept)
+                rows = acc[differs[acc]]
+
+                def sub(a, rows):
+                    return None if a is None else a[rows]
                 if rows.size:
                     ll_new[rows] = target(prop['theta'][rows], beta_new[rows],
-                                          None if lv_eval is None else lv_eval[rows])
-                acc = np.flatnonzero(accept)
-                accept[acc] = second[acc] < ((ll_new[acc] - s_new[acc])
-                                             - (log_lik[acc] - screen_now[acc]))
+                                          sub(lv_eval, rows))
+                exact_new, exact_now = ll_new[acc], log_lik[acc]
+                if extra is not None:
+                    ex = ll_extra.copy()
+                    ex[acc] = self.record_loglik(extra, prop['theta'][acc], beta_new[acc],
+                                                 sub(lv_eval, acc))
+                    exact_new = exact_new + phi * ex[acc]
+                    exact_now = exact_now + phi * ll_extra[acc]
+                accept[acc] = second[acc] < ((exact_new - s_new[acc])
+                                             - (exact_now - screen_now[acc]))
                 screen_now = np.where(accept, s_new, screen_now)
             else:
+                cur_extra = 0.0
+                new_extra = 0.0
+                if extra is not None:
+                    ex = self.record_loglik(extra, prop['theta'], beta_new, lv_eval)
+                    new_extra = phi * ex
+                    cur_extra = phi * ll_extra
                 ll_new = target(prop['theta'], beta_new, lv_eval)
                 log_a = np.where(ok, (lp_new + ll_new + new_extra)
                                  - (lp + log_lik + cur_extra), -np.inf)

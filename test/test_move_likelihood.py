@@ -11,7 +11,7 @@ from scipy import integrate, stats
 from pref_learner import choice
 from pref_learner.posterior import (MAX_ERROR_FACTOR, MOVE_LIKELIHOODS, MoveLikelihood,
                                     MoveTarget, ParticlePosterior, PosteriorConfig,
-                                    StackedSets, expand_loglik)
+                                    StackedSets, SubsetScreen, expand_loglik)
 
 
 def _records(post, rng, n_sets, k, true_u, model):
@@ -136,6 +136,33 @@ def test_expansion_posterior_matches_quadrature_after_updates():
     th = np.stack([np.cos(grid), np.sin(grid)], 1)
     mean = integrate.trapezoid(pdf[:, None] * th, grid, axis=0)
     np.testing.assert_allclose(post.weights @ post.theta, mean, atol=0.01)
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_subset_screen_is_exact_with_every_option_and_weighted_with_fewer(model):
+    # With k >= the level's alternatives the screen is the exact summed log-likelihood
+    # (reference: total_loglik, set by set). With k fewer it is, per set, the chosen term
+    # minus scipy.special.logsumexp over the demonstration and the first k alternatives,
+    # these weighted m / k (the documented form), plus the level's density.
+    from scipy.special import logsumexp
+    cfg, p = _two_level_cloud(12, model, 1.5, 0.1)
+    less = model == 'less'
+    u = p.beta[:200, None] * p.theta[:200]
+    for g in (0, 1):
+        lev = np.full(200, g)
+        full = SubsetScreen(p.records, g, less, k=1000)(u)
+        np.testing.assert_allclose(full, p.total_loglik(p.theta[:200], p.beta[:200], lev),
+                                   rtol=1e-12, atol=1e-9)
+        got = SubsetScreen(p.records, g, less, k=5)(u)
+        ref = np.zeros(200)
+        for rec in p.records:
+            cols = rec.columns(g)
+            sub = cols[:6]
+            s = rec.log_similarity(g, cols)[:6] if less else np.zeros(6)
+            b = np.array([1.0] + [(len(cols) - 1) / 5.0] * 5)
+            e = u @ rec.features[sub].T - s
+            ref += e[:, 0] + rec.log_density[g] - logsumexp(e, axis=1, b=b)
+        np.testing.assert_allclose(got, ref, rtol=1e-12, atol=1e-9)
 
 
 class _CountingTarget(MoveTarget):
@@ -345,3 +372,17 @@ def test_tempering_without_moves_between_steps_matches_quadrature():
         np.testing.assert_allclose(post.weights @ post.theta, exact_mean, atol=0.02)
     with pytest.raises(ValueError, match='tempering_move_rounds'):
         PosteriorConfig(tempering_move_rounds=9)
+
+
+def test_an_exact_target_is_screened_by_subsets_and_scored_exactly_everywhere():
+    # A wide cloud (no expansion passes its check): the target is the exact sum (reference
+    # total_loglik) and every point differs from its screen, so every screened proposal the
+    # screen lets through is scored exactly.
+    cfg, p = _two_level_cloud(13, 'less', 1.5, 3.0)
+    p = replace(p, records=p.records[:3])
+    target = p.move_target(p.theta, p.beta, p.level)
+    assert target.screened and not target.approximate
+    s, differs = target.screen(p.theta, p.beta, p.level)
+    assert differs.all() and np.all(np.isfinite(s))
+    np.testing.assert_allclose(target(p.theta, p.beta, p.level),
+                               p.total_loglik(p.theta, p.beta, p.level), rtol=1e-12)
