@@ -311,6 +311,10 @@ def test_a_task_taught_before_is_proposed_after_the_untaught_ones():
     again = guide.score(tasks, taught=[(best.goal, best.start)])
     assert [s.name for s in again] == [s.name for s in fresh[1:]] + [best.name]
     assert again[-1].times_taught == 1 and again[-1].gain == best.gain
+    # without fresh_first the gain alone ranks: the taught task stays first
+    greedy = TaskGuide(L, n_draws=1, fresh_first=False)
+    assert [s.name for s in greedy.score(tasks, taught=[(best.goal, best.start)])] == \
+        [s.name for s in fresh]
     # by default the learner's own demonstrations count: teach one of task 2
     from pref_learner.sim import SimulatedTeacher, TeacherConfig
     person = SimulatedTeacher(L, np.ones(L.features.d), TeacherConfig(seed=5))
