@@ -410,8 +410,9 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
 
     ``next_task_ms``: median over repetitions of scoring 20 tasks (the
     scenario's and random in-limit ones) after two demonstrations, with
-    every task's option set already built (the node builds each once and
-    reuses it); ``next_task_first_ms`` includes building the 20 sets.
+    every task's option sets (``TaskGuide.n_draws`` each) already built (the
+    node builds them once and reuses them); ``next_task_first_ms`` includes
+    building them.
     The study runs at the smaller sizes of ``validate.GUIDANCE_SIZES``.
     """
     from .features import load_scenario

@@ -17,8 +17,9 @@ smaller ones still). The studies:
    when the same demonstrations are compared with 10 independently drawn sets;
 5. calibration -- coverage and cosine for people who are not the learner's twin,
    and a simulation-based calibration of the sampler;
-6. guidance -- teaching the task of largest expected information gain against
-   teaching the tasks in turn, paired people and seeds.
+6. guidance -- teaching the proposed task (the least taught, then the largest
+   expected information gain) against teaching the tasks in turn, paired people
+   and seeds.
 """
 
 from __future__ import annotations
@@ -424,7 +425,9 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
     person ``matched`` (beta 5) when i is even, else ``MISMATCHED[(i // 2) % 3]``
     with beta ``PERSON_BETAS[(i // 6) % 3]``, so the person is not the learner's
     twin. Round-robin demonstrates :func:`study_tasks` in turn; guided, the
-    task of largest expected information gain among the same tasks. Figures:
+    task :meth:`TaskGuide.propose` proposes among the same tasks (a task taught
+    fewer times first, in either direction; then the largest expected information
+    gain, the mean over the guide's set draws). Figures:
     demonstrations to reach cosine 0.9 (median; never reached counts as
     ``n_demos``), cosine after 5 and after ``n_demos``.
     """

@@ -259,3 +259,66 @@ def test_realised_information_is_the_kl_divergence_and_averages_to_the_gain():
             _enumerated_mi(prior, probs), rel=1e-10)
         avg += pc[c] * got['information_gain']['boltzmann']
     assert avg == pytest.approx(_enumerated_mi(prior, probs), rel=1e-10)
+
+
+def test_times_taught_counts_demonstrations_of_the_task_in_either_direction():
+    # definition of the module docstring: both ends within the tolerance (max-norm over
+    # joints) of start and goal, or of goal and start; values checked by hand
+    from pref_learner.guidance import times_taught
+    s, g = np.array([0.0, 1.0]), np.array([1.0, 0.0])
+    taught = [(s + 0.05, g - 0.05),            # forward, inside 0.1
+              (g, s),                          # reversed
+              (s + [0.0, 0.15], g),            # start 0.15 off on one joint: another task
+              (s, s)]                          # from the start back to it: another task
+    assert times_taught(s, g, taught, 0.1) == 2
+    assert times_taught(s, g, taught, 0.2) == 3
+    assert times_taught(s, g, taught, 0.0) == 1
+    assert times_taught(s, g, [], 0.1) == 0
+
+
+def test_gain_of_a_task_is_the_mean_over_its_independent_set_draws():
+    # the gain of each draw is information_gain on that draw (checked against enumeration
+    # above); the task's gain is their arithmetic mean (numpy reference)
+    from pref_learner.guidance import TaskGuide
+    from pref_learner.learner import Learner, LearnerConfig
+    L = Learner(LearnerConfig(n_particles=300, n_alternatives=40))
+    task = L.tasks()[0]
+    guide = TaskGuide(L, n_draws=3)
+    draws = guide.option_draws(*task)
+    assert len(draws) == 3
+    # independent draws, not copies; the first is the set a one-draw guide scores
+    assert not np.allclose(draws[0].features, draws[1].features)
+    np.testing.assert_array_equal(TaskGuide(L, n_draws=1).options(*task).features,
+                                  draws[0].features)
+    each = [information_gain(L.posteriors['less'], o) for o in draws]
+    got = guide.score([task])[0]
+    assert got.gain == pytest.approx(np.mean(each), rel=1e-12)
+    assert got.gains['less'] == pytest.approx(np.mean(each), rel=1e-12)
+    with pytest.raises(ValueError):
+        TaskGuide(L, n_draws=0)
+
+
+def test_a_task_taught_before_is_proposed_after_the_untaught_ones():
+    from pref_learner.guidance import TaskGuide
+    from pref_learner.learner import Learner, LearnerConfig
+    L = Learner(LearnerConfig(n_particles=300, n_alternatives=40))
+    tasks = L.tasks()
+    guide = TaskGuide(L, n_draws=1)
+    fresh = guide.score(tasks, taught=[])
+    best = fresh[0]
+    assert best.times_taught == 0
+    # the most informative task, demonstrated once in reverse, goes behind every other
+    again = guide.score(tasks, taught=[(best.goal, best.start)])
+    assert [s.name for s in again] == [s.name for s in fresh[1:]] + [best.name]
+    assert again[-1].times_taught == 1 and again[-1].gain == best.gain
+    # without fresh_first the gain alone ranks: the taught task stays first
+    greedy = TaskGuide(L, n_draws=1, fresh_first=False)
+    assert [s.name for s in greedy.score(tasks, taught=[(best.goal, best.start)])] == \
+        [s.name for s in fresh]
+    # by default the learner's own demonstrations count: teach one of task 2
+    from pref_learner.sim import SimulatedTeacher, TeacherConfig
+    person = SimulatedTeacher(L, np.ones(L.features.d), TeacherConfig(seed=5))
+    person.feed_one(L, 0, 10**18, tasks[2])
+    assert L.n_demonstrations == 1
+    counts = {s.name: s.times_taught for s in guide.score(tasks)}
+    assert counts == {t[0]: int(t[0] == tasks[2][0]) for t in tasks}
