@@ -104,6 +104,39 @@ def path_deviation(q: np.ndarray, span: np.ndarray) -> np.ndarray:
     return np.sqrt(np.mean(np.sum(r * r, axis=-1), axis=-1))
 
 
+#: sine modes of the perpendicular deviation that the ``modes`` option density uses
+N_OPTION_MODES = 3
+
+
+def path_modes(q: np.ndarray, span: np.ndarray, n_modes: int = N_OPTION_MODES) -> np.ndarray:
+    """Coefficients of each path's deviation from its straight line on its lowest sine modes.
+
+    ``q (K, T, n)`` joint paths, ``span (n,)`` the joint ranges that scale the
+    coordinates (as the option spreads do); returns ``(K, n_modes, n)``: the
+    part of every waypoint perpendicular to the start-goal line (as
+    :func:`path_deviation`), projected on the orthonormal discrete sine basis
+    ``sqrt(2 / (T - 1)) sin(pi k i / (T - 1))``, ``k = 1..n_modes``, ``i`` the
+    waypoint (the eigenvectors of the second-difference operator with fixed
+    ends, so the smooth noise's modes are independent). Each coefficient
+    vector lies in the ``n - 1`` dimensions perpendicular to the line. The
+    lowest modes carry the shape of an option; the higher ones mostly its
+    resampling and smoothing, which differ between a demonstration and a draw.
+    """
+    x = np.asarray(q, dtype=np.float64) / np.asarray(span, dtype=np.float64)
+    T = x.shape[1]
+    if not 1 <= n_modes <= T - 2:
+        raise ValueError(f'n_modes must be in [1, {T - 2}] for {T} waypoints, got {n_modes}')
+    start = x[:, :1]
+    u = x[:, -1:] - start
+    u = u / np.maximum(np.linalg.norm(u, axis=-1, keepdims=True), 1e-12)
+    r = x - start
+    r = r - np.sum(r * u, axis=-1, keepdims=True) * u
+    i = np.arange(T)
+    basis = np.sqrt(2.0 / (T - 1)) * np.sin(np.pi * np.arange(1, n_modes + 1)[:, None]
+                                            * i[None, :] / (T - 1))
+    return np.einsum('kt,mtn->mkn', basis, r)
+
+
 KINDS = ('smooth', 'near_optimal', 'perturb', 'planner')
 
 

@@ -67,7 +67,7 @@ class LearnerConfig:
     spreads: Tuple[float, ...] = (0.04, 0.08, 0.16)   # option spreads, inferred among them
     ascent_steps: int = 8
     ascent_step: float = 0.25
-    option_density: str = 'deviation'   # level evidence: deviation | gaussian | kde
+    option_density: str = 'modes'       # level evidence: modes | deviation | gaussian | kde
     n_waypoints: int = 64
     resample: str = 'arc_length'
     lowpass_hz: float = 10.0

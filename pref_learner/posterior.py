@@ -81,7 +81,77 @@ def sample_uniform_sphere(n: int, d: int, rng: np.random.Generator) -> np.ndarra
 
 
 #: how an option level's density of the demonstration is estimated (several levels)
-OPTION_DENSITIES = ('deviation', 'gaussian', 'kde')
+OPTION_DENSITIES = ('modes', 'deviation', 'gaussian', 'kde')
+
+#: points (odd) of the quadrature of the amplitude integral (:func:`log_uniform_scale_mixture`)
+_AMPLITUDE_POINTS = 4001
+
+
+def log_uniform_scale_mixture(x: np.ndarray, var: np.ndarray) -> float:
+    """Log density at ``x (D,)`` of ``a z sqrt(var)``, ``a ~ U[0, 1]``, ``z ~ N(0, I_D)``.
+
+    The law of a smooth alternative's coordinates (:mod:`pref_learner.alternatives`:
+    Gaussian noise times an amplitude uniform in [0, 1]). With
+    ``Q = sum x^2 / var`` the density is
+    ``(2 pi)^(-D/2) prod(var)^(-1/2) int_0^1 a^-D exp(-Q / (2 a^2)) da``; the
+    integral (``1/2 (2/Q)^((D-1)/2) Gamma((D-1)/2, Q/2)`` for D > 1) is
+    evaluated in log space by Simpson's rule in ``t = log a`` around the
+    integrand's peak, so it neither underflows far beyond the support
+    (``Q >> D``) nor overflows near the origin. ``Q`` is floored at 1e-300.
+    """
+    x = np.asarray(x, dtype=np.float64).ravel()
+    v = np.asarray(var, dtype=np.float64).ravel()
+    if x.shape != v.shape or not np.all(v > 0):
+        raise ValueError('x and var must have the same size, var > 0')
+    D = x.size
+    Q = max(float(np.sum(x * x / v)), 1e-300)
+    s = max(D - 1, 1)
+    peak = 0.5 * math.log(Q / s)             # where the integrand in t = log a peaks
+    width = 1.0 / math.sqrt(2.0 * s)          # its standard deviation there (Laplace)
+    slope = Q - (D - 1)                       # the integrand's log-slope at a = 1
+    if slope > 0:                             # increasing up to a = 1: the mass is near it
+        lo = -min(40.0 * width + 1.0, 60.0 / slope)
+    else:
+        lo = peak - 40.0 * width - 1.0
+    t = np.linspace(lo, 0.0, _AMPLITUDE_POINTS)
+    f = (1.0 - D) * t - 0.5 * Q * np.exp(-2.0 * t)
+    top = float(f.max())
+    e = np.exp(f - top)
+    simpson = np.ones(_AMPLITUDE_POINTS)
+    simpson[1:-1:2], simpson[2:-1:2] = 4.0, 2.0
+    log_int = top + math.log(float(simpson @ e) * (t[1] - t[0]) / 3.0)
+    return float(-0.5 * D * math.log(2.0 * math.pi) - 0.5 * np.sum(np.log(v)) + log_int)
+
+
+def log_option_modes_density(alternatives: np.ndarray, x: np.ndarray) -> float:
+    """Log density of a path's deviation modes ``x (m, n)`` under one option level.
+
+    ``alternatives (M, m, n)``: the level's own paths' coefficients
+    (:func:`pref_learner.alternatives.path_modes`). Each mode's coefficient
+    vector lies in the ``n - 1`` dimensions perpendicular to the start-goal
+    line and, for the smooth sampler, is isotropic there (the noise is the
+    same in every joint's scaled coordinate) with a variance that falls
+    with the mode. The level is modelled as the sampler draws it: Gaussian
+    modes times one amplitude uniform in [0, 1] per path
+    (:func:`log_uniform_scale_mixture`), with each mode's unit-amplitude
+    variance matched to the level's paths by moments (``E a^2 = 1/3``, so 3 x
+    their mean square per dimension). Unlike a Gaussian of the same
+    variance, the law is flat in the amplitude up to the level's edge: a
+    demonstration that the choice tilted outward stays likely under its own
+    level (density about 1 / spread inside it) and is unlikely beyond it.
+    """
+    a = np.asarray(alternatives, dtype=np.float64)
+    x = np.asarray(x, dtype=np.float64)
+    if a.ndim != 3 or x.shape != a.shape[1:] or a.shape[2] < 2:
+        raise ValueError('option modes must be (M, m, n) and (m, n) with n >= 2 joints')
+    free = a.shape[2] - 1
+    var = 3.0 * np.mean(np.sum(a * a, axis=2), axis=0) / free          # (m,)
+    var = np.maximum(var, 1e-300)
+    q = np.sum(x * x, axis=1)                                          # (m,)
+    # the isotropic law on the (n - 1)-dimensional subspace: per mode, a squared norm
+    # q_k over ``free`` dimensions of variance var_k (one coordinate of q_k each)
+    coords = np.repeat(np.sqrt(q / free), free)
+    return log_uniform_scale_mixture(coords, np.repeat(var, free))
 
 
 def log_option_density(points: np.ndarray, x: np.ndarray, kind: str = 'gaussian') -> float:
@@ -126,10 +196,14 @@ class ChoiceRecord:
         set (demonstration included); ``None`` for the Boltzmann model.
     log_sim_chosen : (L,) the demonstration's log-similarity sum within each level's set.
     log_density : (L,) log density of the demonstration under each level's
-        alternatives (:func:`log_option_density`): of its features (``gaussian``,
-        ``kde``) or of the log of its deviation from the straight line
-        (``deviation``, a one-dimensional kernel estimate; give ``deviation (K,)``
-        to :meth:`build`, see :func:`pref_learner.alternatives.path_deviation`).
+        alternatives: of the lowest sine modes of its deviation from the straight
+        line under the sampler's own law of a level (``modes``,
+        :func:`log_option_modes_density`; give ``deviation (K, modes, n)`` to
+        :meth:`build`, see :func:`pref_learner.alternatives.path_modes`), of its
+        features (``gaussian``, ``kde``, :func:`log_option_density`) or of the log
+        of its RMS deviation from the straight line (``deviation``, a
+        one-dimensional kernel estimate; give ``deviation (K,)``, see
+        :func:`pref_learner.alternatives.path_deviation`).
         It makes levels comparable: with it the likelihood is that of the
         demonstration, not only of the choice among a given set (0 with one level,
         where it is a constant).
@@ -149,7 +223,13 @@ class ChoiceRecord:
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
-        if deviation is not None:
+        if deviation is not None and density == 'modes':
+            deviation = np.asarray(deviation, dtype=np.float64)
+            if deviation.ndim != 3 or deviation.shape[0] != k \
+                    or not np.all(np.isfinite(deviation)):
+                raise ValueError(f'deviation must be the finite mode coefficients (K = {k}, '
+                                 'modes, joints) of every row (option density "modes")')
+        elif deviation is not None:
             deviation = np.asarray(deviation, dtype=np.float64)
             if deviation.shape != (k,) or not np.all(np.isfinite(deviation)) \
                     or np.any(deviation < 0):
@@ -172,10 +252,10 @@ class ChoiceRecord:
             ls = np.zeros(k)
             lsc = np.zeros(L)
         dens = np.zeros(L)
+        if L > 1 and density in ('deviation', 'modes') and deviation is None:
+            raise ValueError(f'option density "{density}" needs the deviation of every '
+                             'row from the straight line (several spread levels)')
         if L > 1 and density == 'deviation':
-            if deviation is None:
-                raise ValueError('option density "deviation" needs the deviation of every '
-                                 'row from the straight line (several spread levels)')
             # log scale: the levels' spreads are multiples of each other, so one
             # bandwidth rule fits them all; the log's Jacobian is the same for every level
             logdev = np.log(np.maximum(deviation, 1e-12))[:, None]
@@ -185,7 +265,9 @@ class ChoiceRecord:
                 s = choice.log_similarity_sums(x[cols], bandwidth)
                 ls[cols[1:]] = s[1:]
                 lsc[lev] = s[0]
-            if L > 1 and density == 'deviation':
+            if L > 1 and density == 'modes':
+                dens[lev] = log_option_modes_density(deviation[cols[1:]], deviation[c])
+            elif L > 1 and density == 'deviation':
                 dens[lev] = log_option_density(logdev[cols[1:]], logdev[c], 'kde')
             elif L > 1:
                 dens[lev] = log_option_density(x[cols[1:]], x[c], density)
@@ -1154,9 +1236,9 @@ class ParticlePosterior:
         """Validate one choice set and precompute what this model needs.
 
         ``groups (K,)``: the spread level of each alternative (needed with
-        more than one level); ``deviation (K,)``: each row's deviation from the
-        straight line (needed with several levels and ``option_density:
-        deviation``).
+        more than one level); ``deviation``: each row's deviation from the
+        straight line (needed with several levels and ``option_density``
+        ``modes``, ``(K, modes, n)``, or ``deviation``, ``(K,)``).
         """
         x = choice._check_matrix(features)
         if x.shape[1] != self.d:

@@ -28,7 +28,7 @@ from typing import Callable, Optional, Tuple
 import numpy as np
 import yaml
 
-from .alternatives import AlternativeSampler, SamplerConfig, path_deviation
+from .alternatives import AlternativeSampler, SamplerConfig, path_deviation, path_modes
 from .demonstrations import PrepareConfig, condition, reparametrize_arc_length
 from .features import FeatureConfigError, FeatureSet, default_features_path, load_scenario
 from .robot import RobotModel, default_urdf_path
@@ -361,12 +361,16 @@ class TaskModel:
         return self.retime(alts), groups
 
     def path_deviation(self, allq: np.ndarray) -> np.ndarray:
-        """Each row's deviation from its straight line (:func:`~.alternatives.path_deviation`).
+        """Each row's deviation from its straight line, as the option density needs it.
 
-        The evidence that tells the option spreads apart (``option_density:
-        deviation``), in the sampler's joint spans; ``allq`` as
-        :meth:`choice_set` returns it.
+        The evidence that tells the option spreads apart, in the sampler's
+        joint spans; ``allq`` as :meth:`choice_set` returns it. ``option_density:
+        modes``: the coefficients ``(K, modes, n)`` of its lowest sine modes
+        (:func:`~.alternatives.path_modes`); otherwise its RMS ``(K,)``
+        (:func:`~.alternatives.path_deviation`).
         """
+        if self.record.option_density == 'modes':
+            return path_modes(allq, self.sampler.span)
         return path_deviation(allq, self.sampler.span)
 
     def choice_set(self, q_demo: np.ndarray, rng: np.random.Generator,

@@ -71,7 +71,7 @@ def test_demo_learns_and_records(demo_run):
     assert r.returncode == 0, r.stderr[-2000:]
     res = json.loads((out / 'demo_result.json').read_text())
     assert res['n_demonstrations'] == 8
-    # measured 0.86 (the simulated person has other options than the learner and a beta it
+    # measured 0.97 (the simulated person has other options than the learner and a beta it
     # does not know); quality over many people is the calibration study's (bench calib_*)
     assert res['cosine']['less'] >= 0.8
     assert 'rationality (beta), less' in r.stdout and 'posterior predictive check' in r.stdout

@@ -57,8 +57,8 @@ def test_teaching_session_learns_true_weights(person, tmp_path):
         assert spin_until(ex, lambda: 'w' in got and np.allclose(
             got['w'], node.learner.summaries()[person].mean), 10)
         # learning quality over many people is the calibration study's job (bench keys
-        # calib_*); here one session must clearly learn (offline, same seeds: cosine 0.67
-        # for the LESS learner and 0.78 for the Boltzmann one; the person is not the
+        # calib_*); here one session must clearly learn (offline, same seeds: cosine 0.97
+        # for the LESS learner and 0.92 for the Boltzmann one; the person is not the
         # learner's twin: other option spread and waypoint count, beta unknown)
         assert float(got['w'] @ TRUE) >= 0.6
         # a subscriber that starts after the last update still gets it (transient local)

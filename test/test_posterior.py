@@ -2,6 +2,8 @@
 # SPDX-License-Identifier: Apache-2.0
 """Particle posterior against exact quadrature, an MCMC reference and properties."""
 
+import math
+
 import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
@@ -430,3 +432,131 @@ def test_moves_and_their_likelihoods_come_from_registries(monkeypatch):
                                       getattr(posts['exact_counted'], key))
     with pytest.raises(ValueError, match='exact, expansion, exact_counted'):
         PosteriorConfig(move_likelihood='quadratic')
+
+
+def test_uniform_scale_mixture_matches_scipy_and_the_incomplete_gamma():
+    # References: (1) scipy.integrate.quad over the amplitude a in [0, 1] of the normal
+    # density scipy.stats.multivariate_normal(0, a^2 diag(var)); (2) the closed form
+    # int_0^1 a^-D exp(-Q / (2 a^2)) da = 1/2 (2/Q)^((D-1)/2) Gamma((D-1)/2, Q/2)
+    # (substitute u = Q / (2 a^2); Gamma the upper incomplete gamma, scipy.special);
+    # (3) far beyond the support, where the incomplete gamma underflows, its asymptotic
+    # series Gamma(s, x) ~ x^(s-1) e^-x sum_k (s-1)...(s-k) / x^k (Abramowitz & Stegun
+    # 6.5.32).
+    from scipy.special import gammaincc, gammaln
+    from scipy.stats import multivariate_normal
+    from pref_learner.posterior import log_uniform_scale_mixture
+    rng = np.random.default_rng(82)
+    for D in (1, 3):
+        var = rng.uniform(0.5, 2.0, D)
+        for x in (rng.normal(size=D) * 0.3, rng.normal(size=D) * 1.5):
+            def pdf(a):
+                return multivariate_normal(np.zeros(D), np.diag(a * a * var)).pdf(x) \
+                    if a > 0 else 0.0
+            ref, _ = integrate.quad(pdf, 0.0, 1.0, epsabs=0, epsrel=1e-11, limit=200)
+            assert log_uniform_scale_mixture(x, var) == pytest.approx(math.log(ref), abs=1e-7)
+
+    def closed(Q, D, var):
+        s = 0.5 * (D - 1)
+        return (-0.5 * D * math.log(2 * math.pi) - 0.5 * np.sum(np.log(var)) + math.log(0.5)
+                + s * math.log(2 / Q) + gammaln(s) + math.log(gammaincc(s, Q / 2)))
+    D = 18
+    var = rng.uniform(0.5, 2.0, D)
+    z = rng.normal(size=D) * np.sqrt(var)
+    for amp in (0.05, 0.5, 1.0, 2.0):          # inside the support, at its edge, beyond
+        x = amp * z
+        Q = float(np.sum(x * x / var))
+        assert log_uniform_scale_mixture(x, var) == pytest.approx(closed(Q, D, var),
+                                                                  abs=1e-7)
+    x = 30.0 * z
+    Q = float(np.sum(x * x / var))
+    s, h = 0.5 * (D - 1), Q / 2
+    terms, t = [], 1.0
+    for k in range(8):
+        terms.append(t)
+        t *= (s - 1 - k) / h
+    log_gamma_upper = (s - 1) * math.log(h) - h + math.log(sum(terms))
+    far = (-0.5 * D * math.log(2 * math.pi) - 0.5 * np.sum(np.log(var)) + math.log(0.5)
+           + s * math.log(2 / Q) + log_gamma_upper)
+    assert log_uniform_scale_mixture(x, var) == pytest.approx(far, abs=1e-6)
+    # inside both supports the density is about 1 / spread (a point much nearer the
+    # origin than either edge): doubling the spread (var x 4) costs log 2
+    x = 0.02 * z
+    assert (log_uniform_scale_mixture(x, var) - log_uniform_scale_mixture(x, 4 * var)
+            == pytest.approx(math.log(2.0), abs=1e-6))
+    with pytest.raises(ValueError, match='var > 0'):
+        log_uniform_scale_mixture(x, -var)
+
+
+def test_path_modes_by_hand():
+    # Worked by hand (orthonormal discrete sine basis sqrt(2/(T-1)) sin(pi k i/(T-1)),
+    # DST-I; common practice): joint 0 moves 0 -> 1 along the line, joint 1 (span 2)
+    # bulges by 0.4 sin(pi i / (T - 1)), perpendicular to the line; scaled, that is
+    # 0.2 sin(...), whose first coefficient is 0.2 sqrt((T - 1) / 2) and the others 0.
+    # A path retimed along its own line has no deviation at all.
+    from pref_learner.alternatives import path_modes
+    T = 9
+    i = np.arange(T)
+    q = np.zeros((2, T, 2))
+    q[:, :, 0] = i / (T - 1)
+    q[0, :, 1] = 0.4 * np.sin(np.pi * i / (T - 1))
+    q[1, :, 0] = (i / (T - 1)) ** 2
+    c = path_modes(q, np.array([1.0, 2.0]), 3)
+    assert c.shape == (2, 3, 2)
+    ref = np.zeros((3, 2))
+    ref[0, 1] = 0.2 * math.sqrt((T - 1) / 2)
+    np.testing.assert_allclose(c[0], ref, atol=1e-14)
+    np.testing.assert_allclose(c[1], 0.0, atol=1e-14)
+    with pytest.raises(ValueError, match='n_modes'):
+        path_modes(q, np.array([1.0, 2.0]), T - 1)
+
+
+def test_modes_evidence_tells_the_spread_of_a_demonstration():
+    # Reference: the law of a smooth level (isotropic Gaussian modes perpendicular to
+    # the line, mode variances falling as k^-4, amplitude uniform in [0, 1]) integrated
+    # over the amplitude by scipy.integrate.quad with the level's true variances. With
+    # many draws per level the moment-matched variances come within a few percent, so
+    # the evidence agrees to ~0.1 nat a dimension. A demonstration drawn from the middle
+    # level at amplitude 0.8 (a choice tilted outward) is most likely under the middle
+    # level, next the wide one (about log 2 less: inside a level's reach the density is
+    # about 1 / spread), and far less under the narrow one, whose paths cannot reach it.
+    from scipy.stats import norm
+    from pref_learner.posterior import ChoiceRecord
+    rng = np.random.default_rng(83)
+    n, m, per = 7, 3, 4000
+    spreads = np.array([0.04, 0.08, 0.16])
+    sd_mode = 1.0 / np.arange(1, m + 1) ** 2
+    u = np.array([1.0, 1.0, 0, 0, 0, 0, 0]) / math.sqrt(2.0)
+
+    def draw(k, spread, amp=None):
+        z = rng.normal(size=(k, m, n)) * sd_mode[None, :, None]
+        z -= np.sum(z * u, axis=2, keepdims=True) * u         # into the perpendicular space
+        a = rng.random(k) if amp is None else np.full(k, amp)
+        return z * (spread * a)[:, None, None]
+    demo = draw(1, spreads[1], 1.0)
+    # a typical direction and size of the unit-amplitude draw (its whitened squared norm
+    # at its mean, D = m (n - 1)), then amplitude 0.8
+    whitened = np.sum(demo[0] ** 2 / (spreads[1] * sd_mode[:, None]) ** 2)
+    demo *= 0.8 * math.sqrt(m * (n - 1) / whitened)
+    coeffs = np.concatenate([demo] + [draw(per, s) for s in spreads])
+    groups = np.concatenate([[-1], np.repeat(np.arange(3), per)])
+    x = rng.normal(size=(len(groups), 2))
+    rec = ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='modes',
+                             deviation=coeffs)
+    q = np.sum(demo[0] ** 2, axis=1)
+    ref = []
+    for s in spreads:
+        def f(a):
+            sd = a * s * sd_mode
+            # per mode, n - 1 free coordinates of squared norm q_k
+            return float(np.prod(norm.pdf(np.sqrt(q / (n - 1)), scale=sd) ** (n - 1)))
+        val, _ = integrate.quad(f, 0.0, 1.0, epsabs=0, epsrel=1e-10, limit=200,
+                                points=[0.8])
+        ref.append(math.log(val))
+    np.testing.assert_allclose(rec.log_density, ref, atol=0.1 * m * (n - 1))
+    assert rec.log_density[1] > rec.log_density[2] > rec.log_density[0] + 5.0
+    assert rec.log_density[1] - rec.log_density[2] == pytest.approx(math.log(2.0), abs=0.5)
+    with pytest.raises(ValueError, match='modes'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='modes',
+                           deviation=coeffs[:, 0])
+    with pytest.raises(ValueError, match='needs the deviation'):
+        ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='modes')

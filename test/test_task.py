@@ -119,6 +119,26 @@ def test_task_model_scores_as_the_learner_does(arm6_record):
     assert L2.config.n_alternatives == 40                  # the record's settings apply
 
 
+def test_level_evidence_follows_the_records_option_density(arm6_record):
+    # The default evidence (modes) gets each row's three lowest sine-mode coefficients of
+    # its deviation, ``deviation`` their RMS (alternatives.path_modes / path_deviation).
+    # On the orthonormal sine basis the modes hold part of the deviation's energy, never
+    # more (Bessel's inequality, common practice): sum of squares <= T x RMS^2.
+    from pref_learner.alternatives import path_deviation, path_modes
+    task = TaskModel.from_record(arm6_record)
+    assert arm6_record.option_density == 'modes'
+    rng = np.random.default_rng(6)
+    q = task.robot.random_configurations(2 * 64, rng, margin=0.2).reshape(2, 64, 6)
+    allq, _, _ = task.choice_set(q[0], np.random.default_rng(5))
+    modes = task.path_deviation(allq)
+    np.testing.assert_array_equal(modes, path_modes(allq, task.sampler.span))
+    assert modes.shape == (len(allq), 3, 6)
+    rms = TaskModel.from_record(arm6_record.with_settings(option_density='deviation')
+                                ).path_deviation(allq)
+    np.testing.assert_array_equal(rms, path_deviation(allq, task.sampler.span))
+    assert np.all(np.sum(modes ** 2, axis=(1, 2)) <= 64 * rms ** 2 * (1 + 1e-12))
+
+
 def test_state_dir_stores_the_record_and_reopens_without_calibrating(tmp_path, monkeypatch):
     from pref_learner.sim import SimulatedTeacher, TeacherConfig
     state = tmp_path / 'state'

@@ -109,8 +109,9 @@ _PARAMS = {
                 None, True),
     'ascent_steps': ('reward-ascent steps of a near-optimal alternative', (0, 200), True),
     'ascent_step': ('largest waypoint move per ascent step, x the spread', (1e-3, 10.0), True),
-    'option_density': ('evidence of an option level: deviation (of the path from the straight '
-                       'line), or gaussian or kde (of the features)', None, True),
+    'option_density': ('evidence of an option level: modes (lowest sine modes of the path\'s '
+                       'deviation from the straight line, under the level\'s own law), '
+                       'deviation (its RMS), or gaussian or kde (of the features)', None, True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
