@@ -108,6 +108,14 @@ def path_deviation(q: np.ndarray, span: np.ndarray) -> np.ndarray:
 N_OPTION_MODES = 3
 
 
+#: sine modes whose law weighs one level's draws as another's (``pool_levels``). A draw is
+#: its level's noise times one amplitude, which shows in every mode: on the lowest 3 alone
+#: a wide draw with small low modes passes for a narrow one though its higher modes (its
+#: jerk) are the wide level's; 12 modes (72 coordinates for 7 joints) fix the amplitude to
+#: about 8 % and stay well above the waypoint resampling's scale (64 waypoints).
+N_POOL_MODES = 12
+
+
 def path_modes(q: np.ndarray, span: np.ndarray, n_modes: int = N_OPTION_MODES) -> np.ndarray:
     """Coefficients of each path's deviation from its straight line on its lowest sine modes.
 

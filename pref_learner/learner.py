@@ -29,7 +29,7 @@ from typing import Dict, List, Optional, Tuple
 import numpy as np
 
 from . import __version__
-from .alternatives import SamplerConfig, set_diagnostics
+from .alternatives import N_OPTION_MODES, N_POOL_MODES, SamplerConfig, set_diagnostics
 from .choice import BOTH, MODEL_CHOICES, MODEL_NAMES
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
                              Rejection, SegmentConfig, prepare)
@@ -68,6 +68,7 @@ class LearnerConfig:
     ascent_steps: int = 8
     ascent_step: float = 0.25
     option_density: str = 'modes'       # level evidence: modes | deviation | gaussian | kde
+    pool_levels: bool = False           # every level's draws serve every level (weighted)
     n_waypoints: int = 64
     resample: str = 'arc_length'
     lowpass_hz: float = 10.0
@@ -106,7 +107,11 @@ class LearnerConfig:
         # the component configs check the rest
         self.segment_config()
         self.prepare_config()
-        self.sampler_config()
+        sc = self.sampler_config()
+        if self.pool_levels and len(sc.option_models()) > 1 and set(sc.mix) != {'smooth'}:
+            raise ValueError('pool_levels weighs draws by the smooth sampler\'s law of each '
+                             f'level; the mix {sorted(sc.mix)} has other kinds (set their '
+                             'shares to 0 or pool_levels false)')
         for m in self.models:
             self.posterior_config(m)
 
@@ -140,7 +145,8 @@ class LearnerConfig:
         return PosteriorConfig(n_particles=self.n_particles, model=model, beta=self.beta,
                                beta_range=br, bandwidth=bw,
                                n_levels=len(self.sampler_config().option_models()),
-                               option_density=self.option_density)
+                               option_density=self.option_density,
+                               pool_levels=self.pool_levels)
 
     def learning_hash(self) -> str:
         """Hash of every setting that changes what is learned (not state_dir)."""
@@ -546,7 +552,9 @@ class Learner:
 
     def path_deviation(self, allq: np.ndarray) -> np.ndarray:
         """Each row's deviation from its straight line (:meth:`TaskModel.path_deviation`)."""
-        return self.task.path_deviation(allq)
+        pooled = min(N_POOL_MODES, self.config.n_waypoints - 2)
+        return self.task.path_deviation(allq, pooled if self.config.pool_levels
+                                        else N_OPTION_MODES)
 
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
                           demo: Optional[np.ndarray] = None, m: Optional[int] = None):

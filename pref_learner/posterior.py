@@ -44,10 +44,11 @@ from pathlib import Path
 from typing import Dict, NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
-from scipy.special import logsumexp
+from scipy.special import gammaincc, gammaln, logsumexp
 from scipy.stats import vonmises_fisher
 
 from . import choice
+from .alternatives import N_OPTION_MODES
 
 SCHEMA_VERSION = 2
 
@@ -154,6 +155,116 @@ def log_option_modes_density(alternatives: np.ndarray, x: np.ndarray) -> float:
     return log_uniform_scale_mixture(coords, np.repeat(var, free))
 
 
+def _log_scale_integrals(Q: np.ndarray, D: int) -> np.ndarray:
+    """Return ``log int_0^1 a^-D exp(-Q / (2 a^2)) da`` for many ``Q (n,)``, ``(n,)``.
+
+    For D > 1 by the closed form ``1/2 (2/Q)^((D-1)/2) Gamma((D-1)/2, Q/2)``
+    (the upper incomplete gamma, ``scipy.special``; ``-inf`` where it
+    underflows, hundreds of nats beyond the support), else by the quadrature
+    of :func:`log_uniform_scale_mixture`, row by row.
+    """
+    Q = np.maximum(np.asarray(Q, dtype=np.float64), 1e-300)
+    if D > 1:
+        s = 0.5 * (D - 1)
+        with np.errstate(divide='ignore'):
+            return (math.log(0.5) + s * np.log(2.0 / Q) + gammaln(s)
+                    + np.log(gammaincc(s, 0.5 * Q)))
+    return np.array([log_uniform_scale_mixture([math.sqrt(q)], [1.0])
+                     + 0.5 * math.log(2.0 * math.pi) for q in Q])
+
+
+def log_option_modes_densities(alternatives: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """Log density of many paths' deviation modes ``x (k, m, n)`` under one option level, ``(k,)``.
+
+    The law of :func:`log_option_modes_density` (whose value it gives for
+    each row), fitted once to the level's ``alternatives (M, m, n)``.
+    """
+    a = np.asarray(alternatives, dtype=np.float64)
+    x = np.asarray(x, dtype=np.float64)
+    if a.ndim != 3 or x.ndim != 3 or x.shape[1:] != a.shape[1:] or a.shape[2] < 2:
+        raise ValueError('option modes must be (M, m, n) and (k, m, n) with n >= 2 joints')
+    free = a.shape[2] - 1
+    var = np.maximum(3.0 * np.mean(np.sum(a * a, axis=2), axis=0) / free, 1e-300)   # (m,)
+    D = free * a.shape[1]
+    Q = np.sum(np.sum(x * x, axis=2) / var, axis=1)                                 # (k,)
+    const = -0.5 * D * math.log(2.0 * math.pi) - 0.5 * free * float(np.sum(np.log(var)))
+    return const + _log_scale_integrals(Q, D)
+
+
+#: a pooled row whose normalised weight at a level is below exp(this) leaves that level's set
+POOL_MIN_LOG_WEIGHT = -60.0
+
+
+def pooled_log_weights(modes: np.ndarray, groups: np.ndarray, n_levels: int) -> np.ndarray:
+    """Log importance weights ``(L, M)`` of every level's draws as draws of each level.
+
+    ``modes (M, m, n)``: the alternatives' deviation modes
+    (:func:`pref_learner.alternatives.path_modes`), ``groups (M,)`` the level
+    that drew each. Level ``g``'s law ``p_g`` is the modes law fitted to its
+    own draws (:func:`log_option_modes_densities`); the draws of all levels
+    together are a sample of the mixture ``sum_h (M_h / M) p_h``, so the
+    balance heuristic of multiple importance sampling (Veach & Guibas 1995)
+    weighs draw ``j`` for level ``g`` by ``w_gj = p_g(x_j) / sum_h (M_h / M)
+    p_h(x_j)``; the weights are then scaled to total the level's own count
+    ``M_g`` (self-normalised), so a level's pooled set stands for as many
+    options as its own draws. Weights below ``exp(POOL_MIN_LOG_WEIGHT)`` (a
+    draw beyond the level's reach) are ``-inf``. One level: all 0.
+    """
+    m = np.asarray(modes, dtype=np.float64)
+    g = np.asarray(groups, dtype=np.int64)
+    L = int(n_levels)
+    counts = np.array([np.sum(g == h) for h in range(L)])
+    if m.shape[0] != g.shape[0] or np.any(counts == 0) or np.any((g < 0) | (g >= L)):
+        raise ValueError('every draw needs its level in [0, L) and every level a draw')
+    if L == 1:
+        return np.zeros((1, g.shape[0]))
+    logp = np.stack([log_option_modes_densities(m[g == h], m) for h in range(L)])  # (L, M)
+    mix = logsumexp(logp + np.log(counts / g.shape[0])[:, None], axis=0)
+    lw = logp - mix[None, :]
+    lw += (np.log(counts) - logsumexp(lw, axis=1))[:, None]
+    return np.where(lw >= POOL_MIN_LOG_WEIGHT, lw, -np.inf)
+
+
+def pooled_log_similarity(features: np.ndarray, chosen: int, log_weight: np.ndarray,
+                          bandwidth='scott') -> np.ndarray:
+    """Return the LESS log-similarity sums ``(L, K)`` of a set pooled over its levels.
+
+    ``log_weight (L, K)``: each row's log weight at each level (the chosen
+    row 0, ``-inf`` rows absent from that level). At level ``g`` the rows
+    count with frequency weights ``f_k = exp(log_weight[g, k])``: the
+    features are standardised by the weighted mean and standard deviation
+    (denominator ``sum f - 1``, so unit weights give the sample's, as
+    :func:`pref_learner.choice.standardise`), the bandwidth is the rule's for
+    ``round(sum f)`` points, and row ``j``'s sum is
+    ``1 + sum_{k != j} f_k exp(-|z_j - z_k|^2 / (2 h^2))``: an importance
+    estimate of the similarity sum it would have within a set of the level's
+    own draws. With unit weights it is :func:`pref_learner.choice.log_similarity_sums`.
+    Absent rows get ``-inf``.
+    """
+    x = choice._check_matrix(features)
+    lw = np.asarray(log_weight, dtype=np.float64)
+    k, d = x.shape
+    out = np.full(lw.shape, -np.inf)
+    for g in range(lw.shape[0]):
+        rows = np.flatnonzero(np.isfinite(lw[g]))
+        f = np.exp(lw[g, rows])
+        xr = x[rows]
+        W = float(f.sum())
+        mean = f @ xr / W
+        xc = xr - mean
+        if W > 1.0:
+            sd = np.sqrt(f @ (xc * xc) / (W - 1.0))
+        else:
+            sd = np.ones(d)
+        z = xc / np.where(sd > 0.0, sd, 1.0)
+        h = choice.resolve_bandwidth(bandwidth, max(int(round(W)), 1), d)
+        sq = np.einsum('ij,ij->i', z, z)
+        d2 = np.maximum(sq[:, None] + sq[None, :] - 2.0 * (z @ z.T), 0.0)
+        kern = np.exp(-0.5 / (h * h) * d2)
+        out[g, rows] = np.log(kern @ f + (1.0 - f))
+    return out
+
+
 def log_option_density(points: np.ndarray, x: np.ndarray, kind: str = 'gaussian') -> float:
     """Log density at ``x (d,)`` of the distribution of ``points (M, d)``.
 
@@ -207,6 +318,15 @@ class ChoiceRecord:
         It makes levels comparable: with it the likelihood is that of the
         demonstration, not only of the choice among a given set (0 with one level,
         where it is a constant).
+    pool_log_weight : (L, K) with pooled levels (``pool=True``): each row's log
+        importance weight as a draw of each level (:func:`pooled_log_weights`;
+        0 on the chosen row, ``-inf`` where a row is beyond a level's reach), so
+        level g compares the demonstration with every level's draws, each
+        standing for ``w_gj`` of level g's options; ``None``: each level its own
+        draws.
+    pool_log_sim : (L, K) with pooled levels and LESS: every row's
+        log-similarity sum within each level's pooled set
+        (:func:`pooled_log_similarity`); ``log_sim`` is then unused.
     """
 
     features: np.ndarray
@@ -216,10 +336,19 @@ class ChoiceRecord:
     log_sim: Optional[np.ndarray] = None
     log_sim_chosen: Optional[np.ndarray] = None
     log_density: Optional[np.ndarray] = None
+    pool_log_weight: Optional[np.ndarray] = None
+    pool_log_sim: Optional[np.ndarray] = None
 
     @classmethod
     def build(cls, features, chosen, bandwidth='scott', with_similarity=True, groups=None,
-              n_levels: Optional[int] = None, density: str = 'gaussian', deviation=None):
+              n_levels: Optional[int] = None, density: str = 'gaussian', deviation=None,
+              pool: bool = False):
+        """Validate a set and precompute its similarity terms and level densities.
+
+        ``pool``: every level's set holds every level's draws with importance
+        weights (:func:`pooled_log_weights`; needs ``density='modes'`` and the
+        rows' mode coefficients as ``deviation`` with several levels).
+        """
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
@@ -266,15 +395,39 @@ class ChoiceRecord:
                 ls[cols[1:]] = s[1:]
                 lsc[lev] = s[0]
             if L > 1 and density == 'modes':
-                dens[lev] = log_option_modes_density(deviation[cols[1:]], deviation[c])
+                dm = deviation[:, :N_OPTION_MODES]
+                dens[lev] = log_option_modes_density(dm[cols[1:]], dm[c])
             elif L > 1 and density == 'deviation':
                 dens[lev] = log_option_density(logdev[cols[1:]], logdev[c], 'kde')
             elif L > 1:
                 dens[lev] = log_option_density(x[cols[1:]], x[c], density)
-        return cls(x, c, g, L, ls, lsc, dens)
+        plw = pls = None
+        if pool:
+            if L > 1 and (density != 'modes' or deviation is None):
+                raise ValueError('pooled levels need the "modes" option density and the '
+                                 'mode coefficients (deviation) of every row')
+            alt = np.flatnonzero(np.arange(k) != c)
+            plw = np.zeros((L, k))
+            if L > 1:
+                plw[:, alt] = pooled_log_weights(deviation[alt], g[alt], L)
+            if with_similarity:
+                pls = pooled_log_similarity(x, c, plw, bandwidth)
+        return cls(x, c, g, L, ls, lsc, dens, plw, pls)
+
+    @property
+    def pooled(self) -> bool:
+        """Whether every level's set holds every level's draws (importance-weighted)."""
+        return self.pool_log_weight is not None
 
     def columns(self, level: int) -> np.ndarray:
-        """Row indices compared at ``level``: the chosen row first, then that level's."""
+        """Row indices compared at ``level``: the chosen row first, then that level's.
+
+        Pooled: the chosen row, then every row with a weight at ``level``.
+        """
+        if self.pool_log_weight is not None:
+            keep = np.isfinite(self.pool_log_weight[level])
+            keep[self.chosen] = False
+            return np.concatenate([[self.chosen], np.flatnonzero(keep)])
         return np.concatenate([[self.chosen], np.flatnonzero(self.groups == level)])
 
     def log_similarity(self, level: int, cols: Optional[np.ndarray] = None) -> np.ndarray:
@@ -284,11 +437,30 @@ class ChoiceRecord:
         alternatives within their set, computed once when the record was
         built; ``cols``: :meth:`columns` of ``level`` when already at hand.
         """
-        if self.log_sim is None:
+        cols = self.columns(level) if cols is None else cols
+        if self.pool_log_weight is not None and self.pool_log_sim is not None:
+            return self.pool_log_sim[level, cols]
+        if self.log_sim is None or self.pool_log_weight is not None:
             raise ValueError('this choice record holds no similarity term (built without it)')
-        ls = self.log_sim[self.columns(level) if cols is None else cols]
+        ls = self.log_sim[cols]
         ls[0] = self.log_sim_chosen[level]
         return ls
+
+    def offsets(self, level: int, cols: Optional[np.ndarray] = None,
+                less: bool = True) -> Optional[np.ndarray]:
+        """Return what the utilities at ``level`` subtract per row, ordered as :meth:`columns`.
+
+        The similarity term (``less``) minus, pooled, each row's log weight
+        (:attr:`pool_log_weight`, 0 on the chosen row): a row standing for
+        ``w`` options enters the log-partition as ``w exp(utility)``. ``None``
+        when there is nothing to subtract (not ``less``, not pooled).
+        """
+        cols = self.columns(level) if cols is None else cols
+        o = self.log_similarity(level, cols) if less else None
+        if self.pool_log_weight is not None:
+            lw = self.pool_log_weight[level, cols]
+            o = -lw if o is None else o - lw
+        return o
 
 
 def set_log_similarity(records, bandwidth='scott') -> np.ndarray:
@@ -390,7 +562,8 @@ def expand_loglik(records: Sequence[ChoiceRecord], level: int, anchor: np.ndarra
         for rec in records[a:a + _EXPANSION_BLOCK]:
             cols = rec.columns(level)
             xs.append(rec.features[cols])
-            s = rec.log_similarity(level, cols) if less else np.zeros(len(cols))
+            s = rec.offsets(level, cols, less)
+            s = np.zeros(len(cols)) if s is None else s
             ss.append(s)
             sizes.append(len(cols))
             value += float(u0 @ rec.features[rec.chosen] - s[0] + rec.log_density[level])
@@ -452,7 +625,8 @@ class StackedSets:
             for rec in self.records[a:a + _EXPANSION_BLOCK]:
                 cols = rec.columns(g)
                 xs.append(rec.features[cols])
-                s = rec.log_similarity(g, cols) if self.less else np.zeros(len(cols))
+                s = rec.offsets(g, cols, self.less)
+                s = np.zeros(len(cols)) if s is None else s
                 ss.append(s)
                 sizes.append(len(cols))
                 chosen = chosen + rec.features[rec.chosen]
@@ -486,7 +660,9 @@ class SubsetScreen:
     """A cheap stand-in for the summed log-likelihood of stored sets at one level.
 
     Each set's demonstration is compared with the first ``k`` of the level's
-    ``m`` alternatives (independent draws, so a random subset of them), each
+    ``m`` alternatives (independent draws, so a random subset of them; pooled
+    sets, ordered by the level that drew them: ``k`` evenly spaced, each with
+    its importance weight), each
     standing for ``m / k`` of them in the log-partition; the demonstration's
     own terms (linear in ``u``, the level's density, its similarity term) are
     the target's. Deterministic and O(sets x k) per point, so the moves can
@@ -504,8 +680,14 @@ class SubsetScreen:
         x, off = [], []
         chosen, constant = 0.0, 0.0
         for rec, c in zip(records, cols):
-            sub = c[:1 + kk]
-            s = rec.log_similarity(level, c)[:1 + kk] if less else np.zeros(1 + kk)
+            if rec.pooled:            # pooled rows are ordered by level: take them evenly spaced
+                pick = np.concatenate([[0], 1 + np.linspace(0, len(c) - 2, kk).round()
+                                       .astype(np.int64)])
+                sub = c[pick]
+                s = rec.offsets(level, c, less)[pick]
+            else:
+                sub = c[:1 + kk]
+                s = rec.log_similarity(level, c)[:1 + kk] if less else np.zeros(1 + kk)
             weight = np.full(1 + kk, math.log((len(c) - 1) / kk))
             weight[0] = 0.0
             x.append(rec.features[sub])
@@ -916,6 +1098,7 @@ class PosteriorConfig:
     diversity_target: float = 0.8
     max_move_rounds: int = 8
     option_density: str = 'gaussian'
+    pool_levels: bool = False
     move_likelihood: str = 'expansion'
     expansion_tol: float = 0.05
     tempering_move_rounds: int = 2
@@ -950,6 +1133,9 @@ class PosteriorConfig:
         if self.option_density not in OPTION_DENSITIES:
             raise ValueError(f'option_density {self.option_density!r} is unknown; allowed: '
                              f'{", ".join(OPTION_DENSITIES)}')
+        if self.pool_levels and self.n_levels > 1 and self.option_density != 'modes':
+            raise ValueError('pool_levels needs option_density "modes" (the levels\' own '
+                             f'laws), got {self.option_density!r}')
         if not 0 <= self.tempering_move_rounds <= self.max_move_rounds:
             raise ValueError(f'tempering_move_rounds must be in [0, max_move_rounds], got '
                              f'{self.tempering_move_rounds!r}')
@@ -1174,7 +1360,7 @@ class ParticlePosterior:
             if sel.size == theta.shape[0]:
                 sel = slice(None)
             cols = record.columns(g)
-            offsets = record.log_similarity(g, cols) if model.uses_similarity else None
+            offsets = record.offsets(g, cols, model.uses_similarity)
             yield g, sel, cols, model.utilities(x[cols], theta[sel], beta[sel], offsets)
 
     def record_loglik(self, record: ChoiceRecord, theta: np.ndarray, beta: np.ndarray,
@@ -1251,7 +1437,8 @@ class ParticlePosterior:
                                   with_similarity=self.config.choice_model.uses_similarity,
                                   groups=groups,
                                   n_levels=self.config.n_levels,
-                                  density=self.config.option_density, deviation=deviation)
+                                  density=self.config.option_density, deviation=deviation,
+                                  pool=self.config.pool_levels)
 
     def update(self, record, rng: np.random.Generator, move: bool = True):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
@@ -1545,6 +1732,12 @@ class ParticlePosterior:
         if recs and all(r.log_sim is not None for r in recs):
             arrays['record_log_sim'] = np.concatenate([r.log_sim for r in recs])
             arrays['record_log_sim_chosen'] = np.asarray([r.log_sim_chosen for r in recs])
+        if recs and all(r.pooled for r in recs):      # (rows, L): the records' rows stacked
+            arrays['record_pool_log_weight'] = np.concatenate([r.pool_log_weight.T
+                                                               for r in recs])
+            if all(r.pool_log_sim is not None for r in recs):
+                arrays['record_pool_log_sim'] = np.concatenate([r.pool_log_sim.T
+                                                                for r in recs])
         cfg = asdict(self.config)
         manifest = {'schema_version': SCHEMA_VERSION, 'kind': 'pref_learner.posterior',
                     'config': cfg, 'step_size': self.step_size,
@@ -1582,13 +1775,17 @@ class ParticlePosterior:
         dens = arrays['record_log_density']
         ls = arrays.get('record_log_sim')
         lsc = arrays.get('record_log_sim_chosen')
+        plw = arrays.get('record_pool_log_weight')
+        pls = arrays.get('record_pool_log_sim')
         recs = []
         for i, c in enumerate(arrays['record_chosen']):
             a, b = offs[i], offs[i + 1]
             recs.append(ChoiceRecord(np.array(feats[a:b]), int(c), np.array(groups[a:b]), L,
                                      None if ls is None else np.array(ls[a:b]),
                                      None if lsc is None else np.array(lsc[i]),
-                                     np.array(dens[i])))
+                                     np.array(dens[i]),
+                                     None if plw is None else np.array(plw[a:b].T),
+                                     None if pls is None else np.array(pls[a:b].T)))
         acc = manifest.get('acceptance')
         post = cls(config, np.array(arrays['theta']), np.array(arrays['log_weights']),
                    np.array(arrays['log_lik']),

@@ -28,7 +28,8 @@ from typing import Callable, Optional, Tuple
 import numpy as np
 import yaml
 
-from .alternatives import AlternativeSampler, SamplerConfig, path_deviation, path_modes
+from .alternatives import (N_OPTION_MODES, AlternativeSampler, SamplerConfig, path_deviation,
+                           path_modes)
 from .demonstrations import PrepareConfig, condition, reparametrize_arc_length
 from .features import FeatureConfigError, FeatureSet, default_features_path, load_scenario
 from .robot import RobotModel, default_urdf_path
@@ -360,17 +361,19 @@ class TaskModel:
         alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m, weights=weights)
         return self.retime(alts), groups
 
-    def path_deviation(self, allq: np.ndarray) -> np.ndarray:
+    def path_deviation(self, allq: np.ndarray, n_modes: int = N_OPTION_MODES) -> np.ndarray:
         """Each row's deviation from its straight line, as the option density needs it.
 
         The evidence that tells the option spreads apart, in the sampler's
         joint spans; ``allq`` as :meth:`choice_set` returns it. ``option_density:
-        modes``: the coefficients ``(K, modes, n)`` of its lowest sine modes
-        (:func:`~.alternatives.path_modes`); otherwise its RMS ``(K,)``
+        modes``: the coefficients ``(K, n_modes, n)`` of its lowest sine modes
+        (:func:`~.alternatives.path_modes`; the level evidence reads the lowest
+        :data:`~.alternatives.N_OPTION_MODES`, pooled levels' weights all
+        given); otherwise its RMS ``(K,)``
         (:func:`~.alternatives.path_deviation`).
         """
         if self.record.option_density == 'modes':
-            return path_modes(allq, self.sampler.span)
+            return path_modes(allq, self.sampler.span, n_modes)
         return path_deviation(allq, self.sampler.span)
 
     def choice_set(self, q_demo: np.ndarray, rng: np.random.Generator,

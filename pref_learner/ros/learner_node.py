@@ -112,6 +112,9 @@ _PARAMS = {
     'option_density': ('evidence of an option level: modes (lowest sine modes of the path\'s '
                        'deviation from the straight line, under the level\'s own law), '
                        'deviation (its RMS), or gaussian or kde (of the features)', None, True),
+    'pool_levels': ('every option level\'s draws serve every level, weighted by multiple '
+                    'importance sampling (smooth alternatives, option_density modes)', None,
+                    True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
