@@ -28,7 +28,13 @@ noisy estimate: on the shipped scenario at N = 1,000, M = 200 the gain of one
 task changes from draw to draw (standard deviation 0.04-0.12 nats) about as
 much as it differs between tasks (0.05-0.18), so with one draw the ranking
 partly ranks the draws. Sampling and kinematics cost about 60 ms per set at
-M = 500, the scoring itself a few tens of ms per set at N = 4,000.
+M = 500, the scoring itself a few tens of ms per set at N = 4,000. The
+default is one draw: four draws (``n_draws=4``) did not change the
+guided-teaching study beyond its noise, and their four times longer scoring
+(about 0.25 s per update, 4.4 s for the first proposal) on the node's worker
+thread, which shares the interpreter with the executor taking in the joint
+states, coincided with a live node recording fewer of a 1 kHz flood of
+messages in its bag (``test/test_fault_injection.py``).
 
 **Not the same task again.** With ``fresh_first`` (the default) a task
 taught before (either direction: the scenario's features do not depend on
@@ -75,8 +81,8 @@ from .posterior import ChoiceRecord, ParticlePosterior, systematic_resample
 TIGHT_STD = 0.1
 #: a loading counts as opposite when it is at least this share of the largest one
 OPPOSITE_SHARE = 0.25
-#: independent choice sets per task whose gains are averaged
-N_DRAWS = 4
+#: independent choice sets per task whose gains are averaged (the default; see above)
+N_DRAWS = 1
 #: a demonstration is one of a task when its ends are this close to the task's (rad)
 MATCH_TOLERANCE = 0.1
 

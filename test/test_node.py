@@ -51,6 +51,9 @@ def test_teaching_session_learns_true_weights(person, tmp_path):
                                    TRUE, TeacherConfig(model=person, beta=5.0, seed=3))
         names = list(node.learner.robot.joint_names) + ['finger_left_joint']
         _teach(ex, client, node, teacher, 8, names)
+        # the estimate goes out twice per demonstration (when weighed in, then after the
+        # rejuvenation moves); wait for the second of the last, counted as accepted
+        assert spin_until(ex, lambda: node.counters['accepted'] == 8, 30)
         got = {}
         client.create_subscription(Float64MultiArray, '/pref_learner/weights',
                                    lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)

@@ -49,6 +49,9 @@ def test_watch_follows_a_learner_and_never_publishes():
             assert spin_until(ex, lambda: ('pref_learner_watch', '/') in
                               client.get_node_names_and_namespaces(), 10)
             # graph introspection (rclpy): the watch has no publisher at all, one subscription
+            # (a node's name can be discovered before its endpoints: wait for them)
+            assert spin_until(ex, lambda: client.get_subscriber_names_and_types_by_node(
+                'pref_learner_watch', '/'), 10)
             assert client.get_publisher_names_and_types_by_node('pref_learner_watch', '/') == []
             subs = client.get_subscriber_names_and_types_by_node('pref_learner_watch', '/')
             assert [t for t, _ in subs] == ['/pref_learner/status']
