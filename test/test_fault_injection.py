@@ -131,6 +131,7 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
         config = dataclasses.replace(node.config, state_dir='')
         bg.__exit__(None, None, None)
         node.destroy_node()                       # closes the bag
+        received = node.counters['joint_states']  # every message the worker took in
         client.destroy_node()
     # figures for the report
     print(json.dumps({'flood': flood, 'valid_samples': len(valid.sent), 'counters': counters,
@@ -144,7 +145,12 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
     assert node_counters.get('internal_error', 0) == 0
     events = list(read_stream(bag))
     js = [e for e in events if e.kind == 'joint_states']
-    assert len(js) >= len(valid.sent) + flood['messages'] * 0.9   # the bag saw the flood
+    # the bag holds every joint_states message the node took in, good or bad; what DDS
+    # delivers of a 2 kHz stream of best-effort samples on two loaded cores (coverage
+    # tracing every line) is the transport's: in the full suite 85-88 % arrived, alone
+    # more than 90 %, so the bound on delivery is loose and reported, not the point
+    assert len(js) == received
+    assert len(js) >= 0.75 * (len(valid.sent) + flood['messages'])
 
     def is_valid(e):
         q = valid.sent.get(e.stamp_ns)

@@ -488,6 +488,7 @@ class LearnerNode(Node):
         self._release_teaching(item[1] if kind == 'js' else float('inf'))
         if kind == 'js':
             _, _, recv, raw = item
+            self.counters['joint_states'] += 1          # every message taken in (and recorded)
             t = self._log_time(recv)
             msg = deserialize_message(raw, JointState)
             self._record(lambda bag: bag.write_raw(self._js_topic, 'sensor_msgs/msg/JointState',

@@ -83,6 +83,7 @@ def watch(namespace: str = '/pref_learner', duration: Optional[float] = None,
           out=sys.stdout) -> int:
     """Follow the learner at ``namespace`` until interrupted or ``duration`` seconds."""
     import rclpy
+    from rclpy.executors import ExternalShutdownException
     from diagnostic_msgs.msg import DiagnosticArray
     from rclpy.qos import DurabilityPolicy, QoSProfile, ReliabilityPolicy
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
@@ -132,8 +133,8 @@ def watch(namespace: str = '/pref_learner', duration: Optional[float] = None,
                           flush=True)
                 else:               # a pipe or a file: new events, then the screen
                     print('\n'.join(new + render(ns, models)) + '\n', file=out, flush=True)
-        except KeyboardInterrupt:
-            pass
+        except (KeyboardInterrupt, ExternalShutdownException):
+            pass        # Ctrl-C: during spin_once rclpy's handler shuts the context down first
         finally:
             node.destroy_node()
     return 0
