@@ -30,11 +30,10 @@ much as it differs between tasks (0.05-0.18), so with one draw the ranking
 partly ranks the draws. Sampling and kinematics cost about 60 ms per set at
 M = 500, the scoring itself a few tens of ms per set at N = 4,000. The
 default is one draw: four draws (``n_draws=4``) did not change the
-guided-teaching study beyond its noise, and their four times longer scoring
-(about 0.25 s per update, 4.4 s for the first proposal) on the node's worker
-thread, which shares the interpreter with the executor taking in the joint
-states, coincided with a live node recording fewer of a 1 kHz flood of
-messages in its bag (``test/test_fault_injection.py``).
+guided-teaching study beyond its noise, and their scoring takes four times
+as long (about 0.25 s per update, 4.4 s for the first proposal) on the
+node's worker thread, which shares the interpreter with the executor taking
+in the joint states.
 
 **Not the same task again.** With ``fresh_first`` (the default) a task
 taught before (either direction: the scenario's features do not depend on
