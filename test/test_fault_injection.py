@@ -147,7 +147,7 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
     js = [e for e in events if e.kind == 'joint_states']
     # the bag holds every joint_states message the node took in, good or bad; what DDS
     # delivers of a 2 kHz stream of best-effort samples on two loaded cores (coverage
-    # tracing every line) is the transport's: in the full suite 85-88 % arrived, alone
+    # tracing every line) is the transport's: in full clean runs 84-87 % arrived, alone
     # more than 90 %, so the bound on delivery is loose and reported, not the point
     assert len(js) == received
     assert len(js) >= 0.75 * (len(valid.sent) + flood['messages'])
