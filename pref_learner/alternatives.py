@@ -95,13 +95,22 @@ def path_deviation(q: np.ndarray, span: np.ndarray) -> np.ndarray:
     timing along the line does not. This is the statistic whose distribution
     tells option spreads apart: the spread scales it, whatever the preference.
     """
+    r = _perpendicular(q, span)
+    return np.sqrt(np.mean(np.sum(r * r, axis=-1), axis=-1))
+
+
+def _perpendicular(q: np.ndarray, span: np.ndarray) -> np.ndarray:
+    """Each waypoint's offset ``(K, T, n)`` from its start, perpendicular to the start-goal line.
+
+    In joint coordinates divided by ``span``; the part along the line (the
+    path's timing) is removed.
+    """
     x = np.asarray(q, dtype=np.float64) / np.asarray(span, dtype=np.float64)
     start = x[:, :1]
     u = x[:, -1:] - start
     u = u / np.maximum(np.linalg.norm(u, axis=-1, keepdims=True), 1e-12)
     r = x - start
-    r = r - np.sum(r * u, axis=-1, keepdims=True) * u
-    return np.sqrt(np.mean(np.sum(r * r, axis=-1), axis=-1))
+    return r - np.sum(r * u, axis=-1, keepdims=True) * u
 
 
 #: sine modes of the perpendicular deviation that the ``modes`` option density uses
@@ -130,15 +139,10 @@ def path_modes(q: np.ndarray, span: np.ndarray, n_modes: int = N_OPTION_MODES) -
     lowest modes carry the shape of an option; the higher ones mostly its
     resampling and smoothing, which differ between a demonstration and a draw.
     """
-    x = np.asarray(q, dtype=np.float64) / np.asarray(span, dtype=np.float64)
-    T = x.shape[1]
+    T = np.shape(q)[1]
     if not 1 <= n_modes <= T - 2:
         raise ValueError(f'n_modes must be in [1, {T - 2}] for {T} waypoints, got {n_modes}')
-    start = x[:, :1]
-    u = x[:, -1:] - start
-    u = u / np.maximum(np.linalg.norm(u, axis=-1, keepdims=True), 1e-12)
-    r = x - start
-    r = r - np.sum(r * u, axis=-1, keepdims=True) * u
+    r = _perpendicular(q, span)
     i = np.arange(T)
     basis = np.sqrt(2.0 / (T - 1)) * np.sin(np.pi * np.arange(1, n_modes + 1)[:, None]
                                             * i[None, :] / (T - 1))

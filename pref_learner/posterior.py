@@ -124,6 +124,21 @@ def log_uniform_scale_mixture(x: np.ndarray, var: np.ndarray) -> float:
     return float(-0.5 * D * math.log(2.0 * math.pi) - 0.5 * np.sum(np.log(v)) + log_int)
 
 
+def _modes_law(alternatives, x: np.ndarray) -> Tuple[np.ndarray, int]:
+    """Fit a level's modes law: each mode's unit-amplitude variance ``(m,)`` and ``n - 1``.
+
+    Matched by moments to the level's ``alternatives (M, m, n)`` (``E a^2 =
+    1/3``, so 3 x their mean square per dimension); ``x (k, m, n)`` are the
+    paths to score, checked against them.
+    """
+    a = np.asarray(alternatives, dtype=np.float64)
+    if a.ndim != 3 or x.ndim != 3 or x.shape[1:] != a.shape[1:] or a.shape[2] < 2:
+        raise ValueError('option modes must be (M, m, n) and (m, n) or (k, m, n) with n >= 2 '
+                         'joints')
+    free = a.shape[2] - 1
+    return np.maximum(3.0 * np.mean(np.sum(a * a, axis=2), axis=0) / free, 1e-300), free
+
+
 def log_option_modes_density(alternatives: np.ndarray, x: np.ndarray) -> float:
     """Log density of a path's deviation modes ``x (m, n)`` under one option level.
 
@@ -141,13 +156,8 @@ def log_option_modes_density(alternatives: np.ndarray, x: np.ndarray) -> float:
     demonstration that the choice tilted outward stays likely under its own
     level (density about 1 / spread inside it) and is unlikely beyond it.
     """
-    a = np.asarray(alternatives, dtype=np.float64)
     x = np.asarray(x, dtype=np.float64)
-    if a.ndim != 3 or x.shape != a.shape[1:] or a.shape[2] < 2:
-        raise ValueError('option modes must be (M, m, n) and (m, n) with n >= 2 joints')
-    free = a.shape[2] - 1
-    var = 3.0 * np.mean(np.sum(a * a, axis=2), axis=0) / free          # (m,)
-    var = np.maximum(var, 1e-300)
+    var, free = _modes_law(alternatives, x[None])
     q = np.sum(x * x, axis=1)                                          # (m,)
     # the isotropic law on the (n - 1)-dimensional subspace: per mode, a squared norm
     # q_k over ``free`` dimensions of variance var_k (one coordinate of q_k each)
@@ -179,13 +189,9 @@ def log_option_modes_densities(alternatives: np.ndarray, x: np.ndarray) -> np.nd
     The law of :func:`log_option_modes_density` (whose value it gives for
     each row), fitted once to the level's ``alternatives (M, m, n)``.
     """
-    a = np.asarray(alternatives, dtype=np.float64)
     x = np.asarray(x, dtype=np.float64)
-    if a.ndim != 3 or x.ndim != 3 or x.shape[1:] != a.shape[1:] or a.shape[2] < 2:
-        raise ValueError('option modes must be (M, m, n) and (k, m, n) with n >= 2 joints')
-    free = a.shape[2] - 1
-    var = np.maximum(3.0 * np.mean(np.sum(a * a, axis=2), axis=0) / free, 1e-300)   # (m,)
-    D = free * a.shape[1]
+    var, free = _modes_law(alternatives, x)
+    D = free * len(var)
     Q = np.sum(np.sum(x * x, axis=2) / var, axis=1)                                 # (k,)
     const = -0.5 * D * math.log(2.0 * math.pi) - 0.5 * free * float(np.sum(np.log(var)))
     return const + _log_scale_integrals(Q, D)
