@@ -729,6 +729,11 @@ class _Sum:
         return sum(p(u) for p in self.parts)
 
 
+def _rows(a: Optional[np.ndarray], rows: np.ndarray) -> Optional[np.ndarray]:
+    """``a[rows]``, or None for None (a posterior without that coordinate)."""
+    return None if a is None else a[rows]
+
+
 def _by_level(screens, theta: np.ndarray, beta: np.ndarray,
               level: Optional[np.ndarray]) -> np.ndarray:
     """Evaluate per-level functions of ``u = beta theta`` at points ``(n,)`` of their levels."""
@@ -801,22 +806,15 @@ class MoveTarget:
         lie beyond the level's checked radius. The moves evaluate the target at those points only
         when the screen accepts them (delayed acceptance, Christen & Fox 2005).
         """
-        u = beta[:, None] * theta
-        lev = np.zeros(len(u), dtype=np.int64) if level is None else level
-        s = np.empty(len(u))
-        differs = np.ones(len(u), dtype=bool)
-        r = self.radii(u) if self.approximate else None
-        for g, sc in enumerate(self.screens):
-            sel = np.flatnonzero(lev == g)
-            if not sel.size:
-                continue
-            s[sel] = sc(u[sel])
-            if r is not None and not self.screen_exact[g]:
-                differs[sel] = r[sel] > self.inner[g]
-        if r is not None:
-            outside = r > self.radius
-            s[outside] = -np.inf
-            differs[outside] = False
+        s = _by_level(self.screens, theta, beta, level)
+        if not self.approximate:
+            return s, np.ones(len(s), dtype=bool)
+        lev = np.zeros(len(s), dtype=np.int64) if level is None else level
+        r = self.radii(beta[:, None] * theta)
+        differs = np.asarray(self.screen_exact)[lev] | (r > np.asarray(self.inner)[lev])
+        outside = r > self.radius
+        s[outside] = -np.inf
+        differs[outside] = False
         return s, differs
 
     def radii(self, u: np.ndarray) -> np.ndarray:
@@ -1630,17 +1628,14 @@ class ParticlePosterior:
                 second = np.log(rng.random(n))
                 acc = np.flatnonzero(accept)
                 rows = acc[differs[acc]]
-
-                def sub(a, rows):
-                    return None if a is None else a[rows]
                 if rows.size:
                     ll_new[rows] = target(prop['theta'][rows], beta_new[rows],
-                                          sub(lv_eval, rows))
+                                          _rows(lv_eval, rows))
                 exact_new, exact_now = ll_new[acc], log_lik[acc]
                 if extra is not None:
                     ex = ll_extra.copy()
                     ex[acc] = self.record_loglik(extra, prop['theta'][acc], beta_new[acc],
-                                                 sub(lv_eval, acc))
+                                                 _rows(lv_eval, acc))
                     exact_new = exact_new + phi * ex[acc]
                     exact_now = exact_now + phi * ll_extra[acc]
                 accept[acc] = second[acc] < ((exact_new - s_new[acc])
