@@ -76,6 +76,14 @@ def _start_node(state, env):
     return subprocess.Popen(cmd, env=env)
 
 
+def _saved_records(path) -> int:
+    """Return the number of demonstrations in the stored posterior (-1: none readable yet)."""
+    try:
+        return len(ParticlePosterior.load(path).records)
+    except (OSError, ValueError, KeyError):
+        return -1
+
+
 def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
     state = tmp_path / 'state'
     env = dict(os.environ)
@@ -98,6 +106,9 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             for k in range(3):
                 publish_stream(ex, pub, teach, *streams[k], names)
                 assert spin_until(ex, lambda: status.get('demonstrations') == str(k + 1), 60)
+            # the count goes out with the estimate, before the rejuvenation moves and the
+            # write of the posterior: the 3rd must be on disk before the 4th is interrupted
+            assert spin_until(ex, lambda: _saved_records(state / 'posterior_less') == 3, 60)
             # the 4th: half of it, then kill -9
             st, q = streams[3]
             teach.publish(Bool(data=True))
