@@ -639,27 +639,31 @@ class Learner:
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats, groups = self.choice_set(q, index)
         dev = self.path_deviation(allq)
-        new, infos, rngs, ppc, recs = {}, {}, {}, {}, {}
+        new, infos, rngs, recs = {}, {}, {}, {}
         before = dict(self.posteriors)
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
             rec = recs[m] = post.prepare(feats, 0, groups, dev)
-            ppc[m] = post.predictive_pvalue(rec)
             new[m], infos[m] = post.update(rec, rngs[m], move=False)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
-        diag = set_diagnostics(feats, 0, set_log_similarity(recs.values(), post.config.bandwidth))
-        diag['predictive_pvalue'] = ppc
-        diag['atypical'] = bool(diag['outside'] or min(ppc.values()) < ATYPICAL_PVALUE)
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
+        # the checks of the demonstration fill ``diag`` once the estimate is out: the
+        # estimate never waits for them (the result handed out early holds this dict)
+        diag: dict = {}
         self._diagnostics = self._diagnostics[:index] + [diag]
         res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
                          time.perf_counter() - t0, diag, paths)
         if self.on_estimate is not None and persist:
             self.on_estimate(res)
+        ppc = {m: before[m].predictive_pvalue(rec) for m, rec in recs.items()}
+        diag.update(set_diagnostics(feats, 0, set_log_similarity(recs.values(),
+                                                                 post.config.bandwidth)))
+        diag['predictive_pvalue'] = ppc
+        diag['atypical'] = bool(diag['outside'] or min(ppc.values()) < ATYPICAL_PVALUE)
         diag.update(_information(before, recs, feats[1:], groups[1:]))
         for m, post in self.posteriors.items():   # pending rejuvenation moves, same rng
             self.posteriors[m], _ = post.rejuvenate(rngs[m])

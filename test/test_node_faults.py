@@ -213,6 +213,31 @@ def test_queue_worker_never_drops_requests_and_keeps_arrival_order():
     assert w.dropped == 90 and len(errors) == 1 and isinstance(errors[0], KeyError)
 
 
+def test_an_idle_worker_sleeps_no_longer_than_its_idle_handler_asks():
+    # a teaching signal held for the stream to go quiet is due within TEACH_QUIET_S; the
+    # idle worker slept a fixed 50 ms before looking again, which every demonstration's
+    # estimate waited for
+    from pref_learner.ros.common import IDLE_WAIT_S, QueueWorker
+    waits, asked = [], iter([0.007, None, -1.0])
+    done = threading.Event()
+
+    class Wake(threading.Event):
+        def wait(self, timeout=None):
+            waits.append(timeout)
+            if len(waits) == 3:
+                done.set()
+            return super().wait(0.001)
+
+    def on_idle():
+        return next(asked, None)
+    w = QueueWorker(lambda item: None, lambda exc: None, 10, 'test_idle', on_idle=on_idle)
+    w._wake = Wake()
+    w.start()
+    assert done.wait(5)
+    w.stop()
+    assert waits[:3] == [0.007, IDLE_WAIT_S, 0.0]
+
+
 def test_a_lagging_worker_keeps_the_bag_in_the_order_it_handled(tmp_path):
     # the worker handles samples after they were received (it lags while it learns);
     # an estimate published meanwhile must not move the bag's log times of the samples

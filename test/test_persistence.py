@@ -160,3 +160,23 @@ def test_stored_scales_are_kept_across_restarts(tmp_path):
     (tmp_path / 'task.json').write_text(json.dumps(r))
     L2 = Learner(cfg)
     np.testing.assert_allclose(L2.features.scales, 2.0 * L.features.scales)
+
+
+def test_the_estimate_is_handed_out_before_the_checks_and_the_moves():
+    # the node publishes from on_estimate: the demonstration's checks (predictive p-value,
+    # where it sits in its set, expected information) and the pending moves follow it
+    seen = []
+
+    def on_estimate(r):
+        post = L.posteriors['less']
+        seen.append((r.index, dict(r.diagnostics), post.moves_pending, r.diagnostics))
+    L = Learner(LearnerConfig(model='less', **SMALL), on_estimate=on_estimate)
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'], TeacherConfig())
+    results = [r for r in teacher.feed_session(L, 2) if hasattr(r, 'summaries')]
+    assert [s[0] for s in seen] == [0, 1] and len(results) == 2
+    assert all(s[1] == {} for s in seen)                    # nothing checked yet
+    assert any(s[2] for s in seen)                          # moves still pending
+    for (_, _, _, diag), r in zip(seen, results):
+        assert diag is r.diagnostics                        # the same record, now filled
+        assert {'predictive_pvalue', 'atypical', 'percentiles'} <= set(diag)
+    assert not L.posteriors['less'].moves_pending

@@ -85,6 +85,10 @@ def publish_paced(pub, stamps, q, names, rate_hz: float, every=None) -> int:
     return len(stamps)
 
 
+#: longest sleep of an idle :class:`QueueWorker` between checks of its stop flag
+IDLE_WAIT_S = 0.05
+
+
 class QueueWorker:
     """A plain thread that handles queued items in arrival order.
 
@@ -93,7 +97,9 @@ class QueueWorker:
     (requests that must never be dropped: an unbounded queue). Items of both
     queues are handled in the order they were put. ``handle(item)`` runs on the
     thread and any exception it raises goes to ``on_error(exc)``, so one bad
-    input never stops the node; ``on_idle()`` runs whenever both queues are empty.
+    input never stops the node; ``on_idle()`` runs whenever both queues are empty
+    and may return the seconds until it wants to run again (the thread then
+    sleeps no longer than that; otherwise up to ``IDLE_WAIT_S`` or the next item).
     """
 
     def __init__(self, handle, on_error, maxlen: int, name: str, alive=lambda: True,
@@ -134,17 +140,18 @@ class QueueWorker:
         while not self._stop.is_set() and self._alive():
             self._wake.clear()
             if not self._queue and not self._control:
-                if self._on_idle is not None:
-                    self._call(self._on_idle)
-                self._wake.wait(0.05)
+                due = self._call(self._on_idle) if self._on_idle is not None else None
+                self._wake.wait(IDLE_WAIT_S if due is None else
+                                min(IDLE_WAIT_S, max(0.0, float(due))))
                 continue
             self._call(self._handle, self._next())
 
-    def _call(self, fn, *args) -> None:
+    def _call(self, fn, *args):
         try:
-            fn(*args)
+            return fn(*args)
         except Exception as exc:  # noqa: BLE001 -- reported, the worker goes on
             self._on_error(exc)
+            return None
 
     def stop(self, timeout: float = 10.0) -> None:
         self._stop.set()

@@ -445,10 +445,16 @@ class LearnerNode(Node):
             self._update_status()
 
     def _on_idle(self):
-        if self._held_teaching and time.monotonic() - self._last_js >= TEACH_QUIET_S:
-            self._release_teaching(float('inf'))
+        """Release held teaching signals once the stream is quiet; return when to look again."""
+        due = None
+        if self._held_teaching:
+            due = TEACH_QUIET_S - (time.monotonic() - self._last_js)
+            if due <= 0:
+                self._release_teaching(float('inf'))
+                due = None
         if self._status_dirty:
             self._update_status()
+        return due
 
     def _on_worker_error(self, exc):
         if self.context.ok():  # after shutdown there is nothing left to publish to
