@@ -275,10 +275,15 @@ def _run_jobs(fn, jobs, n_jobs: int, label: str, scheduler: Optional[str] = None
     return out
 
 
-def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300,
+def study_calibration(n_truths=24, n_demos=10, n_particles: Optional[int] = None,
+                      n_alternatives: Optional[int] = None,
                       conditions=('matched', 'mismatched'), seed=0, n_jobs=1,
                       learner: Optional[dict] = None, scheduler: Optional[str] = None) -> dict:
     """Cosine, 90 % coverage and confidently wrong runs for people who are not the learner.
+
+    ``n_particles``, ``n_alternatives``: the learner's sizes; by default its
+    shipped defaults (:class:`~pref_learner.learner.LearnerConfig`), the learner
+    a user runs.
 
     Truths are drawn uniformly on the sphere from ``seed``. ``matched``: the
     person's options are smooth draws of the learner's middle spread, beta 5.
@@ -292,6 +297,8 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
+    n_particles = n_particles or LearnerConfig.n_particles
+    n_alternatives = n_alternatives or LearnerConfig.n_alternatives
     out = {}
     for cond in conditions:
         jobs = []
@@ -304,7 +311,8 @@ def study_calibration(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=
                          n_alternatives, dict(learner or {})))
         runs = _run_jobs(_calib_session, jobs, n_jobs, f'calibration ({cond})', scheduler)
         cos = np.array([r['cosine'] for r in runs])
-        out[cond] = {'cosine_mean': float(cos.mean()),
+        out[cond] = {'n_particles': n_particles, 'n_alternatives': n_alternatives,
+                     'cosine_mean': float(cos.mean()),
                      'cosine_p10': float(np.percentile(cos, 10)),
                      'coverage90': float(np.mean([r['inside90'] for r in runs])),
                      'confidently_wrong': int(sum(r['confidently_wrong'] for r in runs)),
@@ -508,7 +516,9 @@ def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
            'calib_coverage90': calib['matched']['coverage90'],
            'calib_coverage90_all': float(np.mean([r['inside90'] for r in runs])),
            'calib_confidently_wrong': int(sum(r['confidently_wrong'] for r in runs)),
-           'sbc_uniformity_pvalue': sbc['pvalue']}
+           'sbc_uniformity_pvalue': sbc['pvalue'],
+           'calib_n_particles': calib['matched']['n_particles'],
+           'calib_n_alternatives': calib['matched']['n_alternatives']}
     if 'mismatched' in calib:
         out['calib_cosine_mean_mismatched'] = calib['mismatched']['cosine_mean']
         out['calib_cosine_p10_mismatched'] = calib['mismatched']['cosine_p10']
@@ -529,10 +539,11 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
     rob = study_set_robustness(n_sets=5 if quick else 10, n_demos=6 if quick else 8,
                                n_particles=sizes['n_particles'],
                                n_alternatives=sizes['n_alternatives'])
+    # the learner's own defaults in the full study (what users run); reduced when quick
     calib = study_calibration(n_truths=6 if quick else 24, n_demos=6 if quick else 10,
-                              n_particles=sizes['n_particles'],
-                              n_alternatives=sizes['n_alternatives'], n_jobs=n_jobs,
-                              scheduler=scheduler)
+                              n_particles=sizes['n_particles'] if quick else None,
+                              n_alternatives=sizes['n_alternatives'] if quick else None,
+                              n_jobs=n_jobs, scheduler=scheduler)
     sbc = study_sbc(n_runs=60 if quick else 200)
     guide = study_guidance(n_truths=4 if quick else 24, n_demos=10, n_jobs=n_jobs,
                            scheduler=scheduler, **GUIDANCE_SIZES) \

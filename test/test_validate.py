@@ -55,6 +55,7 @@ def test_calibration_study_reports_every_condition():
     figs = validate.calibration_figures(r, {'pvalue': 0.5})
     cos = [x['cosine'] for c in r.values() for x in c['runs']]
     assert figs['calib_cosine_mean'] == pytest.approx(np.mean(cos[:3]))
+    assert (figs['calib_n_particles'], figs['calib_n_alternatives']) == (300, 60)
     assert all(-1.0 <= c <= 1.0 for c in cos)
 
 
