@@ -413,13 +413,13 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     every task's option sets (``TaskGuide.n_draws`` each) already built (the
     node builds them once and reuses them); ``next_task_first_ms`` includes
     building them.
-    The study runs at the smaller sizes of ``validate.GUIDANCE_SIZES``.
+    The study runs the learner at its shipped sizes (N 4,000, M 500).
     """
     from .features import load_scenario
     from .guidance import TaskGuide
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
-    from .validate import GUIDANCE_SIZES, study_guidance
+    from .validate import study_guidance
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
     SimulatedTeacher(L, load_scenario()['example_preference'],
@@ -435,7 +435,7 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     out['next_task_ms'] = _median_ms(lambda: guide.score(tasks), 3 if quick else 9)
     t = time.perf_counter()
     r = study_guidance(n_truths=8 if quick else 24, n_demos=10,
-                       n_jobs=min(2, os.cpu_count() or 1), **GUIDANCE_SIZES)
+                       n_jobs=min(2, os.cpu_count() or 1))
     out.update(r['figures'])
     out['guidance_study_wall_s'] = time.perf_counter() - t
     return out

@@ -376,9 +376,6 @@ def study_sbc(n_runs=200, n_demos=3, n_particles=1000, n_draws=99, seed=0) -> di
 
 
 # ---------------------------------------------------------------- study 6: guided teaching
-#: learner sizes of the guidance study (smaller than the node's 4,000 / 500 so that 48
-#: sessions of 10 demonstrations take a few minutes on two cores)
-GUIDANCE_SIZES = dict(n_particles=1000, n_alternatives=200)
 
 
 def study_tasks(learner) -> list:
@@ -425,7 +422,8 @@ def _guided_session(job) -> dict:
             'tasks': chosen, 'expected_gain': gains, 'demos_to_cos90': _cos90(cos, n_demos)}
 
 
-def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300, seed=0,
+def study_guidance(n_truths=24, n_demos=10, n_particles: Optional[int] = None,
+                   n_alternatives: Optional[int] = None, seed=0,
                    n_jobs=1, scheduler: Optional[str] = None) -> dict:
     """Guided against round-robin teaching, paired: the same people, truths and seeds.
 
@@ -437,12 +435,16 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
     fewer times first, in either direction; then the largest expected information
     gain, the mean over the guide's set draws). Figures:
     demonstrations to reach cosine 0.9 (median; never reached counts as
-    ``n_demos``), cosine after 5 and after ``n_demos``.
+    ``n_demos``), cosine after 5 and after ``n_demos``. ``n_particles``,
+    ``n_alternatives``: the learner's (and so the guide's) sizes, by default
+    the shipped ones.
     """
     from .learner import LearnerConfig
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
+    n_particles = n_particles or LearnerConfig.n_particles
+    n_alternatives = n_alternatives or LearnerConfig.n_alternatives
     jobs = []
     for i, t in enumerate(truths):
         if i % 2 == 0:
@@ -453,7 +455,8 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
             jobs.append((t, variant, beta, 100 * i + seed, n_demos, n_particles,
                          n_alternatives, guided))
     runs = _run_jobs(_guided_session, jobs, n_jobs, 'guided against round-robin', scheduler)
-    out = {'n_demos': n_demos, 'n_truths': n_truths}
+    out = {'n_demos': n_demos, 'n_truths': n_truths, 'n_particles': n_particles,
+           'n_alternatives': n_alternatives}
     for arm, flag in (('round_robin', False), ('guided', True)):
         rs = [r for r in runs if r['guided'] is flag]
         cos = np.array([r['cosine'] for r in rs])
@@ -474,7 +477,8 @@ def study_guidance(n_truths=24, n_demos=10, n_particles=2000, n_alternatives=300
         'guided_cosine_after5_mean': gd['cosine_after5_mean'],
         'round_robin_cosine_after5_mean': rr['cosine_after5_mean'],
         f'guided_cosine_after{n_demos}_mean': gd['cosine_final_mean'],
-        f'round_robin_cosine_after{n_demos}_mean': rr['cosine_final_mean']}
+        f'round_robin_cosine_after{n_demos}_mean': rr['cosine_final_mean'],
+        'guidance_n_particles': n_particles, 'guidance_n_alternatives': n_alternatives}
     return out
 
 
@@ -546,7 +550,9 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
                               n_jobs=n_jobs, scheduler=scheduler)
     sbc = study_sbc(n_runs=60 if quick else 200)
     guide = study_guidance(n_truths=4 if quick else 24, n_demos=10, n_jobs=n_jobs,
-                           scheduler=scheduler, **GUIDANCE_SIZES) \
+                           scheduler=scheduler,
+                           n_particles=sizes['n_particles'] if quick else None,
+                           n_alternatives=sizes['n_alternatives'] if quick else None) \
         if guidance else {'figures': {}}
     figures = {
         'dup_share_less_k8': dup['share_lone']['less'][-1],

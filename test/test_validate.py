@@ -174,3 +174,5 @@ def test_guidance_study_runs_paired_and_gives_finite_figures():
     assert all(0.0 <= g <= math.log(40) for x in gd for g in x['expected_gain'])
     assert [x['variant'] for x in rr] == ['matched', validate.MISMATCHED[0]]
     assert all(math.isfinite(v) for v in r['figures'].values())
+    assert (r['figures']['guidance_n_particles'], r['figures']['guidance_n_alternatives']) == \
+        (200, 40)
