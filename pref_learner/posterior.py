@@ -1105,7 +1105,7 @@ class PosteriorConfig:
     pool_levels: bool = False
     move_likelihood: str = 'expansion'
     expansion_tol: float = 0.05
-    tempering_move_rounds: int = 1
+    tempering_move_rounds: int = 2
 
     def __post_init__(self):
         if not isinstance(self.n_particles, (int, np.integer)) or self.n_particles < 1:

@@ -359,7 +359,7 @@ def test_tempering_without_moves_between_steps_matches_quadrature():
     dens = np.exp(choice.less_loglik(x, c, th, 40.0) - choice.less_loglik(x, c, th, 40.0).max())
     exact_mean = integrate.trapezoid(dens[:, None] * th, grid, axis=0) / integrate.trapezoid(
         dens, grid)
-    for rounds in (0, 1, 2):
+    for rounds in (0, 2):
         cfg = PosteriorConfig(n_particles=8000, model='less', beta=40.0,
                               tempering_move_rounds=rounds)
         g = np.random.default_rng(91)
