@@ -413,7 +413,8 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     every task's option sets (``TaskGuide.n_draws`` each) already built (the
     node builds them once and reuses them); ``next_task_first_ms`` includes
     building them.
-    The study runs the learner at its shipped sizes (N 4,000, M 500).
+    The study runs the learner at its shipped sizes (N 4,000, M 500; 1,000 and 200
+    when ``quick``).
     """
     from .features import load_scenario
     from .guidance import TaskGuide
@@ -435,7 +436,8 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     out['next_task_ms'] = _median_ms(lambda: guide.score(tasks), 3 if quick else 9)
     t = time.perf_counter()
     r = study_guidance(n_truths=8 if quick else 24, n_demos=10,
-                       n_jobs=min(2, os.cpu_count() or 1))
+                       n_jobs=min(2, os.cpu_count() or 1),
+                       **(dict(n_particles=1000, n_alternatives=200) if quick else {}))
     out.update(r['figures'])
     out['guidance_study_wall_s'] = time.perf_counter() - t
     return out
@@ -678,8 +680,10 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
     if 'calibration' in parts:
         from .validate import calibration_figures, study_calibration, study_sbc
         t = time.perf_counter()
+        # the learner's shipped sizes; smaller when quick
+        small = dict(n_particles=1000, n_alternatives=200) if quick else {}
         calib = study_calibration(n_truths=8 if quick else 24, n_demos=10,
-                                  n_jobs=min(2, os.cpu_count() or 1))
+                                  n_jobs=min(2, os.cpu_count() or 1), **small)
         res.update(calibration_figures(calib, study_sbc(n_runs=60 if quick else 200)))
         res['calibration_wall_s'] = time.perf_counter() - t
     if 'guidance' in parts:

@@ -207,6 +207,8 @@ class Learner:
 
         ``on_estimate(StepResult)`` is called as soon as a demonstration has been
         weighed in, before the (slower) rejuvenation moves; the node publishes there.
+        Its ``diagnostics`` are still empty then: the demonstration's checks fill the
+        same dict right after the call (read it once :meth:`process` returns).
         ``task``: the task model to learn with; its record's settings replace
         ``config``'s (:meth:`TaskRecord.apply_to`). Without it the task model is
         the state directory's stored record when the configuration is the
@@ -585,6 +587,7 @@ class Learner:
             return self._learn_stored(demo)
         except BaseException:
             del self._demos[index:]             # as it was: not learned, not kept
+            del self._diagnostics[index:]
             self.posteriors = posteriors
             if store is not None:
                 try:

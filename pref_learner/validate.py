@@ -297,8 +297,8 @@ def study_calibration(n_truths=24, n_demos=10, n_particles: Optional[int] = None
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
-    n_particles = n_particles or LearnerConfig.n_particles
-    n_alternatives = n_alternatives or LearnerConfig.n_alternatives
+    n_particles = LearnerConfig.n_particles if n_particles is None else n_particles
+    n_alternatives = LearnerConfig.n_alternatives if n_alternatives is None else n_alternatives
     out = {}
     for cond in conditions:
         jobs = []
@@ -443,8 +443,8 @@ def study_guidance(n_truths=24, n_demos=10, n_particles: Optional[int] = None,
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
-    n_particles = n_particles or LearnerConfig.n_particles
-    n_alternatives = n_alternatives or LearnerConfig.n_alternatives
+    n_particles = LearnerConfig.n_particles if n_particles is None else n_particles
+    n_alternatives = LearnerConfig.n_alternatives if n_alternatives is None else n_alternatives
     jobs = []
     for i, t in enumerate(truths):
         if i % 2 == 0:

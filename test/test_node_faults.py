@@ -2,10 +2,12 @@
 # SPDX-License-Identifier: Apache-2.0
 """The node under faults: slow or failing service handlers, a failing state directory."""
 
+import collections
 import threading
 import time
 
 import numpy as np
+import pytest
 import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus
 from rclpy.parameter import Parameter
@@ -261,3 +263,23 @@ def test_a_lagging_worker_keeps_the_bag_in_the_order_it_handled(tmp_path):
             node._publish_estimates()
         node.destroy_node()                           # closes the bag
     assert [e.log_ns for e in read_stream(bag)] == recv
+
+
+def test_a_held_teaching_signal_is_due_when_the_stream_has_been_quiet(monkeypatch):
+    # the node's idle handler says when the held signal is due (TEACH_QUIET_S after the
+    # last joint state), so the worker wakes for it; once due it is applied
+    from types import SimpleNamespace
+
+    from pref_learner.ros import learner_node
+    from pref_learner.ros.learner_node import TEACH_QUIET_S, LearnerNode
+    monkeypatch.setattr(learner_node.time, 'monotonic', lambda: 100.0)
+    released = []
+    stub = SimpleNamespace(_held_teaching=collections.deque([(0, 0, False)]),
+                           _last_js=100.0 - 0.25 * TEACH_QUIET_S, _status_dirty=False,
+                           _release_teaching=released.append)
+    assert LearnerNode._on_idle(stub) == pytest.approx(0.75 * TEACH_QUIET_S)
+    assert released == []
+    stub._last_js = 100.0 - 2 * TEACH_QUIET_S
+    assert LearnerNode._on_idle(stub) is None and released == [float('inf')]
+    stub._held_teaching.clear()
+    assert LearnerNode._on_idle(stub) is None and len(released) == 1

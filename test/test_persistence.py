@@ -180,3 +180,21 @@ def test_the_estimate_is_handed_out_before_the_checks_and_the_moves():
         assert diag is r.diagnostics                        # the same record, now filled
         assert {'predictive_pvalue', 'atypical', 'percentiles'} <= set(diag)
     assert not L.posteriors['less'].moves_pending
+
+
+def test_a_failure_after_the_estimate_leaves_the_learner_as_it_was(monkeypatch):
+    # a fault in the demonstration's checks (after the estimate was handed out) rolls the
+    # demonstration back entirely: posterior, demonstrations and their diagnostics
+    from pref_learner import learner as learner_mod
+    L = Learner(LearnerConfig(model='less', **SMALL))
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'], TeacherConfig())
+    t = teacher.feed_one(L, 0, 10**18)[1]
+    before = L.posteriors['less']
+
+    def broken(*args):
+        raise RuntimeError('broken check')
+    monkeypatch.setattr(learner_mod, '_information', broken)
+    with pytest.raises(RuntimeError, match='broken check'):
+        teacher.feed_one(L, 1, t)
+    assert L.n_demonstrations == 1 and L.posteriors['less'] is before
+    assert len(L.history_diagnostics()) == 1

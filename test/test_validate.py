@@ -176,3 +176,27 @@ def test_guidance_study_runs_paired_and_gives_finite_figures():
     assert all(math.isfinite(v) for v in r['figures'].values())
     assert (r['figures']['guidance_n_particles'], r['figures']['guidance_n_alternatives']) == \
         (200, 40)
+
+
+def test_the_studies_run_the_learner_at_its_shipped_sizes_by_default(monkeypatch):
+    # the calibration and guided-teaching studies measure what users run unless told
+    from pref_learner.learner import LearnerConfig
+    seen = []
+
+    def jobs(fn, items, n_jobs, label, scheduler=None):
+        seen.append([(it[5], it[6]) for it in items])
+        if fn is validate._guided_session:
+            return [{'guided': it[7], 'cosine': [1.0] * it[4], 'demos_to_cos90': 1}
+                    for it in items]
+        return [{'cosine': 1.0, 'inside90': True, 'confidently_wrong': False} for _ in items]
+    monkeypatch.setattr(validate, '_run_jobs', jobs)
+    shipped = (LearnerConfig.n_particles, LearnerConfig.n_alternatives)
+    validate.study_calibration(n_truths=2, n_demos=1, conditions=('matched',))
+    assert seen[-1] == [shipped] * 2
+    validate.study_calibration(n_truths=2, n_demos=1, n_particles=300, n_alternatives=60,
+                               conditions=('matched',))
+    assert seen[-1] == [(300, 60)] * 2
+    r = validate.study_guidance(n_truths=2, n_demos=2)
+    assert seen[-1] == [shipped] * 4
+    assert (r['figures']['guidance_n_particles'],
+            r['figures']['guidance_n_alternatives']) == shipped

@@ -95,9 +95,11 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             def n_demos():
                 return int(state['status'].get('demonstrations', 0))
 
-            def n_handled():          # demonstrations learned or refused
+            def n_handled():
+                # demonstrations learned or refused, counted once the node is done with
+                # each (after the estimate that follows its moves is out)
                 st = state['status']
-                return int(st.get('accepted', 0)) + int(st.get('rejected', 0))
+                return int(st.get('node_accepted', 0)) + int(st.get('node_rejected', 0))
 
             # -- latency from teaching=false to new weights, 1 kHz samples; the first
             # demonstration (k = -1) is not timed: its samples may meet a subscription
@@ -108,7 +110,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 stamps, q = _live(teacher, k + 1)
                 teach.publish(Bool(data=True))
                 publish_paced(pub, stamps, q, names, 1000.0)
-                rclpy.spin_once(node, timeout_sec=0.0)
+                spin_until(lambda: False, 0.05)      # take in whatever is still queued
                 before = n_handled()
                 t0 = time.perf_counter()
                 state['w_t'] = 0.0
@@ -117,6 +119,8 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 spin_until(lambda: n_handled() > before, 30)
                 if k >= 0 and learned:
                     lat.append(state['w_t'] - t0)
+            if not lat:
+                raise RuntimeError('the learner node learned none of the timed demonstrations')
             out['node_update_latency_ms_p95'] = float(np.percentile(lat, 95) * 1e3)
             out['node_update_latency_ms_median'] = float(np.median(lat) * 1e3)
 

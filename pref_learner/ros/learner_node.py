@@ -404,8 +404,8 @@ class LearnerNode(Node):
         self._worker.put(item)
 
     def _on_joint_states(self, raw: bytes, info):
+        self._last_js = time.monotonic()        # before the worker can see the sample
         self._enqueue(('js', *self._received(info), raw))
-        self._last_js = time.monotonic()
 
     def _on_teaching(self, msg: Bool, info):
         self._enqueue(('teach', *self._received(info), bool(msg.data)))
@@ -460,6 +460,12 @@ class LearnerNode(Node):
         if self.context.ok():  # after shutdown there is nothing left to publish to
             self._warn('internal_error', f'{type(exc).__name__}: {exc}')
             self._status_dirty = True
+            try:
+                # a demonstration that failed after its estimate went out was rolled
+                # back: publish the estimate the learner holds again
+                self._publish_estimates()
+            except Exception as again:  # noqa: BLE001 -- reported; the worker goes on
+                self._warn('internal_error', f'republishing: {type(again).__name__}: {again}')
 
     def _log_time(self, recv: int) -> int:
         """Strictly increasing receive times: the bag replays in the order handled here.
