@@ -276,7 +276,7 @@ def test_a_held_teaching_signal_is_due_when_the_stream_has_been_quiet(monkeypatc
     released = []
     stub = SimpleNamespace(_held_teaching=collections.deque([(0, 0, False)]),
                            _last_js=100.0 - 0.25 * TEACH_QUIET_S, _status_dirty=False,
-                           _release_teaching=released.append)
+                           _release_teaching=released.append, _settle=lambda: None)
     assert LearnerNode._on_idle(stub) == pytest.approx(0.75 * TEACH_QUIET_S)
     assert released == []
     stub._last_js = 100.0 - 2 * TEACH_QUIET_S

@@ -69,6 +69,8 @@ SERVICE_QOS = QoSProfile(depth=100, reliability=ReliabilityPolicy.RELIABLE,
                          durability=DurabilityPolicy.VOLATILE, history=HistoryPolicy.KEEP_ALL)
 # a held teaching signal is applied once no joint state came in for this long (no backlog)
 TEACH_QUIET_S = 0.02
+# while joint states stream in, the status snapshot is rebuilt at most this often
+STATUS_MIN_S = 0.1
 _SERVICES = (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
              ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard'))
 _SAMPLE_COUNTERS = ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
@@ -177,6 +179,7 @@ class LearnerNode(Node):
         self.last_warning = ''
         self._pending_config = None
         self._summaries = {}
+        self._provisional = False    # an estimate is out for a demonstration still in progress
         self._status = None
         self._status_t = 0.0
         self._status_dirty = False
@@ -437,11 +440,14 @@ class LearnerNode(Node):
 
     # ------------------------------------------------------------ worker
     def _handle_item(self, item):
-        self._handle(item)
+        try:
+            self._handle(item)
+        finally:
+            self._settle()
         if self._pending_config is not None and not self.learner.recorder.recording:
             self._apply_runtime(self._pending_config)
         self._status_dirty = True
-        if item[0] != 'js' or time.monotonic() - self._status_t > 0.1:
+        if item[0] != 'js' or time.monotonic() - self._status_t > STATUS_MIN_S:
             self._update_status()
 
     def _on_idle(self):
@@ -450,22 +456,23 @@ class LearnerNode(Node):
         if self._held_teaching:
             due = TEACH_QUIET_S - (time.monotonic() - self._last_js)
             if due <= 0:
-                self._release_teaching(float('inf'))
+                try:
+                    self._release_teaching(float('inf'))
+                finally:
+                    self._settle()
                 due = None
-        if self._status_dirty:
-            self._update_status()
+        if self._status_dirty:      # as after a sample: not more often than STATUS_MIN_S
+            wait = STATUS_MIN_S - (time.monotonic() - self._status_t)
+            if wait <= 0:
+                self._update_status()
+            else:
+                due = wait if due is None else min(due, wait)
         return due
 
     def _on_worker_error(self, exc):
         if self.context.ok():  # after shutdown there is nothing left to publish to
             self._warn('internal_error', f'{type(exc).__name__}: {exc}')
             self._status_dirty = True
-            try:
-                # a demonstration that failed after its estimate went out was rolled
-                # back: publish the estimate the learner holds again
-                self._publish_estimates()
-            except Exception as again:  # noqa: BLE001 -- reported; the worker goes on
-                self._warn('internal_error', f'republishing: {type(again).__name__}: {again}')
 
     def _log_time(self, recv: int) -> int:
         """Strictly increasing receive times: the bag replays in the order handled here.
@@ -642,12 +649,21 @@ class LearnerNode(Node):
         """Publish as soon as the demonstration is weighed in (before rejuvenation)."""
         self._latency = r.latency_s
         self._publish_estimates()
+        self._provisional = True          # until the demonstration's result comes back
+
+    def _settle(self):
+        """After handling: an estimate published for a demonstration that never came back
+        as a result was rolled back with it; publish the estimate the learner holds."""
+        if self._provisional:
+            self._provisional = False
+            self._publish_estimates()
 
     def _results(self, results):
         learned = False
         for r in results:
             if isinstance(r, StepResult):
                 learned = True
+                self._provisional = False
                 self._latency = r.latency_s
                 self.counters['accepted'] += 1
                 self._publish_estimates()
