@@ -420,7 +420,7 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     from .guidance import TaskGuide
     from .learner import Learner, LearnerConfig
     from .sim import SimulatedTeacher, TeacherConfig
-    from .validate import study_guidance
+    from .validate import QUICK_SIZES, study_guidance
     out: Dict[str, float] = {}
     L = Learner(LearnerConfig(model='less'))
     SimulatedTeacher(L, load_scenario()['example_preference'],
@@ -437,7 +437,7 @@ def guidance_benchmarks(quick: bool = False) -> Dict[str, float]:
     t = time.perf_counter()
     r = study_guidance(n_truths=8 if quick else 24, n_demos=10,
                        n_jobs=min(2, os.cpu_count() or 1),
-                       **(dict(n_particles=1000, n_alternatives=200) if quick else {}))
+                       **(QUICK_SIZES if quick else {}))
     out.update(r['figures'])
     out['guidance_study_wall_s'] = time.perf_counter() - t
     return out
@@ -675,15 +675,16 @@ def run_benchmarks(quick: bool = False, parts: List[str] = None,
         res.update(demo_benchmark(quick))
     if 'validate' in parts:
         from .validate import run_studies
-        figs = run_studies(quick=True, out_dir=None, guidance=False)['figures']
-        res.update({k: v for k, v in figs.items() if not k.startswith(('calib_', 'sbc_'))})
+        # the calibration studies are the part below, at their own sizes
+        res.update(run_studies(quick=True, out_dir=None, guidance=False,
+                               calibration=False)['figures'])
     if 'calibration' in parts:
-        from .validate import calibration_figures, study_calibration, study_sbc
+        from .validate import QUICK_SIZES, calibration_figures, study_calibration, study_sbc
         t = time.perf_counter()
         # the learner's shipped sizes; smaller when quick
-        small = dict(n_particles=1000, n_alternatives=200) if quick else {}
         calib = study_calibration(n_truths=8 if quick else 24, n_demos=10,
-                                  n_jobs=min(2, os.cpu_count() or 1), **small)
+                                  n_jobs=min(2, os.cpu_count() or 1),
+                                  **(QUICK_SIZES if quick else {}))
         res.update(calibration_figures(calib, study_sbc(n_runs=60 if quick else 200)))
         res['calibration_wall_s'] = time.perf_counter() - t
     if 'guidance' in parts:

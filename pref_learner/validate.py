@@ -28,7 +28,7 @@ import json
 import math
 import time
 from pathlib import Path
-from typing import Dict, Optional
+from typing import Dict, Optional, Tuple
 
 import numpy as np
 
@@ -275,6 +275,17 @@ def _run_jobs(fn, jobs, n_jobs: int, label: str, scheduler: Optional[str] = None
     return out
 
 
+#: the learner's sizes in the studies' ``quick`` runs (full runs use the shipped ones)
+QUICK_SIZES = dict(n_particles=1000, n_alternatives=200)
+
+
+def learner_sizes(n_particles: Optional[int], n_alternatives: Optional[int]) -> Tuple[int, int]:
+    """Return the given learner sizes, the shipped defaults where ``None``."""
+    from .learner import LearnerConfig
+    return (LearnerConfig.n_particles if n_particles is None else n_particles,
+            LearnerConfig.n_alternatives if n_alternatives is None else n_alternatives)
+
+
 def study_calibration(n_truths=24, n_demos=10, n_particles: Optional[int] = None,
                       n_alternatives: Optional[int] = None,
                       conditions=('matched', 'mismatched'), seed=0, n_jobs=1,
@@ -297,8 +308,7 @@ def study_calibration(n_truths=24, n_demos=10, n_particles: Optional[int] = None
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
-    n_particles = LearnerConfig.n_particles if n_particles is None else n_particles
-    n_alternatives = LearnerConfig.n_alternatives if n_alternatives is None else n_alternatives
+    n_particles, n_alternatives = learner_sizes(n_particles, n_alternatives)
     out = {}
     for cond in conditions:
         jobs = []
@@ -443,8 +453,7 @@ def study_guidance(n_truths=24, n_demos=10, n_particles: Optional[int] = None,
     from .task import TaskModel
     d = TaskModel.from_config(LearnerConfig(n_alternatives=1)).d
     truths = _random_truths(n_truths, d, 7919 + seed)
-    n_particles = LearnerConfig.n_particles if n_particles is None else n_particles
-    n_alternatives = LearnerConfig.n_alternatives if n_alternatives is None else n_alternatives
+    n_particles, n_alternatives = learner_sizes(n_particles, n_alternatives)
     jobs = []
     for i, t in enumerate(truths):
         if i % 2 == 0:
@@ -532,9 +541,10 @@ def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
 
 def run_studies(quick: bool = False, out_dir: Optional[str] = None,
                 n_jobs: int = 1, guidance: bool = True,
-                scheduler: Optional[str] = None) -> Dict[str, object]:
+                scheduler: Optional[str] = None, calibration: bool = True) -> Dict[str, object]:
+    """Run the validation studies; ``guidance``, ``calibration``: include those studies."""
     t0 = time.time()
-    sizes = dict(n_truths=2, n_seeds=1, n_demos=6, n_particles=1000, n_alternatives=200) \
+    sizes = dict(n_truths=2, n_seeds=1, n_demos=6, **QUICK_SIZES) \
         if quick else dict(n_truths=8, n_seeds=3, n_demos=10, n_particles=2000,
                            n_alternatives=300)
     dup = study_duplicates()
@@ -543,16 +553,14 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
     rob = study_set_robustness(n_sets=5 if quick else 10, n_demos=6 if quick else 8,
                                n_particles=sizes['n_particles'],
                                n_alternatives=sizes['n_alternatives'])
-    # the learner's own defaults in the full study (what users run); reduced when quick
+    # the learner's own sizes in the full studies (what users run); reduced when quick
+    small = QUICK_SIZES if quick else {}
     calib = study_calibration(n_truths=6 if quick else 24, n_demos=6 if quick else 10,
-                              n_particles=sizes['n_particles'] if quick else None,
-                              n_alternatives=sizes['n_alternatives'] if quick else None,
-                              n_jobs=n_jobs, scheduler=scheduler)
-    sbc = study_sbc(n_runs=60 if quick else 200)
+                              n_jobs=n_jobs, scheduler=scheduler, **small) \
+        if calibration else {}
+    sbc = study_sbc(n_runs=60 if quick else 200) if calibration else {}
     guide = study_guidance(n_truths=4 if quick else 24, n_demos=10, n_jobs=n_jobs,
-                           scheduler=scheduler,
-                           n_particles=sizes['n_particles'] if quick else None,
-                           n_alternatives=sizes['n_alternatives'] if quick else None) \
+                           scheduler=scheduler, **small) \
         if guidance else {'figures': {}}
     figures = {
         'dup_share_less_k8': dup['share_lone']['less'][-1],
@@ -577,7 +585,8 @@ def run_studies(quick: bool = False, out_dir: Optional[str] = None,
         for m in MODELS:
             if 'regret' in arm[person][m]:
                 figures[f'arm_regret_{m}_on_{person}_people'] = arm[person][m]['regret']['mean']
-    figures.update(calibration_figures(calib, sbc))
+    if calibration:
+        figures.update(calibration_figures(calib, sbc))
     figures.update(guide['figures'])
     figures['validate_wall_s'] = time.time() - t0
     result = {'quick': quick, 'figures': figures, 'duplicates': dup, 'dense_sparse': ds,

@@ -102,12 +102,13 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 return int(st.get('node_accepted', 0)) + int(st.get('node_rejected', 0))
 
             # -- latency from teaching=false to new weights, 1 kHz samples; the first
-            # demonstration (k = -1) is not timed: its samples may meet a subscription
-            # that has not yet matched the publisher (then it is refused, never learned)
+            # demonstration is not timed: its samples may meet a subscription that has
+            # not yet matched the publisher (then it is refused, never learned)
             lat = []
             n_lat = 5 if quick else 12
-            for k in range(-1, n_lat):
-                stamps, q = _live(teacher, k + 1)
+            for k in range(n_lat + 1):
+                warm = k == 0
+                stamps, q = _live(teacher, k)
                 teach.publish(Bool(data=True))
                 publish_paced(pub, stamps, q, names, 1000.0)
                 spin_until(lambda: False, 0.05)      # take in whatever is still queued
@@ -115,10 +116,10 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 t0 = time.perf_counter()
                 state['w_t'] = 0.0
                 teach.publish(Bool(data=False))
-                learned = spin_until(lambda: state['w_t'] > t0, 10 if k < 0 else 30)
+                learned = spin_until(lambda: state['w_t'] > t0, 10 if warm else 30)
                 first = state['w_t'] - t0         # the estimate; the one after its moves follows
                 spin_until(lambda: n_handled() > before, 30)
-                if k >= 0 and learned:
+                if not warm and learned:
                     lat.append(first)
             if not lat:
                 raise RuntimeError('the learner node learned none of the timed demonstrations')
