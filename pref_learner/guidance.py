@@ -220,16 +220,17 @@ def times_taught(start: np.ndarray, goal: np.ndarray, taught: Sequence[tuple],
     A pair counts when it lies within ``tolerance`` (every joint) of
     ``(start, goal)`` or of ``(goal, start)``.
     """
+    if not len(taught):
+        return 0
+    ends = np.asarray(taught, np.float64)                     # (k, 2, n): first, last
     s = np.asarray(start, np.float64)
     g = np.asarray(goal, np.float64)
-    n = 0
-    for a, b in taught:
-        a = np.asarray(a, np.float64)
-        b = np.asarray(b, np.float64)
-        fwd = np.max(np.abs(a - s)) <= tolerance and np.max(np.abs(b - g)) <= tolerance
-        rev = np.max(np.abs(a - g)) <= tolerance and np.max(np.abs(b - s)) <= tolerance
-        n += bool(fwd or rev)
-    return n
+
+    def near(x, y):
+        return np.max(np.abs(x - y), axis=-1) <= tolerance
+    fwd = near(ends[:, 0], s) & near(ends[:, 1], g)
+    rev = near(ends[:, 0], g) & near(ends[:, 1], s)
+    return int(np.count_nonzero(fwd | rev))
 
 
 class TaskGuide:
@@ -240,24 +241,21 @@ class TaskGuide:
     learner's seed and the task's start and goal, and reused until the
     learner's configuration or feature scales change. ``n_alternatives``
     (default: the learner's) sets the size of the scoring sets;
-    ``max_particles`` thins the particles; ``tolerance`` (rad) decides which
-    demonstrations are of a task; ``fresh_first``: tasks taught fewer times
-    are proposed first (else by the gain alone). Nothing is computed on
-    construction.
+    ``max_particles`` thins the particles; a demonstration is of a task when
+    its ends are within :data:`MATCH_TOLERANCE` of the task's; ``fresh_first``:
+    tasks taught fewer times are proposed first (else by the gain alone).
+    Nothing is computed on construction.
     """
 
     def __init__(self, learner, n_alternatives: Optional[int] = None,
                  max_particles: Optional[int] = None, n_draws: int = N_DRAWS,
-                 tolerance: float = MATCH_TOLERANCE, fresh_first: bool = True):
+                 fresh_first: bool = True):
         if n_draws < 1:
             raise ValueError(f'n_draws must be >= 1, got {n_draws}')
-        if not tolerance >= 0:
-            raise ValueError(f'tolerance must be >= 0, got {tolerance}')
         self.learner = learner
         self.n_alternatives = n_alternatives
         self.max_particles = max_particles
         self.n_draws = int(n_draws)
-        self.tolerance = float(tolerance)
         self.fresh_first = bool(fresh_first)
         self._cache: Dict[tuple, Tuple[TaskOptions, ...]] = {}
         self._key = None
@@ -319,16 +317,15 @@ class TaskGuide:
                      for m, p in L.posteriors.items()}
             out.append(TaskScore(name, draws[0].start, draws[0].goal,
                                  float(np.mean(list(gains.values()))), gains,
-                                 times_taught(draws[0].start, draws[0].goal, done,
-                                              self.tolerance)))
+                                 times_taught(draws[0].start, draws[0].goal, done)))
         order = sorted(range(len(out)), key=lambda i: (
             out[i].times_taught if self.fresh_first else 0, -out[i].gain, i))
         return [out[i] for i in order]
 
-    def propose(self, tasks: Sequence[tuple], rng: Optional[np.random.Generator] = None,
-                taught: Optional[Sequence[tuple]] = None) -> Optional[TaskScore]:
+    def propose(self, tasks: Sequence[tuple],
+                rng: Optional[np.random.Generator] = None) -> Optional[TaskScore]:
         """Return the proposal among ``tasks`` (None when there is none); see :meth:`score`."""
-        scores = self.score(tasks, rng, taught)
+        scores = self.score(tasks, rng)
         return scores[0] if scores else None
 
 
