@@ -231,7 +231,7 @@ def pooled_log_weights(modes: np.ndarray, groups: np.ndarray, n_levels: int) -> 
     return np.where(lw >= POOL_MIN_LOG_WEIGHT, lw, -np.inf)
 
 
-def pooled_log_similarity(features: np.ndarray, chosen: int, log_weight: np.ndarray,
+def pooled_log_similarity(features: np.ndarray, log_weight: np.ndarray,
                           bandwidth='scott') -> np.ndarray:
     """Return the LESS log-similarity sums ``(L, K)`` of a set pooled over its levels.
 
@@ -249,7 +249,7 @@ def pooled_log_similarity(features: np.ndarray, chosen: int, log_weight: np.ndar
     """
     x = choice._check_matrix(features)
     lw = np.asarray(log_weight, dtype=np.float64)
-    k, d = x.shape
+    d = x.shape[1]
     out = np.full(lw.shape, -np.inf)
     for g in range(lw.shape[0]):
         rows = np.flatnonzero(np.isfinite(lw[g]))
@@ -409,7 +409,7 @@ class ChoiceRecord:
                 dens[lev] = log_option_density(x[cols[1:]], x[c], density)
         plw = pls = None
         if pool:
-            if L > 1 and (density != 'modes' or deviation is None):
+            if L > 1 and density != 'modes':     # (modes without deviation raised above)
                 raise ValueError('pooled levels need the "modes" option density and the '
                                  'mode coefficients (deviation) of every row')
             alt = np.flatnonzero(np.arange(k) != c)
@@ -417,7 +417,7 @@ class ChoiceRecord:
             if L > 1:
                 plw[:, alt] = pooled_log_weights(deviation[alt], g[alt], L)
             if with_similarity:
-                pls = pooled_log_similarity(x, c, plw, bandwidth)
+                pls = pooled_log_similarity(x, plw, bandwidth)
         return cls(x, c, g, L, ls, lsc, dens, plw, pls)
 
     @property
@@ -689,11 +689,11 @@ class SubsetScreen:
             if rec.pooled:            # pooled rows are ordered by level: take them evenly spaced
                 pick = np.concatenate([[0], 1 + np.linspace(0, len(c) - 2, kk).round()
                                        .astype(np.int64)])
-                sub = c[pick]
-                s = rec.offsets(level, c, less)[pick]
             else:
-                sub = c[:1 + kk]
-                s = rec.log_similarity(level, c)[:1 + kk] if less else np.zeros(1 + kk)
+                pick = np.arange(1 + kk)
+            sub = c[pick]
+            o = rec.offsets(level, c, less)
+            s = np.zeros(1 + kk) if o is None else o[pick]
             weight = np.full(1 + kk, math.log((len(c) - 1) / kk))
             weight[0] = 0.0
             x.append(rec.features[sub])

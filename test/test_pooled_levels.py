@@ -114,12 +114,12 @@ def test_pooled_similarity_with_unit_or_integer_weights():
     # so every row that is not duplicated gets the sum it has in the duplicated set.
     rng = np.random.default_rng(8)
     x = rng.normal(size=(9, 3))
-    got = pooled_log_similarity(x, 0, np.zeros((1, 9)))
+    got = pooled_log_similarity(x, np.zeros((1, 9)))
     np.testing.assert_allclose(got[0], choice.log_similarity_sums(x), atol=1e-12)
     f = np.array([1, 1, 3, 1, 2, 1, 1, 1, 1])
     lw = np.log(f.astype(float))[None, :]
     lw = np.concatenate([lw, np.where(np.arange(9) == 5, -np.inf, 0.0)[None, :]])
-    got = pooled_log_similarity(x, 0, lw)
+    got = pooled_log_similarity(x, lw)
     dup = np.repeat(x, f, axis=0)
     ref = choice.log_similarity_sums(dup)
     first = np.concatenate([[0], np.cumsum(f)[:-1]])
