@@ -652,8 +652,11 @@ class LearnerNode(Node):
         self._provisional = True          # until the demonstration's result comes back
 
     def _settle(self):
-        """After handling: an estimate published for a demonstration that never came back
-        as a result was rolled back with it; publish the estimate the learner holds."""
+        """Replace an estimate whose demonstration was rolled back (after each handling).
+
+        An estimate published for a demonstration that never came back as a
+        result went with it; publish the estimate the learner holds.
+        """
         if self._provisional:
             self._provisional = False
             self._publish_estimates()
