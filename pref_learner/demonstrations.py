@@ -694,23 +694,27 @@ def reparametrize_arc_length(q: np.ndarray, tool: np.ndarray) -> np.ndarray:
     kept; a trajectory whose tool does not move is returned unchanged.
     """
     M, T, n = q.shape
-    seg = np.linalg.norm(np.diff(tool, axis=1), axis=-1)
+    step = np.diff(tool, axis=1)
+    seg = np.sqrt(step[..., 0] ** 2 + step[..., 1] ** 2 + step[..., 2] ** 2)
     s = np.concatenate([np.zeros((M, 1)), np.cumsum(seg, axis=1)], axis=1)
     total = s[:, -1:]
     ok = total[:, 0] > 1e-9
     u = np.where(ok[:, None], s / np.where(ok[:, None], total, 1.0), np.linspace(0, 1, T))
     g = np.linspace(0.0, 1.0, T)
-    # u rises along each row, so the count of u <= g is a binary search (O(T log T) per
-    # row; counting over every pair was O(T^2) and the larger part of the retiming)
-    idx = np.empty((M, T), dtype=np.int64)
-    for i in range(M):
-        idx[i] = np.searchsorted(u[i], g, side='right')
-    idx = np.clip(idx - 1, 0, T - 2)                                        # (M, T)
+    # count of u[i] <= g[k] for every row and k, exactly: u[i, j] <= g[k] holds from the
+    # first k with g[k] >= u[i, j] on (one binary search over the shared g for all
+    # entries), so the counts are a cumulative histogram of those first k per row
+    first = np.searchsorted(g, u.ravel(), side='left').reshape(M, T)
+    hist = np.bincount((first + (T + 1) * np.arange(M)[:, None]).ravel(),
+                       minlength=M * (T + 1)).reshape(M, T + 1)
+    idx = np.clip(np.cumsum(hist[:, :T], axis=1) - 1, 0, T - 2)             # (M, T)
     u0 = np.take_along_axis(u, idx, 1)
     u1 = np.take_along_axis(u, idx + 1, 1)
     w = np.where(u1 > u0, (g[None] - u0) / np.where(u1 > u0, u1 - u0, 1.0), 0.0)
-    q0 = np.take_along_axis(q, idx[..., None], 1)
-    q1 = np.take_along_axis(q, (idx + 1)[..., None], 1)
+    at = (idx + T * np.arange(M)[:, None]).ravel()              # rows of q as (M T, n)
+    flat = q.reshape(M * T, n)
+    q0 = np.take(flat, at, axis=0).reshape(M, T, n)
+    q1 = np.take(flat, at + 1, axis=0).reshape(M, T, n)
     out = q0 + w[..., None] * (q1 - q0)
     out[:, 0], out[:, -1] = q[:, 0], q[:, -1]
     return np.where(ok[:, None, None], out, q)

@@ -8,7 +8,8 @@ from hypothesis import given, settings, strategies as st
 
 from pref_learner.alternatives import AlternativeSampler, SamplerConfig, set_diagnostics
 from pref_learner.demonstrations import (Demonstration, PrepareConfig, Recorder, SegmentConfig,
-                                         condition, prepare, resample)
+                                         condition, prepare, reparametrize_arc_length,
+                                         resample)
 from pref_learner.features import FeatureSet, default_features_path, load_scenario
 from pref_learner.robot import RobotModel
 
@@ -123,6 +124,26 @@ def test_resampling_keeps_endpoints_and_arc_length_spacing(arm):
     tool = arm.frame_poses(d, ['tool_tip']).positions[:, 0]
     seg = np.linalg.norm(np.diff(tool, axis=0), axis=1)
     assert seg.max() / seg.mean() - 1 < 0.02 and 1 - seg.min() / seg.mean() < 0.02
+
+
+def test_batch_arc_length_retiming_matches_numpy_interp_row_by_row():
+    # Reference: numpy.interp (linear interpolation) of each joint at equal steps of the
+    # row's normalised tool-path length; a row whose tool does not move stays as it was.
+    rng = np.random.default_rng(5)
+    M, T, n = 40, 33, 7
+    q = rng.standard_normal((M, T, n))
+    tool = np.cumsum(0.01 + rng.random((M, T, 3)), axis=1)
+    tool[3] = tool[3, :1]
+    out = reparametrize_arc_length(q, tool)
+    g = np.linspace(0.0, 1.0, T)
+    for i in range(M):
+        if i == 3:
+            np.testing.assert_array_equal(out[i], q[i])
+            continue
+        s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(tool[i], axis=0), axis=1))])
+        ref = np.stack([np.interp(g, s / s[-1], q[i, :, j]) for j in range(n)], axis=1)
+        np.testing.assert_allclose(out[i], ref, rtol=0, atol=1e-12)
+        np.testing.assert_array_equal(out[i, [0, -1]], q[i, [0, -1]])
 
 
 def test_noisy_demo_is_not_a_jerk_outlier_after_shared_conditioning(arm):
