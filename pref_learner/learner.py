@@ -86,6 +86,10 @@ class LearnerConfig:
     calibration_seed: int = 0
     n_calibration: int = 200
     clamp: bool = False
+    # publish the one-step importance-weighted estimate first when its ESS is at least this
+    # (and tempering follows); 0: never. ESS 400 puts the Monte Carlo error of the mean
+    # near 5 % of the posterior spread (common practice: ESS > 400, Vehtari et al. 2021)
+    provisional_ess: float = 400.0
 
     def __post_init__(self):
         if self.model not in MODEL_CHOICES:
@@ -104,6 +108,8 @@ class LearnerConfig:
             raise ValueError(f'resample {self.resample!r} is unknown; allowed: time, arc_length')
         if self.seed < 0:
             raise ValueError(f'seed must be >= 0, got {self.seed}')
+        if not self.provisional_ess >= 0:
+            raise ValueError(f'provisional_ess must be >= 0, got {self.provisional_ess}')
         # the component configs check the rest
         self.segment_config()
         self.prepare_config()
@@ -196,6 +202,10 @@ class StepResult:
     latency_s: float
     diagnostics: dict
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
+    #: the estimate before tempering (``LearnerConfig.provisional_ess``): ``posteriors``
+    #: holds the importance-weighted posteriors it summarises; the learner's own follow
+    provisional: bool = False
+    posteriors: Optional[Dict[str, ParticlePosterior]] = None
 
 
 class Learner:
@@ -209,6 +219,9 @@ class Learner:
         weighed in, before the (slower) rejuvenation moves; the node publishes there.
         Its ``diagnostics`` are still empty then: the demonstration's checks fill the
         same dict right after the call (read it once :meth:`process` returns).
+        Where tempering is needed and the one-step importance weights keep an ESS
+        of at least ``config.provisional_ess``, it is called once before, with
+        ``provisional`` set and those posteriors (:attr:`StepResult.posteriors`).
         ``task``: the task model to learn with; its record's settings replace
         ``config``'s (:meth:`TaskRecord.apply_to`). Without it the task model is
         the state directory's stored record when the configuration is the
@@ -614,7 +627,8 @@ class Learner:
         early, publish = [], self.on_estimate
 
         def keep(r):
-            early.append(r)
+            if not r.provisional:
+                early.append(r)
             if publish is not None:
                 publish(r)
         self.on_estimate = keep
@@ -642,18 +656,23 @@ class Learner:
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats, groups = self.choice_set(q, index)
         dev = self.path_deviation(allq)
-        new, infos, rngs, recs = {}, {}, {}, {}
+        new, infos, rngs, recs, lls, quick = {}, {}, {}, {}, {}, {}
         before = dict(self.posteriors)
-        for k, (m, post) in enumerate(self.posteriors.items()):
-            rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
-                                                                    index + 1, k + 1]))
-            rec = recs[m] = post.prepare(feats, 0, groups, dev)
-            new[m], infos[m] = post.update(rec, rngs[m], move=False)
-        self.posteriors.update(new)  # only after every model accepted the update
-        self._demos.append(demo)
+        for m, post in self.posteriors.items():
+            recs[m], lls[m] = post.weigh(post.prepare(feats, 0, groups, dev))
+            quick[m] = post.reweighted(recs[m], lls[m])
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
+        if (self.on_estimate is not None and persist and self._provisional(before, quick)):
+            self.on_estimate(StepResult(index, {m: p.summary() for m, p in quick.items()}, {},
+                                        time.perf_counter() - t0, {}, paths, True, quick))
+        for k, (m, post) in enumerate(self.posteriors.items()):
+            rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
+                                                                    index + 1, k + 1]))
+            new[m], infos[m] = post.update(recs[m], rngs[m], move=False, loglik=lls[m])
+        self.posteriors.update(new)  # only after every model accepted the update
+        self._demos.append(demo)
         # the checks of the demonstration fill ``diag`` once the estimate is out: the
         # estimate never waits for them (the result handed out early holds this dict)
         diag: dict = {}
@@ -676,6 +695,21 @@ class Learner:
             self._save_posteriors()
             self.store.append_history(self._history_entry(res))
         return res
+
+    def _provisional(self, before, quick) -> bool:
+        """Whether to publish the one-step estimates ``quick`` before tempering.
+
+        Only where some model will temper (its one-step ESS is below its
+        ``ess_target`` x N; otherwise the update is that estimate) and every
+        model's one-step ESS is at least ``config.provisional_ess``.
+        """
+        floor = self.config.provisional_ess
+        if floor <= 0:
+            return False
+        ess = {m: q.ess for m, q in quick.items()}
+        return (min(ess.values()) >= floor
+                and any(ess[m] < p.config.ess_target * p.n_particles
+                        for m, p in before.items()))
 
     def _history_entry(self, res: StepResult) -> dict:
         return {'index': res.index, 'latency_s': res.latency_s, 'diagnostics': res.diagnostics,

@@ -1444,17 +1444,12 @@ class ParticlePosterior:
                                   density=self.config.option_density, deviation=deviation,
                                   pool=self.config.pool_levels)
 
-    def update(self, record, rng: np.random.Generator, move: bool = True):
-        """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
+    def weigh(self, record) -> Tuple[ChoiceRecord, np.ndarray]:
+        """Check a new demonstration's record; return it and its log-likelihood per particle.
 
-        ``record`` is a :class:`ChoiceRecord` or the arguments of :meth:`prepare`
-        as a tuple: ``(features (K, d), chosen[, groups[, deviation]])``. The new likelihood
-        enters in steps ``0 < phi_1 < ... < 1`` chosen by bisection so the ESS
-        stays at least ``ess_target`` x N in each (Del Moral, Doucet & Jasra
-        2006); between steps the particles are resampled and moved under the
-        tempered target. With ``move=False`` the moves after the last step are
-        left pending (``moves_pending``) so that the caller can publish the
-        estimate first and run :meth:`rejuvenate` next.
+        ``record`` as :meth:`update` takes it; the log-likelihood ``(N,)`` is
+        what :meth:`update` (``loglik``) and :meth:`reweighted` weigh the
+        particles by. Raises ``ValueError`` for a record this posterior cannot take.
         """
         if not isinstance(record, ChoiceRecord):
             record = self.prepare(*record)
@@ -1471,6 +1466,43 @@ class ParticlePosterior:
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '
                              'particles; features are out of range')
+        return record, ll
+
+    def reweighted(self, record: ChoiceRecord, ll: np.ndarray) -> 'ParticlePosterior':
+        """Return the new demonstration weighed in by importance weights alone, in one step.
+
+        The same particles with weights times the new likelihood ``ll``
+        (:meth:`weigh`): a self-normalised importance-sampling estimate of
+        the new posterior, whose accuracy its ESS states. :meth:`update`
+        returns exactly this when the ESS stays at least ``ess_target`` x N;
+        below that it tempers and moves the particles instead.
+        """
+        return replace(self, log_weights=log_normalise(self.log_weights + ll),
+                       log_lik=self.log_lik + ll, records=self.records + (record,),
+                       moves_pending=False)
+
+    def update(self, record, rng: np.random.Generator, move: bool = True,
+               loglik: Optional[np.ndarray] = None):
+        """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
+
+        ``record`` is a :class:`ChoiceRecord` or the arguments of :meth:`prepare`
+        as a tuple: ``(features (K, d), chosen[, groups[, deviation]])``. The new likelihood
+        enters in steps ``0 < phi_1 < ... < 1`` chosen by bisection so the ESS
+        stays at least ``ess_target`` x N in each (Del Moral, Doucet & Jasra
+        2006); between steps the particles are resampled and moved under the
+        tempered target. With ``move=False`` the moves after the last step are
+        left pending (``moves_pending``) so that the caller can publish the
+        estimate first and run :meth:`rejuvenate` next. ``loglik``: the record's
+        log-likelihood as :meth:`weigh` returned it for this ``record`` (not
+        computed again).
+        """
+        if loglik is None:
+            record, ll = self.weigh(record)
+        else:
+            ll = np.asarray(loglik, dtype=np.float64)
+            if not isinstance(record, ChoiceRecord) or ll.shape != (self.n_particles,):
+                raise ValueError('loglik needs the ChoiceRecord it was weighed from and one '
+                                 f'value per particle ({self.n_particles})')
         n = self.n_particles
         cur = self
         phi, steps, rounds = 0.0, 0, 0

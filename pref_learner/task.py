@@ -201,7 +201,8 @@ def learning_hash(config, record: TaskRecord) -> str:
     what they named).
     """
     d = asdict(config)
-    for k in ('state_dir', 'urdf', 'features', 'joint_names', 'tool_frame') + TASK_SETTINGS:
+    for k in ('state_dir', 'urdf', 'features', 'joint_names', 'tool_frame',
+              'provisional_ess') + TASK_SETTINGS:
         d.pop(k, None)
     r = asdict(replace(record, scales=()))
     for k in ('urdf', 'features'):

@@ -250,7 +250,9 @@ def _calib_session(job) -> dict:
                               n_alternatives=n_alternatives, **over))
     person = TeacherConfig(model='less', beta=beta, seed=seed + 1000,
                            **PERSON_VARIANTS[variant])
-    SimulatedTeacher(L, truth, person).feed_session(L, n_demos)
+    early = {}
+    L.on_estimate = lambda r: early.setdefault(r.index, []).append(r)
+    results = SimulatedTeacher(L, truth, person).feed_session(L, n_demos)
     post = L.posteriors['less']
     s = post.summary()
     cos = float(s.mean @ truth)
@@ -258,7 +260,33 @@ def _calib_session(job) -> dict:
             'concentration': s.concentration, 'beta_mean': s.beta_mean,
             'inside90': credible_region_contains(post.theta, post.weights, s.mean, truth),
             'confidently_wrong': bool(cos < 0.5 and s.concentration > 0.95),
-            'demonstrations': L.n_demonstrations, 'level_probs': list(s.level_probs)}
+            'demonstrations': L.n_demonstrations, 'level_probs': list(s.level_probs),
+            **_provisional_deviations(early, results)}
+
+
+def _provisional_deviations(early: dict, results) -> dict:
+    """How far each provisional estimate and the update's own lay from the settled one.
+
+    Per demonstration that had a provisional estimate, the largest over
+    coordinates of ``|mean - settled mean| / settled sd`` for the provisional
+    (importance weights before tempering) and for the update's estimate
+    (after tempering, before the moves): the second is the Monte Carlo
+    noise the first is to be judged against.
+    """
+    from .learner import StepResult
+    prov, upd = [], []
+    for res in results:
+        got = early.get(res.index, ())
+        if not isinstance(res, StepResult) or len(got) < 2 or not got[0].provisional:
+            continue
+        first, second = got[:2]
+        settled = next(iter(res.summaries.values()))
+        sd = np.maximum(settled.std, 1e-12)
+        for r, into in ((first, prov), (second, upd)):
+            m = next(iter(r.summaries.values())).mean
+            into.append(float(np.max(np.abs(m - settled.mean) / sd)))
+    n = sum(isinstance(r, StepResult) for r in results)
+    return {'provisional_deviation': prov, 'updated_deviation': upd, 'updates': n}
 
 
 def _run_jobs(fn, jobs, n_jobs: int, label: str, scheduler: Optional[str] = None):
@@ -532,6 +560,15 @@ def calibration_figures(calib: dict, sbc: dict) -> Dict[str, float]:
            'sbc_uniformity_pvalue': sbc['pvalue'],
            'calib_n_particles': calib['matched']['n_particles'],
            'calib_n_alternatives': calib['matched']['n_alternatives']}
+    prov = [v for r in runs for v in r.get('provisional_deviation', ())]
+    upd = [v for r in runs for v in r.get('updated_deviation', ())]
+    n = sum(r.get('updates', 0) for r in runs)
+    out['calib_provisional_fraction'] = len(prov) / n if n else float('nan')
+    for key, vals in (('provisional', prov), ('updated', upd)):
+        out[f'calib_{key}_deviation_sd_median'] = float(np.median(vals)) if vals \
+            else float('nan')
+        out[f'calib_{key}_deviation_sd_p90'] = float(np.percentile(vals, 90)) if vals \
+            else float('nan')
     if 'mismatched' in calib:
         out['calib_cosine_mean_mismatched'] = calib['mismatched']['cosine_mean']
         out['calib_cosine_p10_mismatched'] = calib['mismatched']['cosine_p10']

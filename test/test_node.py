@@ -5,7 +5,9 @@
 import numpy as np
 import pytest
 import rclpy
+from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.parameter import Parameter
+from rclpy.qos import QoSProfile, ReliabilityPolicy
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from std_srvs.srv import Trigger
@@ -42,8 +44,16 @@ def _teach(ex, client_node, learner_node, teacher, n, names):
 @pytest.mark.parametrize('person', ['less', 'boltzmann'])
 def test_teaching_session_learns_true_weights(person, tmp_path):
     with ros_context() as (ctx, ex):
-        node = _node(ctx, model=person, **SMALL)
+        # every demonstration that tempers publishes its importance-weighted estimate first
+        node = _node(ctx, model=person, provisional_ess=1.0, **SMALL)
         client = rclpy.create_node('test_client', context=ctx)
+        kinds = []
+
+        def on_status(msg):
+            kinds.extend(kv.value for st in msg.status for kv in st.values
+                         if kv.key == 'estimate')
+        client.create_subscription(DiagnosticArray, '/pref_learner/status', on_status,
+                                   QoSProfile(depth=1000, reliability=ReliabilityPolicy.RELIABLE))
         bg = spinning(node, ctx)
         bg.__enter__()
         ex.add_node(client)
@@ -54,6 +64,13 @@ def test_teaching_session_learns_true_weights(person, tmp_path):
         # the estimate goes out twice per demonstration (when weighed in, then after the
         # rejuvenation moves); wait for the second of the last, counted as accepted
         assert spin_until(ex, lambda: node.counters['accepted'] == 8, 30)
+        # the first demonstration from the prior always tempers: a provisional estimate
+        # went out, each followed by the update's own; the last one out is settled
+        assert spin_until(ex, lambda: kinds and kinds[-1] == 'settled', 10)
+        seen = [k for i, k in enumerate(kinds) if i == 0 or kinds[i - 1] != k]
+        assert 'provisional' in seen
+        assert all(seen[i + 1] == 'updated' for i, k in enumerate(seen[:-1])
+                   if k == 'provisional')
         got = {}
         client.create_subscription(Float64MultiArray, '/pref_learner/weights',
                                    lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)

@@ -182,6 +182,48 @@ def test_the_estimate_is_handed_out_before_the_checks_and_the_moves():
     assert not L.posteriors['less'].moves_pending
 
 
+@pytest.mark.parametrize('floor', [1.0, 0.0])
+def test_provisional_estimate_is_the_self_normalised_importance_estimate(floor):
+    # Reference: self-normalised importance sampling (common practice; e.g. Owen, Monte
+    # Carlo theory, methods and examples, ch. 9): weights w_i ~ w_i(before) L_i, the
+    # mean sum w_i theta_i, Kish's ESS 1 / sum w_i^2, worked here with scipy's logsumexp.
+    # A demonstration that tempers (ESS below ess_target N) hands out that estimate first
+    # (floor 1: always then; floor 0: never); learning itself is the same either way.
+    from scipy.special import logsumexp
+    calls = []
+    L = Learner(LearnerConfig(model='less', provisional_ess=floor, **SMALL),
+                on_estimate=calls.append)
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'], TeacherConfig())
+    n = SMALL['n_particles']
+    tempered, t = 0, 10**18
+    for k in range(10):
+        before = L.posteriors['less']
+        res, t = teacher.feed_one(L, k, t)
+        assert [r.index for r in res if hasattr(r, 'summaries')] == [k]
+        got = [c for c in calls if c.index == k]
+        rec = L.posteriors['less'].records[k]
+        ll = before.record_loglik(rec, before.theta, before.beta, before.level)
+        lw = before.log_weights + ll
+        w = np.exp(lw - logsumexp(lw))
+        ess = 1.0 / np.sum(w ** 2)
+        tempers = ess < before.config.ess_target * n
+        tempered += tempers
+        kinds = [c.provisional for c in got]
+        assert kinds == ([True, False] if tempers and floor > 0 else [False])
+        if kinds[0]:
+            s = got[0].summaries['less']
+            m = w @ before.theta
+            np.testing.assert_allclose(s.mean, m / np.linalg.norm(m), rtol=0, atol=1e-12)
+            np.testing.assert_allclose(s.ess, ess, rtol=1e-9)
+            np.testing.assert_array_equal(got[0].posteriors['less'].theta, before.theta)
+    assert 1 <= tempered < 10                               # both cases met
+    ref = Learner(LearnerConfig(model='less', provisional_ess=0.0, **SMALL))
+    teacher.feed_session(ref, 10)
+    np.testing.assert_array_equal(ref.posteriors['less'].theta, L.posteriors['less'].theta)
+    np.testing.assert_array_equal(ref.posteriors['less'].log_weights,
+                                  L.posteriors['less'].log_weights)
+
+
 def test_a_failure_after_the_estimate_leaves_the_learner_as_it_was(monkeypatch):
     # a fault in the demonstration's checks (after the estimate was handed out) rolls the
     # demonstration back entirely: posterior, demonstrations and their diagnostics

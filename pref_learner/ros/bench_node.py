@@ -63,7 +63,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
     try:
         with rclpy.init():
             node = rclpy.create_node('pref_learner_bench')
-            state = {'w': None, 'w_t': 0.0, 'status': {}}
+            state = {'w': None, 'w_t': 0.0, 'status': {}, 'kinds': {}}
 
             def on_w(m):
                 # the node also republishes its cached estimate every second: only a
@@ -76,6 +76,9 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             def on_status(m):
                 for st in m.status:
                     state['status'] = {kv.key: kv.value for kv in st.values}
+                kind = state['status'].get('estimate')
+                if kind in ('provisional', 'updated') and kind not in state['kinds']:
+                    state['kinds'][kind] = time.perf_counter()   # the first of each kind
             node.create_subscription(Float64MultiArray, '/pref_learner/weights', on_w, latched)
             node.create_subscription(DiagnosticArray, '/pref_learner/status', on_status, latched)
             pub = node.create_publisher(JointState, '~/joint_states',
@@ -104,7 +107,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             # -- latency from teaching=false to new weights, 1 kHz samples; the first
             # demonstration is not timed: its samples may meet a subscription that has
             # not yet matched the publisher (then it is refused, never learned)
-            lat = []
+            lat, upd, prov = [], [], []
             n_lat = 5 if quick else 12
             for k in range(n_lat + 1):
                 warm = k == 0
@@ -115,16 +118,24 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 before = n_handled()
                 t0 = time.perf_counter()
                 state['w_t'] = 0.0
+                state['kinds'] = {}
                 teach.publish(Bool(data=False))
                 learned = spin_until(lambda: state['w_t'] > t0, 10 if warm else 30)
                 first = state['w_t'] - t0         # the estimate; the one after its moves follows
                 spin_until(lambda: n_handled() > before, 30)
                 if not warm and learned:
                     lat.append(first)
+                    # the update's own estimate (after tempering), and whether a
+                    # provisional one went first
+                    upd.append(state['kinds'].get('updated', float('nan')) - t0)
+                    prov.append('provisional' in state['kinds'])
             if not lat:
                 raise RuntimeError('the learner node learned none of the timed demonstrations')
             out['node_update_latency_ms_p95'] = float(np.percentile(lat, 95) * 1e3)
             out['node_update_latency_ms_median'] = float(np.median(lat) * 1e3)
+            out['node_updated_latency_ms_p95'] = float(np.nanpercentile(upd, 95) * 1e3)
+            out['node_updated_latency_ms_median'] = float(np.nanmedian(upd) * 1e3)
+            out['node_provisional_fraction'] = float(np.mean(prov))
 
             # -- ingest at 1 kHz while updates run
             dur = 10.0 if quick else 60.0

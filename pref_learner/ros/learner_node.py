@@ -117,6 +117,8 @@ _PARAMS = {
     'pool_levels': ('every option level\'s draws serve every level, weighted by multiple '
                     'importance sampling (smooth alternatives, option_density modes)', None,
                     True),
+    'provisional_ess': ('publish the importance-weighted estimate before tempering when its '
+                        'ESS is at least this (0: never)', (0.0, 1e6), True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
@@ -180,6 +182,9 @@ class LearnerNode(Node):
         self._pending_config = None
         self._summaries = {}
         self._provisional = False    # an estimate is out for a demonstration still in progress
+        # what the last published estimate is: provisional (importance weights before
+        # tempering), updated (the update's, before the moves) or settled (after them)
+        self._estimate_kind = 'settled'
         self._status = None
         self._status_t = 0.0
         self._status_dirty = False
@@ -646,9 +651,14 @@ class LearnerNode(Node):
         self.get_logger().info('segmentation settings updated')
 
     def _on_estimate(self, r: StepResult):
-        """Publish as soon as the demonstration is weighed in (before rejuvenation)."""
+        """Publish as soon as the demonstration is weighed in (before rejuvenation).
+
+        A provisional estimate (importance weights before tempering) is published
+        from the posteriors it carries; the tempered one follows.
+        """
         self._latency = r.latency_s
-        self._publish_estimates()
+        self._estimate_kind = 'provisional' if r.provisional else 'updated'
+        self._publish_estimates(r.posteriors if r.provisional else None)
         self._provisional = True          # until the demonstration's result comes back
 
     def _settle(self):
@@ -659,6 +669,7 @@ class LearnerNode(Node):
         """
         if self._provisional:
             self._provisional = False
+            self._estimate_kind = 'settled'
             self._publish_estimates()
 
     def _results(self, results):
@@ -667,6 +678,7 @@ class LearnerNode(Node):
             if isinstance(r, StepResult):
                 learned = True
                 self._provisional = False
+                self._estimate_kind = 'settled'
                 self._latency = r.latency_s
                 self.counters['accepted'] += 1
                 self._publish_estimates()
@@ -777,10 +789,11 @@ class LearnerNode(Node):
         return arr
 
     # ------------------------------------------------------------ publishing
-    def _publish_estimates(self):
+    def _publish_estimates(self, posteriors=None):
+        """Publish the learner's estimates (or ``posteriors``: a provisional estimate's)."""
         L = self.learner
         msgs, sums = {}, {}
-        for m, post in L.posteriors.items():
+        for m, post in (posteriors or L.posteriors).items():
             sums[m] = post.summary()
             for topic, (data, dims) in estimate_arrays(sums[m], post).items():
                 msgs[(m, topic)] = _array_msg(data, dims)
@@ -816,6 +829,7 @@ class LearnerNode(Node):
             ('accepted', str(L.n_demonstrations)), ('rejected', str(len(L.rejections))),
             ('last_rejection', last_rej),
             ('last_update_latency_ms', f'{self._latency * 1e3:.1f}'),
+            ('estimate', self._estimate_kind),
             ('recording', str(L.recorder.recording).lower()),
             ('samples', str(rc.get('samples', 0))),
             ('storage_error', err),
