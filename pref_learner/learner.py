@@ -236,6 +236,9 @@ class Learner:
         self.config = config
         self.on_estimate = on_estimate
         self.task = task
+        # helper processes that finish part of each choice set (ChoiceHelpers; the node
+        # starts them): the same values either way
+        self.helpers = None
         self._record_stored = False
         self.recorder = Recorder(self.robot.joint_names, config.segment_config())
         self.hash = learning_hash(config, task.record)
@@ -563,7 +566,8 @@ class Learner:
         the posterior as it stands before this demonstration.
         """
         rng = np.random.default_rng(np.random.SeedSequence([self.config.seed, index + 1]))
-        return self.task.choice_set(q_demo, rng, weights=self._weight_source)
+        return self.task.choice_set(q_demo, rng, weights=self._weight_source,
+                                    helpers=self.helpers)
 
     def path_deviation(self, allq: np.ndarray) -> np.ndarray:
         """Each row's deviation from its straight line (:meth:`TaskModel.path_deviation`)."""

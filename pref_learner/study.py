@@ -64,7 +64,7 @@ WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THRE
 #: settings of the learner node that mean nothing offline (ignored, with a note)
 NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feature_modules',
              'use_sim_time', 'qos_overrides', 'start_type_description_service',
-             'robot_description_topic', 'robot_description_timeout')
+             'robot_description_topic', 'robot_description_timeout', 'choice_jobs')
 #: the parameters file's ``study:`` block and its defaults
 STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True}
 

@@ -37,6 +37,11 @@ from .robot import RobotModel, default_urdf_path
 #: version of the JSON layout of a task record
 RECORD_FORMAT = 1
 
+#: rows of a choice set retimed, conditioned and featurised together (the demonstration's
+#: row and the first alternatives make the first piece); the pieces are the same whoever
+#: finishes them (:class:`~pref_learner.helpers.ChoiceHelpers`), so the values are too
+CHOICE_CHUNK = 256
+
 #: the settings of a LearnerConfig that belong to the task model (same names)
 TASK_SETTINGS = ('n_waypoints', 'resample', 'lowpass_hz', 'smooth', 'clamp',
                  'n_alternatives', 'mix_smooth', 'mix_near_optimal', 'mix_perturb',
@@ -377,14 +382,36 @@ class TaskModel:
             return path_modes(allq, self.sampler.span, n_modes)
         return path_deviation(allq, self.sampler.span)
 
+    def finish_rows(self, raw: np.ndarray, demo: Optional[np.ndarray] = None):
+        """Retime raw alternatives ``(k, T, n)``, condition them and featurise them.
+
+        ``demo (T, n)``: a prepared demonstration conditioned with them, as row
+        0. Returns the conditioned rows and their scaled features.
+        """
+        alts = self.retime(raw)
+        q = self.condition(alts if demo is None else np.concatenate([demo[None], alts]))
+        return q, self.features(q)
+
     def choice_set(self, q_demo: np.ndarray, rng: np.random.Generator,
-                   weights: Optional[Callable] = None):
+                   weights: Optional[Callable] = None, helpers=None):
         """Build a demonstration's conditioned choice set and its scaled features.
 
         Returns ``(1 + M, T, n)`` trajectories, ``(1 + M, d)`` features and
-        ``(1 + M,)`` option levels (``-1`` on row 0, the demonstration).
+        ``(1 + M,)`` option levels (``-1`` on row 0, the demonstration). The
+        rows are finished in pieces of :data:`CHOICE_CHUNK`; ``helpers`` (a
+        running :class:`~pref_learner.helpers.ChoiceHelpers`) take some of
+        them, with the same values.
         """
-        alts, groups = self.task_alternatives(q_demo[0], q_demo[-1], rng, demo=q_demo,
-                                              weights=weights)
-        allq = self.condition(np.concatenate([q_demo[None], alts]))
-        return allq, self.features(allq), np.concatenate([[-1], groups])
+        raw, groups = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo,
+                                          weights=weights)
+        pieces = np.split(raw, range(CHOICE_CHUNK - 1, len(raw), CHOICE_CHUNK))
+        share = helpers.processes + 1 if helpers is not None and helpers.running else 0
+        futures = {i: helpers.submit(p) for i, p in enumerate(pieces)
+                   if share and i % share}
+        done = {i: self.finish_rows(p, q_demo if i == 0 else None)
+                for i, p in enumerate(pieces) if i not in futures}
+        for i, f in futures.items():
+            done[i] = helpers.result(f, lambda p=pieces[i]: self.finish_rows(p))
+        allq = np.concatenate([done[i][0] for i in range(len(pieces))])
+        feats = np.concatenate([done[i][1] for i in range(len(pieces))])
+        return allq, feats, np.concatenate([[-1], groups])

@@ -240,3 +240,31 @@ def test_random_configurations_keep_a_margin_on_short_axes(arm6_record):
     assert np.all(q[:, 1:5] >= lo + 0.2) and np.all(q[:, 1:5] <= hi - 0.2)
     assert np.all(np.abs(q[:, 5]) <= np.pi)                 # the continuous wrist
     assert len(task.tasks()) == 4 and all(t[0].startswith('random_') for t in task.tasks())
+
+
+def test_choice_sets_are_the_same_with_helper_processes_and_after_one_dies():
+    # The pieces of a choice set are the same whoever finishes them; a helper process that
+    # dies is stopped, its pieces are finished in the caller's thread, nothing is lost.
+    import os
+    import signal
+    from pref_learner.helpers import ChoiceHelpers
+    from pref_learner.task import CHOICE_CHUNK
+    L = Learner(LearnerConfig(n_alternatives=2 * CHOICE_CHUNK + 40))   # three pieces
+    task = L.task
+    _, start, goal = task.tasks()[0]
+    q = task.retime(task.sampler.straight(start, goal)[None])[0]
+    alone = [task.choice_set(q, np.random.default_rng(k)) for k in range(2)]
+    helpers = ChoiceHelpers(task.record, 2).start()
+    try:
+        shared = task.choice_set(q, np.random.default_rng(0), helpers=helpers)
+        for a, b in zip(alone[0], shared):
+            np.testing.assert_array_equal(a, b)
+        assert shared[0].shape[0] == shared[1].shape[0] == 1 + 2 * CHOICE_CHUNK + 40
+        for pid in list(helpers._pool._processes):
+            os.kill(pid, signal.SIGKILL)
+        after = task.choice_set(q, np.random.default_rng(1), helpers=helpers)
+        for a, b in zip(alone[1], after):
+            np.testing.assert_array_equal(a, b)
+        assert not helpers.running and 'BrokenProcessPool' in helpers.error
+    finally:
+        helpers.close()

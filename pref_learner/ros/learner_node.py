@@ -49,6 +49,7 @@ from visualization_msgs.msg import Marker, MarkerArray
 from ..bags import estimate_arrays
 from ..choice import MODEL_CHOICES
 from ..guidance import TaskGuide, unknown_lines
+from ..helpers import ChoiceHelpers
 from ..learner import Learner, LearnerConfig, StepResult
 from ..report import estimate_status_values
 from .common import QueueWorker
@@ -105,6 +106,9 @@ _PARAMS = {
                     True),
     'planner_jobs': ('processes for planner alternatives (1: in the node process)', (1, 64),
                      True),
+    'choice_jobs': ('processes that finish each demonstration\'s choice set (retiming, '
+                    'kinematics, features): the worker thread and choice_jobs - 1 helpers',
+                    (1, 64), True),
     'clamp': ('clamp configurations outside the joint limits instead of refusing them', None,
               True),
     'spreads': ('option-spread levels, fractions of each joint range (inferred among them)',
@@ -160,6 +164,15 @@ class StatusSnapshot:
     storage_error: str
 
 
+def _helpers_state(helpers) -> str:
+    """Say how many choice-set helper processes run, or why they stopped."""
+    if helpers is None:
+        return 'none'
+    if helpers.running:
+        return f'{helpers.processes} running'
+    return f'stopped: {helpers.error}' if helpers.error else 'stopped'
+
+
 def _array_msg(data, dims) -> Float64MultiArray:
     m = Float64MultiArray()
     m.layout.dim = [MultiArrayDimension(label=lab, size=int(s), stride=int(st))
@@ -185,6 +198,7 @@ class LearnerNode(Node):
         # what the last published estimate is: provisional (importance weights before
         # tempering), updated (the update's, before the moves) or settled (after them)
         self._estimate_kind = 'settled'
+        self._helpers_warned = False
         self._status = None
         self._status_t = 0.0
         self._status_dirty = False
@@ -197,6 +211,7 @@ class LearnerNode(Node):
         self._declare_parameters()
         self.config = self._config_from_parameters()
         self.learner = Learner(self.config, on_estimate=self._on_estimate)
+        self._start_helpers()
         self._guide = TaskGuide(self.learner)
         self._scenario_tasks = []
         for name, start, goal in self.learner.tasks():
@@ -250,7 +265,8 @@ class LearnerNode(Node):
         self.add_post_set_parameters_callback(self._after_set)
         defaults = LearnerConfig()
         extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0,
-                 'robot_description_topic': '', 'robot_description_timeout': 30.0}
+                 'robot_description_topic': '', 'robot_description_timeout': 30.0,
+                 'choice_jobs': 2}
         for name, (desc, rng, ro) in _PARAMS.items():
             default = extra[name] if name in extra else getattr(defaults, name)
             if name == 'joint_names':
@@ -690,6 +706,11 @@ class LearnerNode(Node):
             else:
                 self.counters['rejected'] += 1
                 self.last_warning = f'{r.reason}: {r.detail}'
+        helpers = self.learner.helpers
+        if helpers is not None and helpers.error and not self._helpers_warned:
+            self._helpers_warned = True
+            self.get_logger().warning(f'choice-set helper processes stopped ({helpers.error}); '
+                                      'the worker thread builds every choice set alone')
         if learned:              # after the estimates are out: they never wait for this
             self._propose()
 
@@ -830,6 +851,7 @@ class LearnerNode(Node):
             ('last_rejection', last_rej),
             ('last_update_latency_ms', f'{self._latency * 1e3:.1f}'),
             ('estimate', self._estimate_kind),
+            ('choice_helpers', _helpers_state(L.helpers)),
             ('recording', str(L.recorder.recording).lower()),
             ('samples', str(rc.get('samples', 0))),
             ('storage_error', err),
@@ -919,8 +941,25 @@ class LearnerNode(Node):
             self._flush_queued = True             # retry the held-back writes
             self._worker.put_control(('flush',))
 
+    def _start_helpers(self):
+        """Start the choice set's helper processes (``choice_jobs`` - 1; none below 2)."""
+        n = int(self.get_parameter('choice_jobs').value) - 1
+        if n < 1:
+            return
+        helpers = ChoiceHelpers(self.learner.record, n)
+        try:
+            helpers.start()
+        except Exception as exc:  # noqa: BLE001 -- the node learns without them
+            helpers.error = f'{type(exc).__name__}: {exc}'
+            self.get_logger().warning(f'choice-set helper processes did not start '
+                                      f'({helpers.error}); the worker thread builds every '
+                                      'choice set alone')
+        self.learner.helpers = helpers
+
     def destroy_node(self):
         self._closing.set()
+        if getattr(self, 'learner', None) is not None and self.learner.helpers is not None:
+            self.learner.helpers.close()
         if getattr(self, '_srv_thread', None) is not None:
             self._srv_thread.join(timeout=5.0)
             self._srv_exec.shutdown()
