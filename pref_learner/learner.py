@@ -637,7 +637,8 @@ class Learner:
                 publish(r)
         self.on_estimate = keep
         try:
-            res = self._learn(demo, persist=True)
+            # a provisional estimate only where somebody takes estimates
+            res = self._learn(demo, persist=True, provisional=publish is not None)
             if not store.pending:              # everything, the posterior too, is on disk
                 store.posterior_dirty, store.error = False, ''
             return res
@@ -654,7 +655,8 @@ class Learner:
         finally:
             self.on_estimate = publish
 
-    def _learn(self, demo: Demonstration, persist: bool) -> StepResult:
+    def _learn(self, demo: Demonstration, persist: bool,
+               provisional: bool = True) -> StepResult:
         t0 = time.perf_counter()
         index = len(self._demos)
         q = prepare(demo, self.prepare_config, self.robot)
@@ -668,7 +670,8 @@ class Learner:
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
-        if (self.on_estimate is not None and persist and self._provisional(before, quick)):
+        if (self.on_estimate is not None and persist and provisional
+                and self._publish_provisional(before, quick)):
             self.on_estimate(StepResult(index, {m: p.summary() for m, p in quick.items()}, {},
                                         time.perf_counter() - t0, {}, paths, True, quick))
         for k, (m, post) in enumerate(self.posteriors.items()):
@@ -700,7 +703,7 @@ class Learner:
             self.store.append_history(self._history_entry(res))
         return res
 
-    def _provisional(self, before, quick) -> bool:
+    def _publish_provisional(self, before, quick) -> bool:
         """Whether to publish the one-step estimates ``quick`` before tempering.
 
         Only where some model will temper (its one-step ESS is below its

@@ -1474,8 +1474,9 @@ class ParticlePosterior:
         The same particles with weights times the new likelihood ``ll``
         (:meth:`weigh`): a self-normalised importance-sampling estimate of
         the new posterior, whose accuracy its ESS states. :meth:`update`
-        returns exactly this when the ESS stays at least ``ess_target`` x N;
-        below that it tempers and moves the particles instead.
+        returns this when its first step takes the whole likelihood without
+        resampling (an ESS of at least ``ess_target`` and ``ess_min_ratio``
+        x N); below ``ess_target`` x N it tempers and moves the particles.
         """
         return replace(self, log_weights=log_normalise(self.log_weights + ll),
                        log_lik=self.log_lik + ll, records=self.records + (record,),

@@ -40,7 +40,7 @@ RECORD_FORMAT = 1
 #: rows of a choice set retimed, conditioned and featurised together (the demonstration's
 #: row and the first alternatives make the first piece); the pieces are the same whoever
 #: finishes them (:class:`~pref_learner.helpers.ChoiceHelpers`), so the values are too
-CHOICE_CHUNK = 256
+CHOICE_CHUNK = 128
 
 #: the settings of a LearnerConfig that belong to the task model (same names)
 TASK_SETTINGS = ('n_waypoints', 'resample', 'lowpass_hz', 'smooth', 'clamp',

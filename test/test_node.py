@@ -65,12 +65,10 @@ def test_teaching_session_learns_true_weights(person, tmp_path):
         # rejuvenation moves); wait for the second of the last, counted as accepted
         assert spin_until(ex, lambda: node.counters['accepted'] == 8, 30)
         # the first demonstration from the prior always tempers: a provisional estimate
-        # went out, each followed by the update's own; the last one out is settled
+        # went out, and the update's own; the last one out is settled (the order within a
+        # demonstration is the learner's test: a latched status may be replaced unseen)
         assert spin_until(ex, lambda: kinds and kinds[-1] == 'settled', 10)
-        seen = [k for i, k in enumerate(kinds) if i == 0 or kinds[i - 1] != k]
-        assert 'provisional' in seen
-        assert all(seen[i + 1] == 'updated' for i, k in enumerate(seen[:-1])
-                   if k == 'provisional')
+        assert {'provisional', 'updated'} <= set(kinds)
         got = {}
         client.create_subscription(Float64MultiArray, '/pref_learner/weights',
                                    lambda m: got.__setitem__('w', np.array(m.data)), LATCHED)
@@ -150,10 +148,13 @@ def test_bad_input_keeps_node_running_and_posterior_untouched():
         assert node.learner.rejections[0]['reason'] == 'too_short'
         np.testing.assert_array_equal(node.learner.posteriors['less'].theta, before)
         assert node.learner.n_demonstrations == 0
-        # status reports the counts
-        st = node._status_msg().status[0]
-        vals = {kv.key: kv.value for kv in st.values}
-        assert vals['rejected'] == '1' and vals['last_rejection'].startswith('too_short')
+        # status reports the counts (its snapshot is rebuilt at most every STATUS_MIN_S)
+
+        def status():
+            return {kv.key: kv.value for kv in node._status_msg().status[0].values}
+        assert spin_until(ex, lambda: status()['rejected'] == '1', 5), status()
+        vals = status()
+        assert vals['last_rejection'].startswith('too_short')
         assert int(vals['samples_invalid']) >= 1
         # stamps far from now are refused once max_stamp_skew is set
         assert node.set_parameters([Parameter('max_stamp_skew', value=10.0)])[0].successful

@@ -6,6 +6,7 @@ import os
 import signal
 import subprocess
 import sys
+import time
 
 import numpy as np
 import pytest
@@ -84,6 +85,21 @@ def _saved_records(path) -> int:
         return -1
 
 
+def _children(pid: int):
+    """Return the live processes whose parent is ``pid`` (from /proc)."""
+    out = []
+    for d in os.listdir('/proc'):
+        if d.isdigit():
+            try:
+                with open(f'/proc/{d}/stat') as f:
+                    ppid = int(f.read().rsplit(')', 1)[1].split()[1])
+            except (OSError, IndexError, ValueError):
+                continue
+            if ppid == pid:
+                out.append(int(d))
+    return out
+
+
 def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
     state = tmp_path / 'state'
     env = dict(os.environ)
@@ -114,9 +130,16 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
             teach.publish(Bool(data=True))
             half = len(st) // 2
             publish_paced(pub, st[:half], q[:half], names, 1000.0)
+            helpers = _children(proc.pid)          # the choice set's helper processes
+            assert helpers
             proc.send_signal(signal.SIGKILL)
             proc.wait(timeout=10)
             node.destroy_node()
+        # a killed node takes its helpers along
+        end = time.monotonic() + 10
+        while time.monotonic() < end and any(os.path.exists(f'/proc/{p}') for p in helpers):
+            time.sleep(0.1)
+        assert not any(os.path.exists(f'/proc/{p}') for p in helpers)
         saved = ParticlePosterior.load(state / 'posterior_less')
         assert len(saved.records) == 3
         assert len(list((state / 'demos').glob('demo_*.npz'))) == 3

@@ -242,28 +242,40 @@ def test_random_configurations_keep_a_margin_on_short_axes(arm6_record):
     assert len(task.tasks()) == 4 and all(t[0].startswith('random_') for t in task.tasks())
 
 
-def test_choice_sets_are_the_same_with_helper_processes_and_after_one_dies():
-    # The pieces of a choice set are the same whoever finishes them; a helper process that
-    # dies is stopped, its pieces are finished in the caller's thread, nothing is lost.
+def test_choice_sets_are_the_same_in_pieces_with_helper_processes_and_after_one_dies():
+    # Reference: the whole set finished at once (retimed, conditioned with the
+    # demonstration's row, featurised), as before the pieces. The pieces are the same
+    # whoever finishes them; a helper process that dies is stopped, its pieces are
+    # finished in the caller's thread, nothing is lost.
     import os
     import signal
     from pref_learner.helpers import ChoiceHelpers
     from pref_learner.task import CHOICE_CHUNK
-    L = Learner(LearnerConfig(n_alternatives=2 * CHOICE_CHUNK + 40))   # three pieces
-    task = L.task
-    _, start, goal = task.tasks()[0]
-    q = task.retime(task.sampler.straight(start, goal)[None])[0]
-    alone = [task.choice_set(q, np.random.default_rng(k)) for k in range(2)]
+    base = Learner(LearnerConfig(n_alternatives=8)).task
+    _, start, goal = base.tasks()[0]
+    q = base.retime(base.sampler.straight(start, goal)[None])[0]
+    sizes = (100, 2 * CHOICE_CHUNK - 1, 2 * CHOICE_CHUNK + 40)   # one piece, exact, three
+    tasks = [TaskModel.from_record(replace(base.record, n_alternatives=m)) for m in sizes]
+    alone = []
+    for task, m in zip(tasks, sizes):
+        got = task.choice_set(q, np.random.default_rng(m))
+        raw, groups = task.sampler.sample(q[0], q[-1], np.random.default_rng(m), demo=q)
+        whole = task.condition(np.concatenate([q[None], task.retime(raw)]))
+        np.testing.assert_allclose(got[0], whole, rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(got[1], task.features(whole), rtol=1e-12, atol=1e-12)
+        np.testing.assert_array_equal(got[2], np.concatenate([[-1], groups]))
+        assert got[0].shape[0] == got[1].shape[0] == m + 1
+        alone.append(got)
+    task = tasks[-1]
     helpers = ChoiceHelpers(task.record, 2).start()
     try:
-        shared = task.choice_set(q, np.random.default_rng(0), helpers=helpers)
-        for a, b in zip(alone[0], shared):
+        for a, b in zip(alone[-1], task.choice_set(q, np.random.default_rng(sizes[-1]),
+                                                   helpers=helpers)):
             np.testing.assert_array_equal(a, b)
-        assert shared[0].shape[0] == shared[1].shape[0] == 1 + 2 * CHOICE_CHUNK + 40
         for pid in list(helpers._pool._processes):
             os.kill(pid, signal.SIGKILL)
-        after = task.choice_set(q, np.random.default_rng(1), helpers=helpers)
-        for a, b in zip(alone[1], after):
+        after = task.choice_set(q, np.random.default_rng(sizes[-1]), helpers=helpers)
+        for a, b in zip(alone[-1], after):
             np.testing.assert_array_equal(a, b)
         assert not helpers.running and 'BrokenProcessPool' in helpers.error
     finally:

@@ -104,7 +104,10 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
                 st = state['status']
                 return int(st.get('node_accepted', 0)) + int(st.get('node_rejected', 0))
 
-            # -- latency from teaching=false to new weights, 1 kHz samples; the first
+            # -- latency from teaching=false to new weights, 1 kHz samples: the first new
+            # weights (``node_update_latency``: the provisional estimate where there is
+            # one, else the update's) and the update's own (``node_updated_latency``, timed
+            # by the status that says so, published right after its weights); the first
             # demonstration is not timed: its samples may meet a subscription that has
             # not yet matched the publisher (then it is refused, never learned)
             lat, upd, prov = [], [], []

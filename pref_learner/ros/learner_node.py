@@ -50,6 +50,7 @@ from ..bags import estimate_arrays
 from ..choice import MODEL_CHOICES
 from ..guidance import TaskGuide, unknown_lines
 from ..helpers import ChoiceHelpers
+from ..task import CHOICE_CHUNK
 from ..learner import Learner, LearnerConfig, StepResult
 from ..report import estimate_status_values
 from .common import QueueWorker
@@ -194,9 +195,9 @@ class LearnerNode(Node):
         self.last_warning = ''
         self._pending_config = None
         self._summaries = {}
-        self._provisional = False    # an estimate is out for a demonstration still in progress
         # what the last published estimate is: provisional (importance weights before
-        # tempering), updated (the update's, before the moves) or settled (after them)
+        # tempering), updated (the update's, before the moves) or settled (after them, or
+        # the learner's own); anything but settled is for a demonstration in progress
         self._estimate_kind = 'settled'
         self._helpers_warned = False
         self._status = None
@@ -674,8 +675,7 @@ class LearnerNode(Node):
         """
         self._latency = r.latency_s
         self._estimate_kind = 'provisional' if r.provisional else 'updated'
-        self._publish_estimates(r.posteriors if r.provisional else None)
-        self._provisional = True          # until the demonstration's result comes back
+        self._publish_estimates(r.posteriors if r.provisional else None, r.summaries)
 
     def _settle(self):
         """Replace an estimate whose demonstration was rolled back (after each handling).
@@ -683,8 +683,7 @@ class LearnerNode(Node):
         An estimate published for a demonstration that never came back as a
         result went with it; publish the estimate the learner holds.
         """
-        if self._provisional:
-            self._provisional = False
+        if self._estimate_kind != 'settled':
             self._estimate_kind = 'settled'
             self._publish_estimates()
 
@@ -693,11 +692,10 @@ class LearnerNode(Node):
         for r in results:
             if isinstance(r, StepResult):
                 learned = True
-                self._provisional = False
                 self._estimate_kind = 'settled'
                 self._latency = r.latency_s
                 self.counters['accepted'] += 1
-                self._publish_estimates()
+                self._publish_estimates(summaries=r.summaries)
                 self._publish_markers(r)
                 s = next(iter(r.summaries.values()))
                 self.get_logger().info(
@@ -810,12 +808,15 @@ class LearnerNode(Node):
         return arr
 
     # ------------------------------------------------------------ publishing
-    def _publish_estimates(self, posteriors=None):
-        """Publish the learner's estimates (or ``posteriors``: a provisional estimate's)."""
+    def _publish_estimates(self, posteriors=None, summaries=None):
+        """Publish the learner's estimates (or ``posteriors``: a provisional estimate's).
+
+        ``summaries``: theirs, when already made (a step result's).
+        """
         L = self.learner
         msgs, sums = {}, {}
         for m, post in (posteriors or L.posteriors).items():
-            sums[m] = post.summary()
+            sums[m] = summaries[m] if summaries is not None else post.summary()
             for topic, (data, dims) in estimate_arrays(sums[m], post).items():
                 msgs[(m, topic)] = _array_msg(data, dims)
         with self._lock:
@@ -944,13 +945,14 @@ class LearnerNode(Node):
     def _start_helpers(self):
         """Start the choice set's helper processes (``choice_jobs`` - 1; none below 2)."""
         n = int(self.get_parameter('choice_jobs').value) - 1
-        if n < 1:
+        if n < 1 or self.config.n_alternatives < CHOICE_CHUNK:    # one piece: nothing to share
             return
         helpers = ChoiceHelpers(self.learner.record, n)
         try:
             helpers.start()
         except Exception as exc:  # noqa: BLE001 -- the node learns without them
             helpers.error = f'{type(exc).__name__}: {exc}'
+            self._helpers_warned = True
             self.get_logger().warning(f'choice-set helper processes did not start '
                                       f'({helpers.error}); the worker thread builds every '
                                       'choice set alone')
@@ -958,8 +960,6 @@ class LearnerNode(Node):
 
     def destroy_node(self):
         self._closing.set()
-        if getattr(self, 'learner', None) is not None and self.learner.helpers is not None:
-            self.learner.helpers.close()
         if getattr(self, '_srv_thread', None) is not None:
             self._srv_thread.join(timeout=5.0)
             self._srv_exec.shutdown()
@@ -967,6 +967,8 @@ class LearnerNode(Node):
             self._srv_thread = None
         if getattr(self, '_worker', None) is not None:
             self._worker.stop()
+        if getattr(self, 'learner', None) is not None and self.learner.helpers is not None:
+            self.learner.helpers.close()       # after the worker: it may be using them
         if getattr(self, '_bag', None) is not None:
             self._bag.close()
             self._bag = None
