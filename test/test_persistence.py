@@ -73,7 +73,8 @@ def test_configuration_change_rebuilds_by_replay(tmp_path):
 def _start_node(state, env):
     cmd = [sys.executable, '-m', 'pref_learner.ros.learner_node', '--ros-args',
            '-p', f'state_dir:={state}', '-p', f'n_particles:={SMALL["n_particles"]}',
-           '-p', f'n_alternatives:={SMALL["n_alternatives"]}', '--log-level', 'warn']
+           '-p', f'n_alternatives:={SMALL["n_alternatives"]}', '-p', 'choice_jobs:=2',
+           '--log-level', 'warn']
     return subprocess.Popen(cmd, env=env)
 
 

@@ -267,7 +267,7 @@ class LearnerNode(Node):
         defaults = LearnerConfig()
         extra = {'record_bag': '', 'publish_period': 1.0, 'max_stamp_skew': 0.0,
                  'robot_description_topic': '', 'robot_description_timeout': 30.0,
-                 'choice_jobs': 2}
+                 'choice_jobs': 1}
         for name, (desc, rng, ro) in _PARAMS.items():
             default = extra[name] if name in extra else getattr(defaults, name)
             if name == 'joint_names':
