@@ -576,17 +576,17 @@ class Learner:
                                         else N_OPTION_MODES)
 
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
-                          demo: Optional[np.ndarray] = None, m: Optional[int] = None):
-        """Draw the alternatives a demonstration from ``start`` to ``goal`` is compared with.
+                          m: Optional[int] = None):
+        """Draw and finish the alternatives a demonstration from ``start`` to ``goal`` meets.
 
-        Returns retimed (not yet conditioned) trajectories ``(M, T, n)`` and
-        their option levels ``(M,)``: the one construction of every choice
-        set (:meth:`choice_set`) and of the sets that score a task before it
-        is demonstrated (:mod:`pref_learner.guidance`, ``demo=None``); ``m``
-        overrides the number of alternatives.
+        The sets that score a task before it is demonstrated
+        (:mod:`pref_learner.guidance`), built as every choice set is
+        (:meth:`TaskModel.task_alternatives`): conditioned trajectories
+        ``(M, T, n)``, scaled features ``(M, d)``, option levels ``(M,)``;
+        ``m`` overrides the number of alternatives.
         """
-        return self.task.task_alternatives(start, goal, rng, demo=demo, m=m,
-                                           weights=self._weight_source)
+        return self.task.task_alternatives(start, goal, rng, m=m, weights=self._weight_source,
+                                           helpers=self.helpers)
 
     def process(self, demo: Demonstration) -> StepResult:
         """Learn from one accepted demonstration (stored first, then the posterior).

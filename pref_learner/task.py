@@ -356,16 +356,19 @@ class TaskModel:
 
     # ------------------------------------------------------------ choice sets
     def task_alternatives(self, start: np.ndarray, goal: np.ndarray, rng: np.random.Generator,
-                          demo: Optional[np.ndarray] = None, m: Optional[int] = None,
-                          weights: Optional[Callable] = None):
-        """Draw the alternatives a demonstration from ``start`` to ``goal`` is compared with.
+                          m: Optional[int] = None, weights: Optional[Callable] = None,
+                          helpers=None):
+        """Draw and finish the alternatives a demonstration from ``start`` to ``goal`` meets.
 
-        Returns retimed (not yet conditioned) trajectories ``(M, T, n)`` and
-        their option levels ``(M,)``. ``weights(k, rng) -> (k, d)``: where
+        A choice set without its demonstration (:meth:`choice_set`, the same
+        draws and pieces): conditioned trajectories ``(M, T, n)``, their scaled
+        features ``(M, d)`` and option levels ``(M,)``. ``m`` overrides the
+        number of alternatives; ``weights(k, rng) -> (k, d)``: where
         near-optimal draws take their weights (the session's posterior).
         """
-        alts, groups = self.sampler.sample(start, goal, rng, demo=demo, m=m, weights=weights)
-        return self.retime(alts), groups
+        raw, groups = self.sampler.sample(start, goal, rng, m=m, weights=weights)
+        q, feats = self._finish_pieces(raw, None, helpers)
+        return q, feats, groups
 
     def path_deviation(self, allq: np.ndarray, n_modes: int = N_OPTION_MODES) -> np.ndarray:
         """Each row's deviation from its straight line, as the option density needs it.
@@ -404,14 +407,22 @@ class TaskModel:
         """
         raw, groups = self.sampler.sample(q_demo[0], q_demo[-1], rng, demo=q_demo,
                                           weights=weights)
+        allq, feats = self._finish_pieces(raw, q_demo, helpers)
+        return allq, feats, np.concatenate([[-1], groups])
+
+    def _finish_pieces(self, raw: np.ndarray, demo: Optional[np.ndarray], helpers):
+        """:meth:`finish_rows` over the pieces of :data:`CHOICE_CHUNK` rows (``demo`` first).
+
+        ``helpers`` (running :class:`~pref_learner.helpers.ChoiceHelpers`)
+        take the pieces whose index is not a multiple of their count + 1.
+        """
         pieces = np.split(raw, range(CHOICE_CHUNK - 1, len(raw), CHOICE_CHUNK))
         share = helpers.processes + 1 if helpers is not None and helpers.running else 0
         futures = {i: helpers.submit(p) for i, p in enumerate(pieces)
                    if share and i % share}
-        done = {i: self.finish_rows(p, q_demo if i == 0 else None)
+        done = {i: self.finish_rows(p, demo if i == 0 else None)
                 for i, p in enumerate(pieces) if i not in futures}
         for i, f in futures.items():
             done[i] = helpers.result(f, lambda p=pieces[i]: self.finish_rows(p))
-        allq = np.concatenate([done[i][0] for i in range(len(pieces))])
-        feats = np.concatenate([done[i][1] for i in range(len(pieces))])
-        return allq, feats, np.concatenate([[-1], groups])
+        return (np.concatenate([done[i][0] for i in range(len(pieces))]),
+                np.concatenate([done[i][1] for i in range(len(pieces))]))
