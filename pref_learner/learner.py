@@ -662,18 +662,19 @@ class Learner:
         q = prepare(demo, self.prepare_config, self.robot)
         allq, feats, groups = self.choice_set(q, index)
         dev = self.path_deviation(allq)
-        new, infos, rngs, recs, lls, quick = {}, {}, {}, {}, {}, {}
+        new, infos, rngs, recs, lls = {}, {}, {}, {}, {}
         before = dict(self.posteriors)
         for m, post in self.posteriors.items():
             recs[m], lls[m] = post.weigh(post.prepare(feats, 0, groups, dev))
-            quick[m] = post.reweighted(recs[m], lls[m])
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
-        if (self.on_estimate is not None and persist and provisional
-                and self._publish_provisional(before, quick)):
-            self.on_estimate(StepResult(index, {m: p.summary() for m, p in quick.items()}, {},
-                                        time.perf_counter() - t0, {}, paths, True, quick))
+        if self.on_estimate is not None and persist and provisional:
+            quick = self._provisional_posteriors(before, recs, lls)
+            if quick is not None:
+                self.on_estimate(StepResult(index, {m: p.summary() for m, p in quick.items()},
+                                            {}, time.perf_counter() - t0, {}, paths, True,
+                                            quick))
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
@@ -703,8 +704,8 @@ class Learner:
             self.store.append_history(self._history_entry(res))
         return res
 
-    def _publish_provisional(self, before, quick) -> bool:
-        """Whether to publish the one-step estimates ``quick`` before tempering.
+    def _provisional_posteriors(self, before, recs, lls):
+        """Return the one-step posteriors to publish before tempering, or None.
 
         Only where some model will temper (its one-step ESS is below its
         ``ess_target`` x N; otherwise the update is that estimate) and every
@@ -712,11 +713,14 @@ class Learner:
         """
         floor = self.config.provisional_ess
         if floor <= 0:
-            return False
+            return None
+        quick = {m: p.reweighted(recs[m], lls[m]) for m, p in before.items()}
         ess = {m: q.ess for m, q in quick.items()}
-        return (min(ess.values()) >= floor
+        if (min(ess.values()) >= floor
                 and any(ess[m] < p.config.ess_target * p.n_particles
-                        for m, p in before.items()))
+                        for m, p in before.items())):
+            return quick
+        return None
 
     def _history_entry(self, res: StepResult) -> dict:
         return {'index': res.index, 'latency_s': res.latency_s, 'diagnostics': res.diagnostics,
