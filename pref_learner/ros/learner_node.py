@@ -704,11 +704,7 @@ class LearnerNode(Node):
             else:
                 self.counters['rejected'] += 1
                 self.last_warning = f'{r.reason}: {r.detail}'
-        helpers = self.learner.helpers
-        if helpers is not None and helpers.error and not self._helpers_warned:
-            self._helpers_warned = True
-            self.get_logger().warning(f'choice-set helper processes stopped ({helpers.error}); '
-                                      'the worker thread builds every choice set alone')
+        self._warn_helpers()
         if learned:              # after the estimates are out: they never wait for this
             self._propose()
 
@@ -952,11 +948,16 @@ class LearnerNode(Node):
             helpers.start()
         except Exception as exc:  # noqa: BLE001 -- the node learns without them
             helpers.error = f'{type(exc).__name__}: {exc}'
-            self._helpers_warned = True
-            self.get_logger().warning(f'choice-set helper processes did not start '
-                                      f'({helpers.error}); the worker thread builds every '
-                                      'choice set alone')
         self.learner.helpers = helpers
+        self._warn_helpers()
+
+    def _warn_helpers(self):
+        """Warn once when the choice-set helpers did not start or stopped."""
+        helpers = self.learner.helpers
+        if helpers is not None and helpers.error and not self._helpers_warned:
+            self._helpers_warned = True
+            self.get_logger().warning(f'choice-set helper processes stopped ({helpers.error}); '
+                                      'the worker thread builds every choice set alone')
 
     def destroy_node(self):
         self._closing.set()
