@@ -66,6 +66,9 @@ from dataclasses import dataclass, replace
 from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
+# imported with the module, not on first use: a lazy import here cost the session's
+# first demonstration about 170 ms of latency
+from scipy.signal import butter, sosfiltfilt
 
 
 class DemonstrationError(ValueError):
@@ -613,7 +616,6 @@ def resample(t: np.ndarray, q: np.ndarray, n_waypoints: int, method: str = 'time
 
 def lowpass(t: np.ndarray, q: np.ndarray, cutoff_hz: float) -> np.ndarray:
     """Zero-phase 2nd-order Butterworth low-pass; endpoints kept exactly."""
-    from scipy.signal import butter, sosfiltfilt
     fs = 1.0 / np.median(np.diff(t))
     if cutoff_hz <= 0 or cutoff_hz >= 0.45 * fs or len(t) < 16:
         return q

@@ -34,7 +34,9 @@ from .choice import BOTH, MODEL_CHOICES, MODEL_NAMES
 from .demonstrations import (Demonstration, DemonstrationError, PrepareConfig, Recorder,
                              Rejection, SegmentConfig, prepare)
 from .features import FeatureSet, default_features_path
-from .posterior import ParticlePosterior, PosteriorConfig, Summary, set_log_similarity
+from .guidance import TaskOptions, information_gain, option_records
+from .posterior import (ParticlePosterior, PosteriorConfig, Summary, log_normalise,
+                        set_log_similarity)
 from .robot import RobotModel
 from .store import StateStore
 from .task import TaskModel, TaskRecord, draft_record, learning_hash, scaled_record
@@ -86,9 +88,11 @@ class LearnerConfig:
     calibration_seed: int = 0
     n_calibration: int = 200
     clamp: bool = False
-    # publish the one-step importance-weighted estimate first when its ESS is at least this
-    # (and tempering follows); 0: never. ESS 400 puts the Monte Carlo error of the mean
-    # near 5 % of the posterior spread (common practice: ESS > 400, Vehtari et al. 2021)
+    # while a demonstration is tempered in, publish an importance-weighted estimate first,
+    # as soon as weighing in the rest of it at once keeps an ESS of at least this (before
+    # the first step or after a step's moves); 0: never. ESS 400 puts the Monte Carlo error
+    # of the mean near 5 % of the posterior spread (common practice: ESS > 400, Vehtari
+    # et al. 2021)
     provisional_ess: float = 400.0
 
     def __post_init__(self):
@@ -178,8 +182,6 @@ def _information(before: Dict[str, ParticlePosterior], records, features, groups
     ``sum_i w'_i log(w'_i / w_i)`` with ``w' ~ w x likelihood`` (whose
     expectation over the predictive choice is the expected gain).
     """
-    from .guidance import TaskOptions, information_gain, option_records
-    from .posterior import log_normalise
     exp_gain, got = {}, {}
     for m, post in before.items():
         recs = option_records(features, groups, post.config.n_levels, post.config.bandwidth)
@@ -202,7 +204,7 @@ class StepResult:
     latency_s: float
     diagnostics: dict
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
-    #: the estimate before tempering (``LearnerConfig.provisional_ess``): ``posteriors``
+    #: the estimate before tempering ends (``LearnerConfig.provisional_ess``): ``posteriors``
     #: holds the importance-weighted posteriors it summarises; the learner's own follow
     provisional: bool = False
     posteriors: Optional[Dict[str, ParticlePosterior]] = None
@@ -669,16 +671,18 @@ class Learner:
         pick = np.linspace(1, len(allq) - 1, min(5, len(allq) - 1)).astype(int)
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
-        if self.on_estimate is not None and persist and provisional:
-            quick = self._provisional_posteriors(before, recs, lls)
-            if quick is not None:
-                self.on_estimate(StepResult(index, {m: p.summary() for m, p in quick.items()},
-                                            {}, time.perf_counter() - t0, {}, paths, True,
-                                            quick))
+        floor = self.config.provisional_ess
+        early = (floor > 0 and self.on_estimate is not None and persist and provisional)
+        handed = []
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
-            new[m], infos[m] = post.update(recs[m], rngs[m], move=False, loglik=lls[m])
+            hand = None
+            if early and not handed:
+                hand = self._provisional_hand(m, index, t0, paths, before, new, recs, lls,
+                                              handed)
+            new[m], infos[m] = post.update(recs[m], rngs[m], move=False, loglik=lls[m],
+                                           on_provisional=hand, provisional_ess=floor)
         self.posteriors.update(new)  # only after every model accepted the update
         self._demos.append(demo)
         # the checks of the demonstration fill ``diag`` once the estimate is out: the
@@ -704,23 +708,28 @@ class Learner:
             self.store.append_history(self._history_entry(res))
         return res
 
-    def _provisional_posteriors(self, before, recs, lls):
-        """Return the one-step posteriors to publish before tempering, or None.
+    def _provisional_hand(self, m, index, t0, paths, before, new, recs, lls, handed):
+        """Return model ``m``'s ``on_provisional`` for :meth:`ParticlePosterior.update`.
 
-        Only where some model will temper (its one-step ESS is below its
-        ``ess_target`` x N; otherwise the update is that estimate) and every
-        model's one-step ESS is at least ``config.provisional_ess``.
+        It hands out a provisional estimate (once; ``handed`` records it) when
+        every model has one: those updated before ``m`` their update
+        (``new``), ``m`` the one it is called with, those after it their
+        one-step reweighting, if its ESS is at least ``config.provisional_ess``.
         """
         floor = self.config.provisional_ess
-        if floor <= 0:
-            return None
-        quick = {m: p.reweighted(recs[m], lls[m]) for m, p in before.items()}
-        ess = {m: q.ess for m, q in quick.items()}
-        if (min(ess.values()) >= floor
-                and any(ess[m] < p.config.ess_target * p.n_particles
-                        for m, p in before.items())):
-            return quick
-        return None
+
+        def hand(rest: ParticlePosterior):
+            quick = dict(new)
+            quick[m] = rest
+            for j, p in before.items():
+                if j not in quick:
+                    quick[j] = p.reweighted(recs[j], lls[j])
+                    if quick[j].ess < floor:
+                        return
+            handed.append(True)
+            self.on_estimate(StepResult(index, {j: quick[j].summary() for j in before}, {},
+                                        time.perf_counter() - t0, {}, paths, True, quick))
+        return hand
 
     def _history_entry(self, res: StepResult) -> dict:
         return {'index': res.index, 'latency_s': res.latency_s, 'diagnostics': res.diagnostics,

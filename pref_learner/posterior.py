@@ -1468,22 +1468,27 @@ class ParticlePosterior:
                              'particles; features are out of range')
         return record, ll
 
-    def reweighted(self, record: ChoiceRecord, ll: np.ndarray) -> 'ParticlePosterior':
+    def reweighted(self, record: ChoiceRecord, ll: np.ndarray,
+                   share: float = 1.0) -> 'ParticlePosterior':
         """Return the new demonstration weighed in by importance weights alone, in one step.
 
         The same particles with weights times the new likelihood ``ll``
-        (:meth:`weigh`): a self-normalised importance-sampling estimate of
-        the new posterior, whose accuracy its ESS states. :meth:`update`
-        returns this when its first step takes the whole likelihood without
-        resampling (an ESS of at least ``ess_target`` and ``ess_min_ratio``
-        x N); below ``ess_target`` x N it tempers and moves the particles.
+        (:meth:`weigh`) raised to ``share``, the part of it not yet in the
+        weights (1 for a posterior before the demonstration; ``1 - phi`` for
+        particles tempered to ``phi``): a self-normalised importance-sampling
+        estimate of the new posterior, whose accuracy its ESS states.
+        :meth:`update` returns this when its first step takes the whole
+        likelihood without resampling (an ESS of at least ``ess_target`` and
+        ``ess_min_ratio`` x N); below ``ess_target`` x N it tempers and moves
+        the particles.
         """
-        return replace(self, log_weights=log_normalise(self.log_weights + ll),
+        return replace(self, log_weights=log_normalise(self.log_weights + share * ll),
                        log_lik=self.log_lik + ll, records=self.records + (record,),
                        moves_pending=False)
 
     def update(self, record, rng: np.random.Generator, move: bool = True,
-               loglik: Optional[np.ndarray] = None):
+               loglik: Optional[np.ndarray] = None, on_provisional=None,
+               provisional_ess: float = 0.0):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
 
         ``record`` is a :class:`ChoiceRecord` or the arguments of :meth:`prepare`
@@ -1496,6 +1501,13 @@ class ParticlePosterior:
         estimate first and run :meth:`rejuvenate` next. ``loglik``: the record's
         log-likelihood as :meth:`weigh` returned it for this ``record`` (not
         computed again).
+
+        ``on_provisional``: called at most once, with the estimate a caller may
+        hand out before tempering ends: at the first point (before any step, or
+        after a step's moves) where the particles would still temper and the
+        rest of the likelihood weighed in at once (:meth:`reweighted` with
+        ``share = 1 - phi``) keeps an ESS of at least ``provisional_ess``.
+        Learning does not depend on it.
         """
         if loglik is None:
             record, ll = self.weigh(record)
@@ -1511,6 +1523,12 @@ class ParticlePosterior:
         ess0 = float('nan')
         resampled = False
         while phi < 1.0 and steps < 200:
+            if on_provisional is not None:
+                rest = cur.reweighted(record, ll, 1.0 - phi)
+                ess_rest = rest.ess
+                if provisional_ess <= ess_rest < self.config.ess_target * n:
+                    on_provisional(rest)
+                    on_provisional = None
             delta = _next_temperature(cur.log_weights, ll, 1.0 - phi,
                                       self.config.ess_target * n)
             phi = 1.0 if phi + delta >= 1.0 - 1e-12 else phi + delta

@@ -269,7 +269,7 @@ def _provisional_deviations(early: dict, results) -> dict:
 
     Per demonstration that had a provisional estimate, the largest over
     coordinates of ``|mean - settled mean| / settled sd`` for the provisional
-    (importance weights before tempering) and for the update's estimate
+    (importance weights before tempering ends) and for the update's estimate
     (after tempering, before the moves): the second is the Monte Carlo
     noise the first is to be judged against.
     """

@@ -248,6 +248,51 @@ def test_provisional_estimate_is_the_self_normalised_importance_estimate(floor):
                                   L.posteriors['less'].log_weights)
 
 
+def test_provisional_estimates_of_both_models_weigh_the_demonstration_in():
+    # With both choice models one provisional estimate covers both, each with the
+    # demonstration weighed in (its record added) and an ESS of at least the floor; the
+    # models that were already updated contribute their update.
+    calls = []
+    floor = 100.0
+    L = Learner(LearnerConfig(model='both', provisional_ess=floor, **SMALL),
+                on_estimate=calls.append)
+    teacher = SimulatedTeacher(L, load_scenario()['example_preference'], TeacherConfig())
+    teacher.feed_session(L, 6)
+    early = [c for c in calls if c.provisional]
+    assert early, 'no demonstration handed out a provisional estimate'
+    for c in early:
+        assert set(c.summaries) == set(c.posteriors) == {'boltzmann', 'less'}
+        for m, p in c.posteriors.items():
+            assert len(p.records) == c.index + 1 and p.ess >= floor
+            np.testing.assert_allclose(c.summaries[m].mean, p.summary().mean, rtol=0,
+                                       atol=1e-12)
+        after = [r for r in calls if r.index == c.index and not r.provisional]
+        assert len(after) == 1         # the update's own estimate follows
+
+
+def test_the_first_demonstration_imports_nothing():
+    # A module imported on first use made the session's first demonstration the slowest
+    # one (scipy.signal: about 170 ms); a fresh interpreter shows what the first
+    # demonstration imports.
+    script = (
+        'import sys\n'
+        'from pref_learner.features import load_scenario\n'
+        'from pref_learner.learner import Learner, LearnerConfig\n'
+        'from pref_learner.sim import SimulatedTeacher, TeacherConfig\n'
+        'L = Learner(LearnerConfig(model="less", n_particles=300, n_alternatives=60),\n'
+        '            on_estimate=lambda r: None)\n'
+        'teacher = SimulatedTeacher(L, load_scenario()["example_preference"], TeacherConfig())\n'
+        'L.summaries()\n'
+        'before = set(sys.modules)\n'
+        'teacher.feed_session(L, 1)\n'
+        'assert L.n_demonstrations == 1\n'
+        'print(sorted(set(sys.modules) - before))\n')
+    out = subprocess.run([sys.executable, '-c', script], capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == '[]'
+
+
 def test_a_failure_after_the_estimate_leaves_the_learner_as_it_was(monkeypatch):
     # a fault in the demonstration's checks (after the estimate was handed out) rolls the
     # demonstration back entirely: posterior, demonstrations and their diagnostics

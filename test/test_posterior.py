@@ -560,3 +560,44 @@ def test_modes_evidence_tells_the_spread_of_a_demonstration():
                            deviation=coeffs[:, 0])
     with pytest.raises(ValueError, match='needs the deviation'):
         ChoiceRecord.build(x, 0, groups=groups, n_levels=3, density='modes')
+
+
+@pytest.mark.parametrize('model', ['boltzmann', 'less'])
+def test_provisional_estimate_after_a_tempering_step_matches_quadrature(model):
+    # A demonstration too sharp for one importance step (its ESS below the floor) hands
+    # out its provisional estimate after a tempering step and its moves: the particles
+    # at phi weighted by the rest of the likelihood (self-normalised importance sampling,
+    # common practice). Its mean matches the exact posterior (scipy.integrate quadrature on
+    # the circle, as above), its ESS is at least the floor, and learning is the same with
+    # or without it.
+    rng = np.random.default_rng(90)
+    x = rng.standard_normal((40, 2))
+    true = np.array([np.cos(2.0), np.sin(2.0)])
+    c = int(np.argmax(x @ true))
+    cfg = PosteriorConfig(n_particles=8000, model=model, beta=40.0)
+    prior = ParticlePosterior.create(cfg, 2, np.random.default_rng(91))
+    rec, ll = prior.weigh((x, c))
+    one_step = prior.reweighted(rec, ll).ess
+    floor = 2.0 * one_step
+    assert floor < cfg.ess_target * cfg.n_particles      # the case this test is about
+    got = []
+    post, info = prior.update(rec, np.random.default_rng(92), loglik=ll,
+                              on_provisional=got.append, provisional_ess=floor)
+    ref, _ = prior.update(rec, np.random.default_rng(92), loglik=ll)
+    np.testing.assert_array_equal(post.theta, ref.theta)
+    np.testing.assert_array_equal(post.log_weights, ref.log_weights)
+    assert len(got) == 1 and info.tempering_steps > 1
+    early = got[0]
+    assert early.ess >= floor and not np.array_equal(early.theta, prior.theta)
+    grid = np.linspace(-np.pi, np.pi, 20001)
+    th = np.stack([np.cos(grid), np.sin(grid)], axis=1)
+    lg = choice.get_model(model)(x, c, th, 40.0)
+    dens = np.exp(lg - lg.max())
+    dens /= integrate.trapezoid(dens, grid)
+    exact_mean = integrate.trapezoid(dens[:, None] * th, grid, axis=0)
+    np.testing.assert_allclose(early.weights @ early.theta, exact_mean, atol=0.02)
+    # a floor no step reaches hands out nothing
+    none = []
+    prior.update(rec, np.random.default_rng(92), loglik=ll, on_provisional=none.append,
+                 provisional_ess=float(cfg.n_particles))
+    assert none == []

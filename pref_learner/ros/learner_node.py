@@ -122,8 +122,8 @@ _PARAMS = {
     'pool_levels': ('every option level\'s draws serve every level, weighted by multiple '
                     'importance sampling (smooth alternatives, option_density modes)', None,
                     True),
-    'provisional_ess': ('publish the importance-weighted estimate before tempering when its '
-                        'ESS is at least this (0: never)', (0.0, 1e6), True),
+    'provisional_ess': ('while tempering, publish an importance-weighted estimate first as '
+                        'soon as its ESS is at least this (0: never)', (0.0, 1e6), True),
     'n_waypoints': ('waypoints per trajectory', (4, 1000), True),
     'resample': ('demonstration resampling: time or arc_length', None, True),
     'lowpass_hz': ('low-pass cutoff before resampling (0: off)', (0.0, 500.0), True),
@@ -196,7 +196,7 @@ class LearnerNode(Node):
         self._pending_config = None
         self._summaries = {}
         # what the last published estimate is: provisional (importance weights before
-        # tempering), updated (the update's, before the moves) or settled (after them, or
+        # tempering ends), updated (the update's, before the moves) or settled (after them, or
         # the learner's own); anything but settled is for a demonstration in progress
         self._estimate_kind = 'settled'
         self._helpers_warned = False
@@ -670,7 +670,7 @@ class LearnerNode(Node):
     def _on_estimate(self, r: StepResult):
         """Publish as soon as the demonstration is weighed in (before rejuvenation).
 
-        A provisional estimate (importance weights before tempering) is published
+        A provisional estimate (importance weights before tempering ends) is published
         from the posteriors it carries; the tempered one follows.
         """
         self._latency = r.latency_s
