@@ -85,7 +85,10 @@ def test_flood_of_bad_messages_changes_nothing(tmp_path):
     with ros_context() as (ctx, ex):
         node = LearnerNode(context=ctx, parameter_overrides=[
             rclpy.parameter.Parameter(k, value=v) for k, v in
-            dict(SMALL, record_bag=str(bag), segmentation='signal').items()])
+            # max_gap 0.5 s: best-effort delivery on two loaded cores loses runs of samples
+            # (one full run lost 0.114 s of the valid stream and refused that demonstration
+            # under the default 0.1 s); refusing gaps is tested elsewhere, not the point here
+            dict(SMALL, record_bag=str(bag), segmentation='signal', max_gap=0.5).items()])
         names = list(node.learner.robot.joint_names)
         client = rclpy.create_node('valid_teacher', context=ctx)
         ex.add_node(client)
