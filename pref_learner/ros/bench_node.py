@@ -139,6 +139,9 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             out['node_updated_latency_ms_p95'] = float(np.nanpercentile(upd, 95) * 1e3)
             out['node_updated_latency_ms_median'] = float(np.nanmedian(upd) * 1e3)
             out['node_provisional_fraction'] = float(np.mean(prov))
+            # how many of the n_lat the figures rest on (a demonstration the node refused,
+            # e.g. for samples the best-effort transport lost, is not timed)
+            out['node_latency_demonstrations'] = len(lat)
 
             # -- ingest at 1 kHz while updates run
             dur = 10.0 if quick else 60.0
