@@ -293,20 +293,24 @@ def soft_extreme(g: np.ndarray, temperature: float, largest: bool = True):
     return (val if largest else -val), e / z
 
 
-def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray, temperature: float = 0.0):
+def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray, temperature: float = 0.0,
+               grad: bool = True):
     """Aggregate g (..., T) -> (...,) with weights dA/dg (..., T).
 
     For ``integral`` also the derivative with respect to positions (..., T, 3).
     ``temperature > 0`` replaces ``min``/``max`` by their smooth log-sum-exp
-    surrogates (:func:`soft_extreme`); 0 keeps the exact extreme.
+    surrogates (:func:`soft_extreme`); 0 keeps the exact extreme. With
+    ``grad=False`` the value alone: ``(value, None, None)``, the same value.
     """
     T = g.shape[-1]
     if agg == 'mean':
-        return g.mean(axis=-1), np.full(g.shape, 1.0 / T), None
+        return g.mean(axis=-1), np.full(g.shape, 1.0 / T) if grad else None, None
     if agg in ('min', 'max') and temperature > 0:
         val, w = soft_extreme(g, temperature, agg == 'max')
         return val, w, None
     if agg in ('min', 'max'):
+        if not grad:
+            return (np.min(g, axis=-1) if agg == 'min' else np.max(g, axis=-1)), None, None
         idx = np.argmin(g, axis=-1) if agg == 'min' else np.argmax(g, axis=-1)
         val = np.take_along_axis(g, idx[..., None], axis=-1)[..., 0]
         w = np.zeros(g.shape)
@@ -317,6 +321,8 @@ def _aggregate(agg: str, g: np.ndarray, pos: np.ndarray, temperature: float = 0.
         ln = np.linalg.norm(seg, axis=-1)                   # (..., T-1)
         mid = 0.5 * (g[..., 1:] + g[..., :-1])
         val = np.sum(mid * ln, axis=-1)
+        if not grad:
+            return val, None, None
         w = np.zeros(g.shape)
         w[..., 1:] += 0.5 * ln
         w[..., :-1] += 0.5 * ln
@@ -409,7 +415,7 @@ class WaypointType(FeatureType):
     def evaluate(self, spec, batch, grad=False, temperature=0.0):
         pos, rot = batch.positions, batch.rotations
         g, dg_dpos, dg_daxis = self.waypoint(spec.params, pos, rot, temperature)
-        val, w, dpos_agg = _aggregate(spec.aggregate, g, pos, temperature)
+        val, w, dpos_agg = _aggregate(spec.aggregate, g, pos, temperature, grad)
         if not grad:
             return val, None
         Jp, Jr = batch.jp, batch.jr                        # (B, T, 3, n)
