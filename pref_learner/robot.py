@@ -69,9 +69,13 @@ def _joint_kind(jmodel) -> Tuple[str, np.ndarray]:
 _FK_BLOCK = 2048
 
 
-def _rotate(r: np.ndarray, v: np.ndarray) -> np.ndarray:
-    """``r v`` for rotations ``r (3, 3, b)`` (component-major) and ``v (3,)``: ``(3, b)``."""
-    nz = np.flatnonzero(v)
+def _rotate(r: np.ndarray, v: np.ndarray, nz: Optional[np.ndarray] = None) -> np.ndarray:
+    """``r v`` for rotations ``r (3, 3, b)`` (component-major) and ``v (3,)``: ``(3, b)``.
+
+    ``nz``: the indices of ``v``'s non-zero entries, when known.
+    """
+    if nz is None:
+        nz = np.flatnonzero(v)
     if nz.size == 0:
         return np.zeros(r.shape[::2])
     out = r[:, nz[0]] * v[nz[0]]
@@ -196,6 +200,10 @@ class RobotModel:
                             for j in range(1, self.model.njoints)}
         self._identity = {j: bool(np.array_equal(r, np.eye(3)))
                           for j, (r, _) in self._placements.items()}
+        # looked up once here, not per block of configurations
+        self._offset_nz = {j: np.flatnonzero(t) for j, (_, t) in self._placements.items()}
+        self._axis_name = {j: next((k for k in 'ZYX' if np.array_equal(a, _AXES[k])), '')
+                           for j, a in axes.items()}
 
     @staticmethod
     def _read(urdf) -> Tuple[str, str]:
@@ -309,12 +317,19 @@ class RobotModel:
         if with_jacobian:
             jp = np.zeros((b, len(names), 3, self.n))
             jr = np.zeros((b, len(names), 3, self.n))
+        targets = []
+        for name in names:
+            fr = self.model.frames[self.frame_id(name)]
+            rf = np.array(fr.placement.rotation)
+            tf = np.array(fr.placement.translation)
+            targets.append((fr.parentJoint, rf, bool(np.array_equal(rf, np.eye(3))), tf,
+                            np.flatnonzero(tf)))
         # blocks of configurations: a block's (3, 3, block) rotations stay in cache (one
         # 64-waypoint set of 500 paths at once took about 1.5 times as long); every value
         # is computed element by element, so the blocks do not change a bit of the result
         for a in range(0, b, _FK_BLOCK):
             e = min(b, a + _FK_BLOCK)
-            self._frame_block(qf[a:e], names, fpos[a:e], frot[a:e],
+            self._frame_block(qf[a:e], targets, fpos[a:e], frot[a:e],
                               None if jp is None else jp[a:e], None if jr is None else jr[a:e])
         out = FramePoses(names, fpos.reshape(lead + (len(names), 3)),
                          frot.reshape(lead + (len(names), 3, 3)))
@@ -323,8 +338,12 @@ class RobotModel:
                          jr.reshape(lead + (len(names), 3, self.n)))
         return out
 
-    def _frame_block(self, qf, names, fpos, frot, jp, jr) -> None:
-        """Fill one block's ``fpos, frot`` (and ``jp, jr`` when given) for ``qf (b, n)``."""
+    def _frame_block(self, qf, targets, fpos, frot, jp, jr) -> None:
+        """Fill one block's ``fpos, frot`` (and ``jp, jr`` when given) for ``qf (b, n)``.
+
+        ``targets``: per frame, its parent joint, placement rotation, whether
+        that is the identity, placement translation and its non-zero entries.
+        """
         with_jacobian = jp is not None
         b = qf.shape[0]
         model = self.model
@@ -341,7 +360,7 @@ class RobotModel:
             rp, tp = self._placements[jid]
             rpar = rot[parent]
             r0 = rpar if self._identity[jid] else _times(rpar, rp)
-            p0 = pos[parent] + _rotate(rpar, tp)
+            p0 = pos[parent] + _rotate(rpar, tp, self._offset_nz[jid])
             kind, a = self._kinds[jid], self._axes[jid]
             iq = self._q_of_jid.get(jid)
             qj = qf[:, iq] if iq is not None else np.zeros(b)
@@ -351,15 +370,16 @@ class RobotModel:
             else:
                 c, s = np.cos(qj), np.sin(qj)
                 r = np.empty_like(r0)
-                if np.array_equal(a, _AXES['Z']):
+                axis = self._axis_name[jid]
+                if axis == 'Z':
                     r[:, 0] = r0[:, 0] * c + r0[:, 1] * s
                     r[:, 1] = r0[:, 1] * c - r0[:, 0] * s
                     r[:, 2] = r0[:, 2]
-                elif np.array_equal(a, _AXES['Y']):
+                elif axis == 'Y':
                     r[:, 0] = r0[:, 0] * c - r0[:, 2] * s
                     r[:, 2] = r0[:, 2] * c + r0[:, 0] * s
                     r[:, 1] = r0[:, 1]
-                elif np.array_equal(a, _AXES['X']):
+                elif axis == 'X':
                     r[:, 1] = r0[:, 1] * c + r0[:, 2] * s
                     r[:, 2] = r0[:, 2] * c - r0[:, 1] * s
                     r[:, 0] = r0[:, 0]
@@ -375,15 +395,10 @@ class RobotModel:
             if with_jacobian and iq is not None:
                 axis_w[jid] = _rotate(r0, a)
                 origin_w[jid] = p
-        for k, name in enumerate(names):
-            fr = model.frames[self.frame_id(name)]
-            j = fr.parentJoint
-            rf = np.array(fr.placement.rotation)
-            tf = np.array(fr.placement.translation)
-            pk = pos[j] + _rotate(rot[j], tf)
+        for k, (j, rf, rf_identity, tf, tf_nz) in enumerate(targets):
+            pk = pos[j] + _rotate(rot[j], tf, tf_nz)
             fpos[:, k] = pk.T
-            frot[:, k] = (rot[j] if np.array_equal(rf, np.eye(3))
-                          else _times(rot[j], rf)).transpose(2, 0, 1)
+            frot[:, k] = (rot[j] if rf_identity else _times(rot[j], rf)).transpose(2, 0, 1)
             if with_jacobian:
                 anc = j
                 while anc > 0:
