@@ -90,9 +90,10 @@ class LearnerConfig:
     clamp: bool = False
     # while a demonstration is tempered in, publish an importance-weighted estimate first,
     # as soon as weighing in the rest of it at once keeps an ESS of at least this (before
-    # the first step or after a step's moves); 0: never. ESS 400 puts the Monte Carlo error
-    # of the mean near 5 % of the posterior spread (common practice: ESS > 400, Vehtari
-    # et al. 2021)
+    # the first step or after a step's moves); 0: never. For independent draws ESS 400 puts
+    # the Monte Carlo error of the mean near 5 % of the posterior spread (common practice:
+    # ESS > 400, Vehtari et al. 2021); copies left by resampling count here one by one, so
+    # the error is larger: the calibration study measures it (calib_provisional_deviation)
     provisional_ess: float = 400.0
 
     def __post_init__(self):
@@ -205,7 +206,8 @@ class StepResult:
     diagnostics: dict
     tool_paths: np.ndarray            # (1 + k, T, 3): demonstration then a few alternatives
     #: the estimate before tempering ends (``LearnerConfig.provisional_ess``): ``posteriors``
-    #: holds the importance-weighted posteriors it summarises; the learner's own follow
+    #: holds the posteriors it summarises (importance-weighted; with both models, a model
+    #: whose update was already done gives that update); the learner's own follow
     provisional: bool = False
     posteriors: Optional[Dict[str, ParticlePosterior]] = None
 
@@ -672,15 +674,15 @@ class Learner:
         paths = self.robot.frame_poses(allq[np.concatenate([[0], pick])],
                                        [self.robot.tool_frame]).positions[:, :, 0]
         floor = self.config.provisional_ess
-        early = (floor > 0 and self.on_estimate is not None and persist and provisional)
+        wanted = (floor > 0 and self.on_estimate is not None and persist and provisional)
         handed = []
         for k, (m, post) in enumerate(self.posteriors.items()):
             rngs[m] = np.random.default_rng(np.random.SeedSequence([self.config.seed,
                                                                     index + 1, k + 1]))
             hand = None
-            if early and not handed:
-                hand = self._provisional_hand(m, index, t0, paths, before, new, recs, lls,
-                                              handed)
+            if wanted and not handed:
+                hand = self._provisional_hand(m, floor, index, t0, paths, before, new, recs,
+                                              lls, handed)
             new[m], infos[m] = post.update(recs[m], rngs[m], move=False, loglik=lls[m],
                                            on_provisional=hand, provisional_ess=floor)
         self.posteriors.update(new)  # only after every model accepted the update
@@ -708,16 +710,14 @@ class Learner:
             self.store.append_history(self._history_entry(res))
         return res
 
-    def _provisional_hand(self, m, index, t0, paths, before, new, recs, lls, handed):
+    def _provisional_hand(self, m, floor, index, t0, paths, before, new, recs, lls, handed):
         """Return model ``m``'s ``on_provisional`` for :meth:`ParticlePosterior.update`.
 
         It hands out a provisional estimate (once; ``handed`` records it) when
         every model has one: those updated before ``m`` their update
         (``new``), ``m`` the one it is called with, those after it their
-        one-step reweighting, if its ESS is at least ``config.provisional_ess``.
+        one-step reweighting, if its ESS is at least ``floor``.
         """
-        floor = self.config.provisional_ess
-
         def hand(rest: ParticlePosterior):
             quick = dict(new)
             quick[m] = rest

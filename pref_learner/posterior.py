@@ -41,7 +41,7 @@ import json
 import math
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
-from typing import Dict, NamedTuple, Optional, Sequence, Tuple
+from typing import Callable, Dict, NamedTuple, Optional, Sequence, Tuple
 
 import numpy as np
 from scipy.special import gammaincc, gammaln, logsumexp
@@ -1487,7 +1487,8 @@ class ParticlePosterior:
                        moves_pending=False)
 
     def update(self, record, rng: np.random.Generator, move: bool = True,
-               loglik: Optional[np.ndarray] = None, on_provisional=None,
+               loglik: Optional[np.ndarray] = None,
+               on_provisional: Optional[Callable[['ParticlePosterior'], None]] = None,
                provisional_ess: float = 0.0):
         """Add one demonstration by adaptive tempering; returns ``(new_posterior, UpdateInfo)``.
 
@@ -1507,7 +1508,8 @@ class ParticlePosterior:
         after a step's moves) where the particles would still temper and the
         rest of the likelihood weighed in at once (:meth:`reweighted` with
         ``share = 1 - phi``) keeps an ESS of at least ``provisional_ess``.
-        Learning does not depend on it.
+        Learning does not depend on it (it draws no random numbers; an
+        exception it raises propagates).
         """
         if loglik is None:
             record, ll = self.weigh(record)

@@ -141,7 +141,7 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
             out['node_provisional_fraction'] = float(np.mean(prov))
             # how many of the n_lat the figures rest on (a demonstration the node refused,
             # e.g. for samples the best-effort transport lost, is not timed)
-            out['node_latency_demonstrations'] = len(lat)
+            out['node_latency_demonstrations'] = float(len(lat))
 
             # -- ingest at 1 kHz while updates run
             dur = 10.0 if quick else 60.0
