@@ -70,10 +70,10 @@ def test_configuration_change_rebuilds_by_replay(tmp_path):
         .n_demonstrations == 0
 
 
-def _start_node(state, env):
+def _start_node(state, env, sizes=SMALL, jobs=2):
     cmd = [sys.executable, '-m', 'pref_learner.ros.learner_node', '--ros-args',
-           '-p', f'state_dir:={state}', '-p', f'n_particles:={SMALL["n_particles"]}',
-           '-p', f'n_alternatives:={SMALL["n_alternatives"]}', '-p', 'choice_jobs:=2',
+           '-p', f'state_dir:={state}', '-p', f'n_particles:={sizes["n_particles"]}',
+           '-p', f'n_alternatives:={sizes["n_alternatives"]}', '-p', f'choice_jobs:={jobs}',
            '--log-level', 'warn']
     return subprocess.Popen(cmd, env=env)
 
@@ -168,6 +168,49 @@ def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
                 proc.wait(timeout=15)
             except subprocess.TimeoutExpired:
                 proc.kill()
+
+
+def test_sigint_while_a_demonstration_is_learned_keeps_it(tmp_path):
+    # Ctrl-C (SIGINT) right after a demonstration's provisional estimate, while the node
+    # still learns it: the context is shut down, so the estimates that follow cannot be
+    # published. The demonstration was learned and is kept (it was rolled back and lost
+    # when the failed publication raised into the learner). The shipped sizes leave
+    # about 0.3 s between the provisional estimate and the end of the learning.
+    state = tmp_path / 'state'
+    shipped = dict(n_particles=4000, n_alternatives=500)
+    proc = _start_node(state, dict(os.environ), sizes=shipped, jobs=1)
+    sent = 0
+    try:
+        with ros_context() as (ctx, ex):
+            node = rclpy.create_node('sigint_client', context=ctx)
+            ex.add_node(node)
+            status = follow_status(node)
+            pub, teach = teaching_publishers(node, ex, timeout=60, ready=lambda: bool(status))
+            teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                                       TRUE, TeacherConfig(seed=5))
+            names = [f'joint_{i}' for i in range(1, 8)]
+            t0 = 1_700_000_000 * 10**9
+            caught = False
+            for k in range(4):
+                st, q = teacher.stream(k, t0)
+                t0 = int(st[-1]) + 10**9
+                publish_stream(ex, pub, teach, st, q, names)
+                sent += 1
+                if spin_until(ex, lambda: status.get('estimate') == 'provisional'
+                              and status.get('demonstrations') == str(k + 1), 20):
+                    proc.send_signal(signal.SIGINT)
+                    caught = True
+                    break
+                assert spin_until(ex, lambda: status.get('estimate') == 'settled'
+                                  and status.get('demonstrations') == str(k + 1), 60)
+            node.destroy_node()
+        assert caught, 'no demonstration had a provisional estimate'
+        assert proc.wait(timeout=30) == 0
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert len(list((state / 'demos').glob('demo_*.npz'))) == sent
+    assert len(ParticlePosterior.load(state / 'posterior_less').records) == sent
 
 
 def test_stored_scales_are_kept_across_restarts(tmp_path):

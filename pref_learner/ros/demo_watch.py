@@ -41,8 +41,12 @@ def watch_session(n_demonstrations, truth, learner):
             rclpy.spin_once(node, timeout_sec=0.1)
             if learner.poll() is not None:
                 raise RuntimeError(f'the learner node exited with code {learner.returncode}')
-            done = min((int(v.get('demonstrations', 0)) for v in state['status'].values()),
-                       default=0)
+            # a demonstration is done once its settled estimate is out (learned and
+            # stored); the provisional and updated ones come earlier, while it is learned
+            settled = [int(v.get('demonstrations', 0)) for v in state['status'].values()
+                       if v.get('estimate', 'settled') == 'settled']
+            done = min(settled, default=0) if len(settled) == len(state['status']) \
+                else state['n']
             if state['demo_on'] is not None and bar is None and tqdm is not None \
                     and sys.stdout.isatty():
                 bar = tqdm(total=30, desc=f'demonstration {done + 1}', leave=False,

@@ -822,7 +822,14 @@ class LearnerNode(Node):
         # raise the next samples' log times to it (ties that a replay may reorder)
         stamp = self._last_log or self._now()
         for key, msg in msgs.items():
-            self._pubs[key].publish(msg)
+            try:
+                self._pubs[key].publish(msg)
+            except Exception:  # noqa: BLE001 -- re-raised unless shut down
+                if self.context.ok():
+                    raise
+                # shut down (SIGINT) while a demonstration is learned: nothing is left to
+                # publish to, and the learning goes on to its end and is stored
+                return
             dims = [(d.label, d.size, d.stride) for d in msg.layout.dim]
             self._record(lambda bag: bag.write(self._pubs[key].topic_name,
                                                bag.float_array(msg.data, dims), stamp))
