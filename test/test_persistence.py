@@ -101,19 +101,28 @@ def _children(pid: int):
     return out
 
 
+def _client(ctx, ex, name):
+    """A client of the node under test: ``(node, status, pub, teach, teacher, names)``.
+
+    ``status``: its latest status values; ``pub``, ``teach``: joint states and the
+    teaching signal, once the node listens; ``teacher``: the simulated person.
+    """
+    node = rclpy.create_node(name, context=ctx)
+    ex.add_node(node)
+    status = follow_status(node)
+    pub, teach = teaching_publishers(node, ex, timeout=60, ready=lambda: bool(status))
+    teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                               TRUE, TeacherConfig(seed=5))
+    return node, status, pub, teach, teacher, [f'joint_{i}' for i in range(1, 8)]
+
+
 def test_kill_9_loses_only_the_demonstration_in_progress(tmp_path):
     state = tmp_path / 'state'
     env = dict(os.environ)
     proc = _start_node(state, env)
     try:
         with ros_context() as (ctx, ex):
-            node = rclpy.create_node('persistence_client', context=ctx)
-            ex.add_node(node)
-            status = follow_status(node)
-            pub, teach = teaching_publishers(node, ex, timeout=60, ready=lambda: bool(status))
-            teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
-                                       TRUE, TeacherConfig(seed=5))
-            names = [f'joint_{i}' for i in range(1, 8)]
+            node, status, pub, teach, teacher, names = _client(ctx, ex, 'persistence_client')
             t0 = 1_700_000_000 * 10**9
             streams = []
             for k in range(4):
@@ -182,13 +191,7 @@ def test_sigint_while_a_demonstration_is_learned_keeps_it(tmp_path):
     sent = 0
     try:
         with ros_context() as (ctx, ex):
-            node = rclpy.create_node('sigint_client', context=ctx)
-            ex.add_node(node)
-            status = follow_status(node)
-            pub, teach = teaching_publishers(node, ex, timeout=60, ready=lambda: bool(status))
-            teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
-                                       TRUE, TeacherConfig(seed=5))
-            names = [f'joint_{i}' for i in range(1, 8)]
+            node, status, pub, teach, teacher, names = _client(ctx, ex, 'sigint_client')
             t0 = 1_700_000_000 * 10**9
             caught = False
             for k in range(4):
