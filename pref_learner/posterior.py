@@ -1526,10 +1526,9 @@ class ParticlePosterior:
         resampled = False
         while phi < 1.0 and steps < 200:
             if on_provisional is not None:
-                rest = cur.reweighted(record, ll, 1.0 - phi)
-                ess_rest = rest.ess
+                ess_rest = ess_from_log_weights(cur.log_weights + (1.0 - phi) * ll)
                 if provisional_ess <= ess_rest < self.config.ess_target * n:
-                    on_provisional(rest)
+                    on_provisional(cur.reweighted(record, ll, 1.0 - phi))
                     on_provisional = None
             delta = _next_temperature(cur.log_weights, ll, 1.0 - phi,
                                       self.config.ess_target * n)
