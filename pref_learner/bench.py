@@ -272,7 +272,7 @@ def _peer(sets, quick: bool, out: Dict[str, float]) -> None:
     cap = 30.0 if quick else 120.0
 
     def emcee_runs(start):
-        """emcee from ``start(seed)`` (walkers, d): mean time, mean steps, worst error, reached."""
+        """Run emcee from ``start(seed)``: mean time, mean steps, worst error, reached."""
         times, n_steps, errs, reached = [], [], [], True
         for seed in range(seeds):
             sampler = emcee.EnsembleSampler(walkers, d, log_prob, vectorize=True)
