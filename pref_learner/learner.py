@@ -817,10 +817,12 @@ def stored_session(state_dir, **over) -> Tuple[LearnerConfig, Optional[TaskRecor
     return LearnerConfig(**cfg), record
 
 
-#: parameters of the learner node that are not learner settings
+#: parameters of the learner node that are not learner settings (the offline commands
+#: take ``max_stamp_skew`` for their recorder and ignore the rest)
 NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feature_modules',
              'use_sim_time', 'qos_overrides', 'start_type_description_service',
-             'robot_description_topic', 'robot_description_timeout', 'max_stamp_skew')
+             'robot_description_topic', 'robot_description_timeout', 'max_stamp_skew',
+             'choice_jobs')
 
 
 def read_parameters_mapping(path) -> dict:

@@ -61,10 +61,6 @@ from .choice import MODEL_NAMES as MODELS  # the registry's models, in one place
 QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 #: one BLAS thread per worker process (set before the worker imports numpy)
 WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THREADS': '1'}
-#: settings of the learner node that mean nothing offline (ignored, with a note)
-NODE_ONLY = ('record_bag', 'publish_period', 'state_dir', 'feature_names', 'feature_modules',
-             'use_sim_time', 'qos_overrides', 'start_type_description_service',
-             'robot_description_topic', 'robot_description_timeout', 'choice_jobs')
 #: the parameters file's ``study:`` block and its defaults
 STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True}
 
@@ -235,7 +231,7 @@ def load_settings(path) -> StudySettings:
 
     Raises ``ValueError`` naming the file and the key for anything unknown or invalid.
     """
-    from .learner import LearnerConfig, read_parameters_mapping
+    from .learner import NODE_ONLY, LearnerConfig, read_parameters_mapping
     path = Path(path)
     doc = read_parameters_mapping(path)
     params, where = _learner_section(doc)
@@ -245,10 +241,10 @@ def load_settings(path) -> StudySettings:
     ignored = []
     max_skew = 0.0
     for k, v in params.items():
-        if k in NODE_ONLY:
-            ignored.append(k)
-        elif k == 'max_stamp_skew':
+        if k == 'max_stamp_skew':
             max_skew = float(v)
+        elif k in NODE_ONLY:         # settings of the node that mean nothing offline
+            ignored.append(k)
         elif k not in known:
             raise ValueError(f'parameters file {path}: {k!r} is not a learner setting; allowed: '
                              f'{sorted(known - {"state_dir"})}, max_stamp_skew and a study: '

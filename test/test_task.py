@@ -5,11 +5,12 @@
 import argparse
 import json
 import xml.etree.ElementTree as ET
-from dataclasses import replace
+from dataclasses import fields, replace
 from pathlib import Path
 
 import numpy as np
 import pytest
+import yaml
 
 from pref_learner.learner import (Learner, LearnerConfig, read_parameters_file,
                                   stored_session)
@@ -216,6 +217,23 @@ pref_learner:
     p.write_text('pref_learner:\n  ros__parameters:\n    colour: red\n')
     with pytest.raises(ValueError, match="'colour' is not a parameter"):
         read_parameters_file(p)
+
+
+def test_the_shipped_parameters_file_is_read_whole_by_the_offline_commands():
+    # `learn --params-file` and `study --params` take the node's shipped parameters file as
+    # it is (README); every parameter the node declares is a learner setting or node-only
+    from pref_learner.learner import NODE_ONLY
+    from pref_learner.ros.learner_node import _PARAMS
+    from pref_learner.study import load_settings
+    shipped = Path(__file__).resolve().parents[1] / 'launch' / 'pref_learner_params.yaml'
+    settings, node_only = read_parameters_file(shipped)
+    keys = set(yaml.safe_load(shipped.read_text())['/**']['ros__parameters'])
+    assert keys == set(settings) | set(node_only)
+    assert node_only['choice_jobs'] == 1 and settings['n_particles'] == 4000
+    learner_fields = {f.name for f in fields(LearnerConfig)}
+    assert set(_PARAMS) <= learner_fields | set(NODE_ONLY)
+    study = load_settings(shipped)
+    assert study.learner['n_particles'] == 4000
 
 
 def test_simulated_teacher_holds_the_other_joints_of_any_robot(arm6_record):
