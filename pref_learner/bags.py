@@ -13,9 +13,9 @@ publishes (the same types, names and layouts).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterator, List, Optional, Sequence, Tuple
+from typing import Iterable, Iterator, List, Optional, Sequence, Tuple
 
 import numpy as np
 
@@ -151,6 +151,68 @@ def read_stream(path, joint_topic: Optional[str] = None,
         reader.close()
 
 
+class BagDamaged(ValueError):
+    """A bag that could not be read to its end; ``messages`` were read (and fed) before."""
+
+    def __init__(self, messages: int, exc: BaseException):
+        super().__init__(f'the bag is damaged after {messages} messages '
+                         f'({type(exc).__name__}: {exc}); the rest is not read')
+        self.messages = messages
+
+
+@dataclass
+class Replay:
+    """What :func:`replay_bag` fed: message counts and notes for the user."""
+
+    messages: int = 0
+    teaching_signals: int = 0
+    notes: List[str] = field(default_factory=list)
+
+
+def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay:
+    """Feed a bag's events (:func:`read_stream`) to ``learner`` as a live node takes them.
+
+    ``on_output(outputs, event)`` receives what each event gave (results and
+    rejections). Raises :class:`BagDamaged` when reading fails part-way
+    (after feeding what came before) and ``ValueError`` when the bag's joints
+    are not the learner's robot's (nothing learned, every sample missing a
+    joint). The notes say when the bag ends during a demonstration and when it
+    has no teaching signal under ``segmentation: signal``.
+    """
+    rep = Replay()
+    first_names = None
+    it = iter(events)
+    while True:
+        try:
+            e = next(it)
+        except StopIteration:
+            break
+        except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
+            if rep.messages == 0 and isinstance(exc, ValueError):
+                raise                      # unreadable from the start (read_stream says why)
+            raise BagDamaged(rep.messages, exc) from None
+        rep.messages += 1
+        if e.kind == 'joint_states':
+            if first_names is None:
+                first_names = e.names
+            out = learner.feed(e.stamp_ns, e.names, e.positions, e.log_ns)
+        else:
+            rep.teaching_signals += 1
+            out = learner.set_teaching(e.value)
+        if on_output is not None:
+            on_output(out, e)
+    counters = learner.recorder.counters
+    if learner.n_demonstrations == 0 and counters['missing_joint'] and not counters['samples']:
+        raise ValueError(f'wrong robot: the bag\'s joint states name {list(first_names or ())}, '
+                         f'the chain needs {list(learner.robot.joint_names)}')
+    if learner.recorder.recording:
+        rep.notes.append('the bag ends during a demonstration; that part is not learned')
+    if learner.config.segmentation == 'signal' and rep.teaching_signals == 0:
+        rep.notes.append('the bag has no teaching signal (a std_msgs/Bool topic ending in '
+                         '"teaching"); set segmentation: motion in a parameters file')
+    return rep
+
+
 def read_task_record(path) -> Optional[str]:
     """Return the JSON text of the first task record in a bag (None when it has none).
 
@@ -162,6 +224,8 @@ def read_task_record(path) -> Optional[str]:
         with Reader(Path(path)) as reader:
             conns = [c for c in reader.connections if c.msgtype == 'std_msgs/msg/String'
                      and c.topic.endswith('task_record')]
+            if not conns:                  # (no connections would read every message)
+                return None
             for conn, _, raw in reader.messages(connections=conns):
                 return typestore().deserialize_cdr(raw, conn.msgtype).data
     except Exception as exc:  # noqa: BLE001 -- rosbags raises several types

@@ -12,6 +12,7 @@ shows learned weights carries the one-line caution of :mod:`pref_learner.safety`
 from __future__ import annotations
 
 import argparse
+import itertools
 import json
 import os
 import random
@@ -185,7 +186,7 @@ def cmd_watch(args) -> int:
 
 # ---------------------------------------------------------------- learn
 def cmd_learn(args) -> int:
-    from .bags import BagWriter, estimate_arrays, read_stream
+    from .bags import BagDamaged, BagWriter, estimate_arrays, read_stream, replay_bag
     from .learner import Learner, StepResult
     bag = Path(args.bag)
     if not bag.exists():
@@ -197,33 +198,52 @@ def cmd_learn(args) -> int:
         cfg, node_only = session_config(args, state_dir=str(out / 'state'))
     except ValueError as exc:
         raise CliError(str(exc)) from None
-    events = list(read_stream(bag))
-    from .progress import progress
-    events_iter = progress(events, 'learning')
-    if not any(e.kind == 'joint_states' for e in events):
+    # streamed (an hour of 1 kHz joint states is gigabytes as a list); the first event is
+    # read before anything is written, so a bag that cannot be read leaves no output
+    events = read_stream(bag)
+    try:
+        first = next(events, None)
+    except ValueError:
+        raise
+    except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
+        raise CliError(f'bag {bag} cannot be read: {type(exc).__name__}: {exc}') from None
+    if first is None:
         raise CliError(f'bag {bag} has no joint states')
+    from .progress import progress
     L = Learner(cfg, task=_bag_task(args, bag))
     L.recorder.set_max_skew(float(node_only.get('max_stamp_skew', 0.0)))
     w = BagWriter(out / 'estimates')
     n_ok = 0
+    notes = []
+
+    def write_estimates(outputs, event):
+        nonlocal n_ok
+        for r in outputs:
+            if isinstance(r, StepResult):
+                n_ok += 1
+                for m, post in L.posteriors.items():
+                    pre = '' if len(L.posteriors) == 1 else f'{m}/'
+                    for topic, (data, dims) in estimate_arrays(post.summary(), post).items():
+                        w.write(f'/pref_learner/{pre}{topic}', w.float_array(data, dims),
+                                event.log_ns)
     try:
-        for e in events_iter:
-            res = (L.feed(e.stamp_ns, e.names, e.positions, e.log_ns) if e.kind == 'joint_states'
-                   else L.set_teaching(e.value))
-            for r in res:
-                if isinstance(r, StepResult):
-                    n_ok += 1
-                    for m, post in L.posteriors.items():
-                        pre = '' if len(L.posteriors) == 1 else f'{m}/'
-                        for topic, (data, dims) in estimate_arrays(post.summary(), post).items():
-                            w.write(f'/pref_learner/{pre}{topic}', w.float_array(data, dims),
-                                    e.log_ns)
+        notes = replay_bag(L, progress(itertools.chain([first], events), 'learning'),
+                           write_estimates).notes
+    except BagDamaged as exc:          # what came before the damage is learned
+        notes = [str(exc)]
     finally:
         w.close()
+    if n_ok == 0:
+        why = sorted({r['reason'] for r in L.rejections})
+        raise CliError(f'learned no demonstration from bag {bag}'
+                       + (f' ({len(L.rejections)} rejected: {", ".join(why)})' if why else '')
+                       + ''.join(f'; {n}' for n in notes))
+    for note in notes:
+        print(f'note: {note}', file=sys.stderr)
     sums = L.summaries()
     print(CAUTION, file=sys.stderr)
     print(json.dumps({'demonstrations': n_ok, 'rejected': len(L.rejections),
-                      'feature_names': list(L.names),
+                      'feature_names': list(L.names), 'notes': notes,
                       'weights': {m: s.mean.tolist() for m, s in sums.items()}}, indent=1))
     return 0
 

@@ -447,42 +447,21 @@ def _replay_state_dir(path: Path, L, notes: list, rows: list) -> None:
 def _replay_bag(path: Path, L, max_skew: float, notes: list, rows: list) -> None:
     """Feed a bag's joint states and teaching signals to the learner, as ``learn`` does.
 
-    Appends one row per demonstration to ``rows`` (kept when the session fails).
+    Appends one row per demonstration to ``rows`` (kept when the session fails);
+    a bag that cannot be read to its end fails the session.
     """
-    from .bags import read_stream
+    from .bags import BagDamaged, read_stream, replay_bag
     if max_skew > 0:
         L.recorder.set_max_skew(max_skew)
-    n_msgs = n_teach = 0
-    first_names = None
-    it = iter(read_stream(path))
-    while True:
-        try:
-            e = next(it)
-        except StopIteration:
-            break
-        except ValueError as exc:
-            raise _Failed(f'corrupt or unreadable bag: {exc}') from None
-        except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
-            raise _Failed(f'corrupt bag (after {n_msgs} messages): '
-                          f'{type(exc).__name__}: {exc}') from None
-        n_msgs += 1
-        if e.kind == 'joint_states':
-            if first_names is None:
-                first_names = e.names
-            out = L.feed(e.stamp_ns, e.names, e.positions, e.log_ns)
-        else:
-            n_teach += 1
-            out = L.set_teaching(e.value)
-        _collect(out, L, rows)
-    counters = L.recorder.counters
-    if L.n_demonstrations == 0 and counters['missing_joint'] and not counters['samples']:
-        raise _Failed(f'wrong robot: the bag\'s joint states name {list(first_names or ())}, '
-                      f'the study\'s chain needs {list(L.robot.joint_names)}')
-    if L.recorder.recording:
-        notes.append('the bag ends during a demonstration; that part is not learned')
-    if L.config.segmentation == 'signal' and n_teach == 0:
-        notes.append('the bag has no teaching signal (a std_msgs/Bool topic ending in '
-                     '"teaching"); set segmentation: motion in the parameters file')
+    try:
+        rep = replay_bag(L, read_stream(path), lambda out, _: _collect(out, L, rows))
+    except BagDamaged as exc:
+        raise _Failed(f'corrupt bag: {exc}') from None
+    except ValueError as exc:
+        reason = str(exc)
+        raise _Failed(reason if reason.startswith('wrong robot')
+                      else f'corrupt or unreadable bag: {reason}') from None
+    notes.extend(rep.notes)
 
 
 def _estimates(L) -> dict:

@@ -114,6 +114,71 @@ def test_bad_input_one_line_exit_2(tmp_path):
     assert 'Traceback' not in r.stderr
 
 
+def _teacher_bag(path, n, **kw):
+    """A bag as a robot's own recorder writes it: joint states and teaching, no task record."""
+    from pref_learner.features import load_scenario
+    from pref_learner.learner import LearnerConfig
+    from pref_learner.sim import SimulatedTeacher, TeacherConfig
+    from pref_learner.task import TaskModel
+    task = TaskModel.from_config(LearnerConfig(n_alternatives=1))
+    return SimulatedTeacher(task, load_scenario()['example_preference'],
+                            TeacherConfig(seed=4)).write_bag(path, n, **kw)
+
+
+def test_learn_a_bag_from_a_robots_own_recorder(tmp_path):
+    # no task record in the bag (only a learner node records one): the robot options or
+    # the shipped arm; a damaged bag is named in one line and leaves no output
+    bag = _teacher_bag(tmp_path / 'own', 2)
+    small = ['--particles', '300', '--alternatives', '40']
+    r = run(['learn', str(bag), '--out', str(tmp_path / 'o'), *small])
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)['demonstrations'] == 2
+    mcap = next(bag.glob('*.mcap'))
+    data = mcap.read_bytes()
+    cut = int(len(data) * 0.75)                  # a damaged chunk (the reader checks them all)
+    mcap.write_bytes(data[:cut] + b'\xff' * 4096 + data[cut + 4096:])
+    r = run(['learn', str(bag), '--out', str(tmp_path / 'o2'), *small])
+    assert r.returncode == 2 and r.stderr.count('\n') == 1, r.stderr
+    assert f'bag {bag} cannot be read' in r.stderr and not (tmp_path / 'o2').exists()
+
+
+def test_replay_keeps_what_came_before_a_read_error(tmp_path):
+    # a storage error part-way (a disk, a truncated copy): the demonstrations before it are
+    # learned, and the error says how far the bag was read
+    from pref_learner.bags import BagDamaged, replay_bag
+    from pref_learner.learner import Learner, LearnerConfig
+    events = list(read_stream(_teacher_bag(tmp_path / 'own', 2)))
+    half = next(i for i, e in enumerate(events) if i and e.kind == 'teaching' and e.value)
+
+    def failing():
+        yield from events[:half + 10]
+        raise OSError(5, 'Input/output error')
+    L = Learner(LearnerConfig(n_particles=200, n_alternatives=30))
+    with pytest.raises(BagDamaged, match=rf'damaged after {half + 10} messages \(OSError'):
+        replay_bag(L, failing())
+    assert L.n_demonstrations == 1 and L.recorder.recording
+
+
+def test_learn_says_why_it_learned_nothing(tmp_path):
+    # another robot's joints, or no teaching signal: exit 2 with the reason, never the
+    # prior's mean printed as if it were learned
+    other = _teacher_bag(tmp_path / 'other', 1, joint_names=[f'other_{i}' for i in range(7)])
+    r = run(['learn', str(other), '--out', str(tmp_path / 'o'), '--particles', '300',
+             '--alternatives', '40'])
+    last = r.stderr.strip().splitlines()[-1]       # after the rejections' log lines
+    assert r.returncode == 2 and 'Traceback' not in r.stderr, r.stderr
+    assert last.startswith("pref-learner learn: wrong robot: the bag's joint states name "
+                           "['other_0'"), last
+    silent = _teacher_bag(tmp_path / 'silent', 1, teaching_topic='/elsewhere')
+    r = run(['learn', str(silent), '--out', str(tmp_path / 'o2'), '--particles', '300',
+             '--alternatives', '40'])
+    last = r.stderr.strip().splitlines()[-1]
+    assert r.returncode == 2 and 'Traceback' not in r.stderr, r.stderr
+    assert last.startswith('pref-learner learn: learned no demonstration') and \
+        'no teaching signal' in last, last
+    assert r.stdout == ''
+
+
 def test_argument_errors_are_one_line():
     for args in (['demo', '--model', 'softmax'], ['validate', '--bogus'], []):
         r = run(args)
