@@ -135,7 +135,8 @@ def read_stream(path, joint_topic: Optional[str] = None,
                              + (f' named {joint_topic}' if joint_topic else ''))
         if len({c.topic for c in js}) > 1:
             raise ValueError(f'bag {path} has several joint-state topics '
-                             f'{sorted({c.topic for c in js})}; choose one')
+                             f'{sorted({c.topic for c in js})}; choose one (learn and report: '
+                             '--joint-topic; study: joint_topic in the study: block)')
         tc = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool'
               and (c.topic == teaching_topic if teaching_topic else c.topic.endswith('teaching'))]
         js_ids = {c.id for c in js}

@@ -200,7 +200,7 @@ def cmd_learn(args) -> int:
         raise CliError(str(exc)) from None
     # streamed (an hour of 1 kHz joint states is gigabytes as a list); the first event is
     # read before anything is written, so a bag that cannot be read leaves no output
-    events = read_stream(bag)
+    events = read_stream(bag, args.joint_topic, args.teaching_topic)
     try:
         first = next(events, None)
     except ValueError:
@@ -372,6 +372,10 @@ def _learning_options(p, choices=None, session: bool = False) -> None:
         p.add_argument('--joints', nargs='+', metavar='JOINT',
                        help='chain joints in order (default: root to the tool frame)')
         p.add_argument('--tool-frame', help='frame the features read by default (tool_tip)')
+        p.add_argument('--joint-topic', help='the bag\'s sensor_msgs/JointState topic '
+                       '(default: its only one)')
+        p.add_argument('--teaching-topic', help='the bag\'s std_msgs/Bool teaching signal '
+                       '(default: any Bool topic whose name ends in "teaching")')
 
 
 def _bag_task(args, bag: Path):
@@ -496,6 +500,7 @@ def build_parser() -> argparse.ArgumentParser:
     lrn.add_argument('bag')
     lrn.add_argument('--out', required=True, help='new directory for state and estimates bag')
     _learning_options(lrn, session=True)
+    _feature_module_option(lrn)
     lrn.set_defaults(func=cmd_learn)
 
     v = sub.add_parser('validate', help='the validation studies of the two choice models')
@@ -510,7 +515,8 @@ def build_parser() -> argparse.ArgumentParser:
     st.add_argument('folder', help='one state directory or rosbag2 bag per participant')
     st.add_argument('--params', required=True, metavar='PARAMS.yaml',
                     help='learner settings (flat keys or a ROS 2 params file) and an optional '
-                    'study: block (group_angle, min_group, n_groups, leave_one_out)')
+                    'study: block (group_angle, min_group, n_groups, leave_one_out, joint_topic, '
+                    'teaching_topic)')
     st.add_argument('--out', required=True, help='new directory for report, tables, summary')
     _executor_options(st, 'participants')
     _feature_module_option(st)

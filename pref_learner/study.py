@@ -62,7 +62,8 @@ QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 #: one BLAS thread per worker process (set before the worker imports numpy)
 WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THREADS': '1'}
 #: the parameters file's ``study:`` block and its defaults
-STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True}
+STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True,
+                  'joint_topic': '', 'teaching_topic': ''}
 
 
 # ================================================================ executors
@@ -214,6 +215,8 @@ class StudySettings:
     n_groups: int = 0
     leave_one_out: bool = True
     max_stamp_skew: float = 0.0
+    joint_topic: str = ''
+    teaching_topic: str = ''
     notes: Tuple[str, ...] = ()
     source: str = ''
 
@@ -290,6 +293,8 @@ def load_settings(path) -> StudySettings:
     out = StudySettings(learner=learner, seed=seed, group_angle=float(s['group_angle']),
                         min_group=int(s['min_group']), n_groups=int(s['n_groups']),
                         leave_one_out=bool(s['leave_one_out']), max_stamp_skew=max_skew,
+                        joint_topic=str(s['joint_topic'] or ''),
+                        teaching_topic=str(s['teaching_topic'] or ''),
                         notes=tuple(notes), source=f'{path} ({where})')
     if not 0.0 < out.group_angle < 180.0:
         raise ValueError(f'parameters file {path}: study.group_angle must be in (0, 180) '
@@ -313,6 +318,8 @@ class ParticipantTask:
     leave_one_out: bool = True
     max_stamp_skew: float = 0.0
     feature_modules: Tuple[str, ...] = ()
+    joint_topic: str = ''
+    teaching_topic: str = ''
 
 
 def participant_seed(study_seed: int, participant: str) -> int:
@@ -444,17 +451,18 @@ def _replay_state_dir(path: Path, L, notes: list, rows: list) -> None:
             rows.append(_rejected_row('quarantined', f'{q.name}: {why}', origin='session'))
 
 
-def _replay_bag(path: Path, L, max_skew: float, notes: list, rows: list) -> None:
+def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list) -> None:
     """Feed a bag's joint states and teaching signals to the learner, as ``learn`` does.
 
     Appends one row per demonstration to ``rows`` (kept when the session fails);
     a bag that cannot be read to its end fails the session.
     """
     from .bags import BagDamaged, read_stream, replay_bag
-    if max_skew > 0:
-        L.recorder.set_max_skew(max_skew)
+    if task.max_stamp_skew > 0:
+        L.recorder.set_max_skew(task.max_stamp_skew)
+    events = read_stream(path, task.joint_topic or None, task.teaching_topic or None)
     try:
-        rep = replay_bag(L, read_stream(path), lambda out, _: _collect(out, L, rows))
+        rep = replay_bag(L, events, lambda out, _: _collect(out, L, rows))
     except BagDamaged as exc:
         raise _Failed(f'corrupt bag: {exc}') from None
     except ValueError as exc:
@@ -534,7 +542,7 @@ def analyse_participant(task: ParticipantTask) -> dict:
         if kind == 'state_dir':
             _replay_state_dir(Path(task.path), L, notes, rows)
         else:
-            _replay_bag(Path(task.path), L, task.max_stamp_skew, notes, rows)
+            _replay_bag(Path(task.path), L, task, notes, rows)
         if L.n_demonstrations == 0:
             why = sorted({r['reason'] for r in rows})
             raise _Failed('no accepted demonstration' + (
@@ -932,7 +940,8 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
     tasks = [ParticipantTask(p, str(path.resolve()), dict(settings.learner),
                              participant_seed(settings.seed, p),
                              settings.leave_one_out, settings.max_stamp_skew,
-                             tuple(feature_modules)) for p, path in sessions]
+                             tuple(feature_modules), settings.joint_topic,
+                             settings.teaching_topic) for p, path in sessions]
     executor = make_executor(workers, scheduler)
     raw = executor.map(analyse_participant, tasks, 'participants')
     results = []

@@ -142,6 +142,42 @@ def test_learn_a_bag_from_a_robots_own_recorder(tmp_path):
     assert f'bag {bag} cannot be read' in r.stderr and not (tmp_path / 'o2').exists()
 
 
+def test_learn_chooses_among_several_joint_state_topics(tmp_path):
+    # `ros2 bag record -a` on a robot often holds more than one JointState topic
+    bag = _teacher_bag(tmp_path / 'two', 1, joint_topic='/arm/joint_states',
+                       teaching_topic='/bench/teach_mode')
+    with BagWriter(tmp_path / 'grip') as w:     # a second topic, merged into a copy
+        w.write('/gripper/joint_states', w.joint_state(1, ['finger'], [0.0]), 1)
+    from rosbags.rosbag2 import Reader, Writer
+    both = tmp_path / 'both'
+    with Writer(both, version=9) as out:
+        for src in (bag, tmp_path / 'grip'):
+            with Reader(src) as rd:
+                conns = {c.id: out.add_connection(c.topic, c.msgtype, typestore=None,
+                                                  msgdef=c.msgdef.data, rihs01=c.digest)
+                         for c in rd.connections}
+                for c, t, raw in rd.messages():
+                    out.write(conns[c.id], t, raw)
+    small = ['--particles', '300', '--alternatives', '40']
+    r = run(['learn', str(both), '--out', str(tmp_path / 'o'), *small])
+    assert r.returncode == 2 and 'several joint-state topics' in r.stderr
+    assert '--joint-topic' in r.stderr
+    r = run(['learn', str(both), '--out', str(tmp_path / 'o2'), *small,
+             '--joint-topic', '/arm/joint_states', '--teaching-topic', '/bench/teach_mode'])
+    assert r.returncode == 0, r.stderr
+    assert json.loads(r.stdout)['demonstrations'] == 1
+    # a study names them in its study: block
+    from pref_learner.study import ParticipantTask, analyse_participant, load_settings
+    params = tmp_path / 'study.yaml'
+    params.write_text('n_particles: 300\nn_alternatives: 40\nstudy:\n'
+                      '  joint_topic: /arm/joint_states\n  teaching_topic: /bench/teach_mode\n')
+    st = load_settings(params)
+    res = analyse_participant(ParticipantTask('p', str(both), st.learner, 1, False,
+                                              joint_topic=st.joint_topic,
+                                              teaching_topic=st.teaching_topic))
+    assert res['status'] == 'ok' and res['n_accepted'] == 1, res.get('reason')
+
+
 def test_replay_keeps_what_came_before_a_read_error(tmp_path):
     # a storage error part-way (a disk, a truncated copy): the demonstrations before it are
     # learned, and the error says how far the bag was read
