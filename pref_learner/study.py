@@ -349,8 +349,10 @@ def find_sessions(folder) -> List[Tuple[str, Path]]:
     folder = Path(folder)
     if not folder.is_dir():
         raise ValueError(f'study folder {folder} is not a directory')
-    return [(p.name, p) for p in sorted(folder.iterdir())
-            if p.is_dir() and not p.name.startswith('.')]
+    # a name that is not UTF-8 (bytes of an older system) is shown with those bytes escaped,
+    # so that reports, tables and seeds can take it; the path is the file system's own
+    return [(os.fsencode(p.name).decode('utf-8', 'backslashreplace'), p)
+            for p in sorted(folder.iterdir()) if p.is_dir() and not p.name.startswith('.')]
 
 
 class _Failed(Exception):

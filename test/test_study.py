@@ -301,3 +301,17 @@ def test_parameters_files(tmp_path):
     r = subprocess.run(CLI + ['study', str(tmp_path), '--params', str(bad), '--out',
                               str(tmp_path / 'o')], capture_output=True, text=True, timeout=120)
     assert r.returncode == 2 and r.stderr.count('\n') == 1, r.stderr
+
+
+def test_a_folder_name_that_is_not_utf8_is_a_participant_like_any_other(tmp_path):
+    # Linux file names are bytes: an old system's Latin-1 name must not stop the study
+    import os
+
+    from pref_learner.study import find_sessions, participant_seed
+    os.mkdir(os.path.join(os.fsencode(tmp_path), b'm\xfcller'))
+    (tmp_path / 'ok').mkdir()
+    found = dict(find_sessions(tmp_path))
+    assert set(found) == {'m\\xfcller', 'ok'}               # shown with the byte escaped
+    assert found['m\\xfcller'].is_dir()                      # and still read from disk
+    assert participant_seed(0, 'm\\xfcller') != participant_seed(0, 'ok')
+    assert participant_seed(0, "ok") == 1886515590            # UTF-8 names keep their seeds
