@@ -502,6 +502,8 @@ MIN_EXPANDED = 4
 TRUST_REACH = 1.5
 #: particles per block when a set's log-likelihood is evaluated
 _PARTICLE_BLOCK = 1024
+#: most tempering steps of one update; the last one weighs in whatever is left
+MAX_TEMPERING_STEPS = 200
 #: exponents are clipped here (e^-700 is far below any sum's rounding, above subnormals)
 _LOG_TINY = -700.0
 #: records expanded per block (bounds the temporary (rows, d^2) arrays to a few MB)
@@ -987,7 +989,9 @@ class ExpansionMoveLikelihood(MoveLikelihood):
         expansions, splits, means, worsts, inner, screens = [], [], [], [], [], []
         r_picks = r[picks]
         for g in range(cfg.n_levels):
-            split, found, reach = len(post.records), None, np.inf
+            # the checks reach the outermost particle: beyond it (out to the trust
+            # region's edge) points are scored exactly
+            split, found, reach = len(post.records), None, float(r_picks.max())
             for _ in range(3):
                 prefix = post.records[:split]
                 ex = expand_loglik(prefix, g, anchor, less)
@@ -1518,13 +1522,16 @@ class ParticlePosterior:
             if not isinstance(record, ChoiceRecord) or ll.shape != (self.n_particles,):
                 raise ValueError('loglik needs the ChoiceRecord it was weighed from and one '
                                  f'value per particle ({self.n_particles})')
+            if not np.all(np.isfinite(ll)):
+                raise ValueError('the demonstration has a non-finite log-likelihood for some '
+                                 'particles (loglik)')
         n = self.n_particles
         cur = self
         phi, steps, rounds = 0.0, 0, 0
         accs, errs, moved = [], [], float('nan')
         ess0 = float('nan')
         resampled = False
-        while phi < 1.0 and steps < 200:
+        while phi < 1.0:
             if on_provisional is not None:
                 ess_rest = ess_from_log_weights(cur.log_weights + (1.0 - phi) * ll)
                 if provisional_ess <= ess_rest < self.config.ess_target * n:
@@ -1532,6 +1539,8 @@ class ParticlePosterior:
                     on_provisional = None
             delta = _next_temperature(cur.log_weights, ll, 1.0 - phi,
                                       self.config.ess_target * n)
+            if steps == MAX_TEMPERING_STEPS - 1:     # the last step allowed takes the rest
+                delta = 1.0 - phi
             phi = 1.0 if phi + delta >= 1.0 - 1e-12 else phi + delta
             steps += 1
             log_w = log_normalise(cur.log_weights + delta * ll)
@@ -1549,7 +1558,7 @@ class ParticlePosterior:
                     rounds += r_
         new = replace(cur, log_lik=cur.log_lik + ll, records=self.records + (record,),
                       moves_pending=False)
-        if resampled:
+        if resampled or self.moves_pending:     # copies this or an earlier update left
             if move:
                 new, _, acc, r_, moved = new._move(rng, None, 0.0, None)
                 accs.append(acc)
@@ -1594,7 +1603,9 @@ class ParticlePosterior:
         when the mean absolute error there is at most ``expansion_tol`` and the
         largest at most :data:`MAX_ERROR_FACTOR` times that. When only the
         cloud's edge fails, it is used inside the largest checked radius below
-        the first failure (``inner[g]``) and points beyond are scored exactly.
+        the first failure (``inner[g]``) and points beyond are scored exactly;
+        when every check passes, ``inner[g]`` is the outermost particle's
+        radius, so nothing the checks did not reach is expanded.
         Otherwise (the cloud still wide, or the level's options spread wide) that level's
         oldest sets alone are expanded, as many as the errors suggest (they
         grow about in proportion), and checked again, at most three times; the

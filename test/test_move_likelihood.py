@@ -346,6 +346,28 @@ def test_only_the_clouds_edge_failing_keeps_the_expansion_inside_and_exact_beyon
     assert target.error_max <= MAX_ERROR_FACTOR * cfg.expansion_tol
 
 
+def test_beyond_the_outermost_checked_particle_the_likelihood_is_exact():
+    # The check visits radii up to the outermost particle's; the trust region reaches
+    # TRUST_REACH times further. A fourth-order remainder grows with the fifth power of
+    # the radius (Taylor), unchecked out there: points beyond the checked radius are
+    # scored exactly. Reference: the exact per-set sum (total_loglik).
+    from pref_learner.posterior import TRUST_REACH
+    cfg, p = _two_level_cloud(9, 'boltzmann', 4.0, 0.2)
+    target = p.move_target(p.theta, p.beta, p.level)
+    assert target.expansions[0] is not None                  # level 0 passed its check
+    at0 = np.flatnonzero(p.level == 0)
+    u = p.beta[at0, None] * p.theta[at0]
+    r = target.radii(u)
+    out = at0[np.argsort(r)[-5:]]                            # the outermost of level 0
+    uo = p.beta[out, None] * p.theta[out]
+    far = target.anchor + 0.5 * (1.0 + TRUST_REACH) * (uo - target.anchor)
+    assert np.all(target.radii(far) > r.max()) and np.all(target.radii(far) < target.radius)
+    b = np.linalg.norm(far, axis=1)
+    lev = np.zeros(len(far), dtype=np.int64)
+    np.testing.assert_allclose(target(far / b[:, None], b, lev),
+                               p.total_loglik(far / b[:, None], b, lev), rtol=1e-12, atol=1e-9)
+
+
 def test_tempering_without_moves_between_steps_matches_quadrature():
     # tempering_move_rounds = 0: the steps only reweight and resample, every move comes
     # after the demonstration is weighed in. One sharp demonstration (beta 40, several

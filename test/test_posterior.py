@@ -353,6 +353,47 @@ def test_tempered_update_of_a_sharp_demonstration_matches_quadrature(model):
     assert np.all(np.isfinite(post.theta))
 
 
+def test_the_last_tempering_step_allowed_weighs_in_the_rest(monkeypatch):
+    # Were the step cap reached with part of the demonstration still out, the posterior
+    # would store its record but miss that part: the last step allowed takes the rest
+    # (quadrature on the circle, as above, is the reference)
+    import pref_learner.posterior as posterior_module
+    monkeypatch.setattr(posterior_module, 'MAX_TEMPERING_STEPS', 2)
+    x, c, rng = _sharp_circle_demonstration()
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=8000, model='boltzmann',
+                                                    beta=40.0), 2, rng)
+    post, info = post.update((x, c), rng)
+    assert info.tempering_steps == 2
+    np.testing.assert_allclose(post.weights @ post.theta,
+                               _exact_circle_mean('boltzmann', x, c, 40.0), atol=0.02)
+
+
+def test_moves_left_pending_are_not_dropped_by_the_next_update():
+    # update(move=False) leaves duplicated particles for rejuvenate(); an update that
+    # comes first and does not resample must keep them pending (or run them), never
+    # clear the flag with the copies unmoved (common practice: SMC rejuvenation)
+    x, c, rng = _sharp_circle_demonstration()
+    cfg = PosteriorConfig(n_particles=2000, model='boltzmann', beta=40.0)
+    post = ParticlePosterior.create(cfg, 2, rng)
+    pending, info = post.update((x, c), rng, move=False)
+    assert info.resampled and pending.moves_pending
+    distinct = len(np.unique(pending.theta, axis=0))
+    mild = (np.array([[0.0, 0.0], [1e-3, 0.0]]), 0)         # almost no information
+    later, info = pending.update(mild, rng, move=False)
+    assert not info.resampled and later.moves_pending
+    moved, info = pending.update(mild, rng)
+    assert not moved.moves_pending and len(np.unique(moved.theta, axis=0)) > distinct
+
+
+def test_a_given_loglik_is_checked_as_a_weighed_one():
+    x, c, rng = _sharp_circle_demonstration()
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=200, model='boltzmann'), 2, rng)
+    rec, ll = post.weigh((x, c))
+    ll[3] = np.nan
+    with pytest.raises(ValueError, match='non-finite log-likelihood'):
+        post.update(rec, rng, loglik=ll)
+
+
 def test_option_levels_and_near_optimal_alternatives():
     # Near-optimal draws climb the reward of their weights (each ascent step is along a
     # smoothed gradient), and every alternative carries its option level. The weight is on
