@@ -358,6 +358,9 @@ class ChoiceRecord:
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
+        if k < 2:
+            raise ValueError(f'a choice needs the demonstration and at least one alternative '
+                             f'(K >= 2), got K = {k}')
         if deviation is not None and density == 'modes':
             deviation = np.asarray(deviation, dtype=np.float64)
             if deviation.ndim != 3 or deviation.shape[0] != k \

@@ -385,6 +385,14 @@ def test_moves_left_pending_are_not_dropped_by_the_next_update():
     assert not moved.moves_pending and len(np.unique(moved.theta, axis=0)) > distinct
 
 
+def test_a_set_without_alternatives_is_refused():
+    # a set of the demonstration alone carries no choice (its likelihood is 1 for every
+    # weight) and broke the moves' screen once stored
+    from pref_learner.posterior import ChoiceRecord
+    with pytest.raises(ValueError, match='at least one alternative'):
+        ChoiceRecord.build(np.ones((1, 3)), 0, with_similarity=False)
+
+
 def test_a_given_loglik_is_checked_as_a_weighed_one():
     x, c, rng = _sharp_circle_demonstration()
     post = ParticlePosterior.create(PosteriorConfig(n_particles=200, model='boltzmann'), 2, rng)
