@@ -13,6 +13,7 @@ publishes (the same types, names and layouts).
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable, Iterator, List, Optional, Sequence, Tuple
@@ -27,9 +28,19 @@ def typestore():
     return get_typestore(Stores(STORE))
 
 
+#: a learner node's session events (std_msgs/String on ``~/session_events``, only in its
+#: bags): a service that changed what is learned, or a run-time setting
+SESSION_EVENTS = ('start', 'stop', 'discard_last', 'reset', 'segmentation', 'max_stamp_skew')
+
+
 @dataclass(frozen=True)
 class StreamEvent:
-    """One input of the learner: kind 'joint_states' or 'teaching'."""
+    """One input of the learner: kind 'joint_states', 'teaching', 'event' or 'trajectory'.
+
+    ``event``: ``text`` is a :data:`SESSION_EVENTS` word, then JSON for the
+    settings ones; ``trajectory`` (a whole demonstration on ``~/demonstration``):
+    ``names``, ``positions (points, joints)`` and ``times`` (time_from_start, s).
+    """
 
     kind: str
     log_ns: int
@@ -37,6 +48,8 @@ class StreamEvent:
     names: Tuple[str, ...] = ()
     positions: Optional[np.ndarray] = None
     value: bool = False
+    text: str = ''
+    times: Optional[np.ndarray] = None
 
 
 class BagWriter:
@@ -139,15 +152,30 @@ def read_stream(path, joint_topic: Optional[str] = None,
                              '--joint-topic; study: joint_topic in the study: block)')
         tc = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool'
               and (c.topic == teaching_topic if teaching_topic else c.topic.endswith('teaching'))]
-        js_ids = {c.id for c in js}
-        for conn, log_ns, raw in reader.messages(connections=js + tc):
+        # what a learner node records besides: its session events and whole demonstrations
+        ev = [c for c in conns if c.msgtype == 'std_msgs/msg/String'
+              and c.topic.endswith('session_events')]
+        tr = [c for c in conns if c.msgtype == 'trajectory_msgs/msg/JointTrajectory'
+              and c.topic.endswith('/demonstration')]
+        js_ids, ev_ids = {c.id for c in js}, {c.id for c in ev}
+        tc_ids = {c.id for c in tc}
+        for conn, log_ns, raw in reader.messages(connections=js + tc + ev + tr):
             msg = ts.deserialize_cdr(raw, conn.msgtype)
             if conn.id in js_ids:
                 st = msg.header.stamp
                 yield StreamEvent('joint_states', int(log_ns), st.sec * 10**9 + st.nanosec,
                                   tuple(msg.name), np.asarray(msg.position, dtype=np.float64))
-            else:
+            elif conn.id in tc_ids:
                 yield StreamEvent('teaching', int(log_ns), value=bool(msg.data))
+            elif conn.id in ev_ids:
+                yield StreamEvent('event', int(log_ns), text=str(msg.data))
+            else:
+                pts = msg.points
+                yield StreamEvent(
+                    'trajectory', int(log_ns), names=tuple(msg.joint_names),
+                    positions=[np.asarray(p.positions, dtype=np.float64) for p in pts],
+                    times=np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9
+                                    for p in pts]))
     finally:
         reader.close()
 
@@ -197,9 +225,11 @@ def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay
             if first_names is None:
                 first_names = e.names
             out = learner.feed(e.stamp_ns, e.names, e.positions, e.log_ns)
-        else:
+        elif e.kind == 'teaching':
             rep.teaching_signals += 1
             out = learner.set_teaching(e.value)
+        else:
+            out = _session_input(learner, e, rep)
         if on_output is not None:
             on_output(out, e)
     counters = learner.recorder.counters
@@ -212,6 +242,38 @@ def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay
         rep.notes.append('the bag has no teaching signal (a std_msgs/Bool topic ending in '
                          '"teaching"); set segmentation: motion in a parameters file')
     return rep
+
+
+def _session_input(learner, e: StreamEvent, rep: Replay) -> list:
+    """Apply a recorded session event or whole demonstration, as the node did."""
+    from dataclasses import replace as _replace
+
+    from .demonstrations import DemonstrationError, trajectory_demonstration
+    if e.kind == 'trajectory':
+        try:
+            demo = trajectory_demonstration(e.names, e.positions, e.times,
+                                            learner.robot.joint_names)
+        except DemonstrationError as exc:     # the node refused it too (bad_trajectory)
+            rep.notes.append(f'a ~/demonstration at log time {e.log_ns} ns {exc}; not learned')
+            return []
+        return learner.add_demonstration(demo)
+    word, _, arg = e.text.partition(' ')
+    if word == 'start':
+        return learner.start()
+    if word == 'stop':
+        return learner.stop()
+    if word == 'discard_last':
+        learner.discard_last()
+    elif word == 'reset':
+        learner.reset()
+    elif word == 'segmentation':
+        learner.reconfigure_segmentation(_replace(learner.config, **json.loads(arg)))
+    elif word == 'max_stamp_skew':
+        learner.recorder.set_max_skew(float(json.loads(arg)))
+    else:
+        rep.notes.append(f'session event {e.text!r} at log time {e.log_ns} ns is unknown; '
+                         'skipped')
+    return []
 
 
 def read_task_record(path) -> Optional[str]:

@@ -233,16 +233,17 @@ def cmd_learn(args) -> int:
         notes = [str(exc)]
     finally:
         w.close()
-    if n_ok == 0:
+    if L.n_demonstrations == 0:
         why = sorted({r['reason'] for r in L.rejections})
         raise CliError(f'learned no demonstration from bag {bag}'
+                       + (f' ({n_ok} learned, then discarded or reset)' if n_ok else '')
                        + (f' ({len(L.rejections)} rejected: {", ".join(why)})' if why else '')
                        + ''.join(f'; {n}' for n in notes))
     for note in notes:
         print(f'note: {note}', file=sys.stderr)
     sums = L.summaries()
     print(CAUTION, file=sys.stderr)
-    print(json.dumps({'demonstrations': n_ok, 'rejected': len(L.rejections),
+    print(json.dumps({'demonstrations': L.n_demonstrations, 'rejected': len(L.rejections),
                       'feature_names': list(L.names), 'notes': notes,
                       'weights': {m: s.mean.tolist() for m, s in sums.items()}}, indent=1))
     return 0

@@ -105,6 +105,32 @@ class Demonstration:
                    int(arrays['stamp_ns']))
 
 
+def trajectory_demonstration(joint_names, rows, times, chain: Sequence[str]) -> Demonstration:
+    """Return a demonstration given whole, as a ``trajectory_msgs/JointTrajectory`` has it.
+
+    ``joint_names`` and ``rows`` (one position list per point) in the
+    message's order, ``times`` the points' ``time_from_start`` in seconds;
+    the chain's joints are taken in its order. Raises
+    :class:`DemonstrationError` naming what is wrong (the text follows the
+    topic's name in a warning).
+    """
+    if len(rows) < 2:
+        raise DemonstrationError(f'has {len(rows)} points; needs >= 2')
+    names = list(joint_names)
+    missing = [j for j in chain if j not in names]
+    if missing:
+        raise DemonstrationError(f'lacks joint {missing[0]}')
+    idx = [names.index(j) for j in chain]
+    try:
+        q = np.array([[row[i] for i in idx] for row in rows], dtype=np.float64)
+    except IndexError:
+        raise DemonstrationError('points have fewer positions than joint_names') from None
+    t = np.asarray(times, dtype=np.float64)
+    if not np.all(np.isfinite(q)) or np.any(np.diff(t) <= 0):
+        raise DemonstrationError('has NaN positions or non-increasing time_from_start')
+    return Demonstration(t - t[0], q, tuple(chain))
+
+
 @dataclass(frozen=True)
 class Rejection:
     reason: str

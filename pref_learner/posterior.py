@@ -358,9 +358,6 @@ class ChoiceRecord:
         x = choice._check_matrix(features)
         c = choice._check_chosen(chosen, x.shape[0])
         k = x.shape[0]
-        if k < 2:
-            raise ValueError(f'a choice needs the demonstration and at least one alternative '
-                             f'(K >= 2), got K = {k}')
         if deviation is not None and density == 'modes':
             deviation = np.asarray(deviation, dtype=np.float64)
             if deviation.ndim != 3 or deviation.shape[0] != k \
@@ -1469,6 +1466,9 @@ class ParticlePosterior:
             sim = ChoiceRecord.build(record.features, record.chosen, self.config.bandwidth,
                                      True, record.groups, record.n_levels, 'gaussian')
             record = replace(sim, log_density=record.log_density)
+        if record.features.shape[0] < 2:     # no choice; once stored it broke the screen
+            raise ValueError('a demonstration needs at least one alternative to be chosen '
+                             f'over (K >= 2), got K = {record.features.shape[0]}')
         ll = self.record_loglik(record, self.theta, self.beta, self.level)
         if not np.all(np.isfinite(ll)):
             raise ValueError('the demonstration has a non-finite log-likelihood for some '

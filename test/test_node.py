@@ -192,3 +192,58 @@ def test_parameters_refused_with_reason():
     with ros_context() as (ctx, ex):
         with pytest.raises(Exception, match='allowed'):
             _node(ctx, model='softmax')
+
+
+def test_the_session_bag_holds_every_input_that_changed_what_was_learned(tmp_path):
+    # Besides joint states and teaching signals, a session changes by services
+    # (discard_last), whole demonstrations on ~/demonstration and run-time settings: the
+    # node records them, and `learn` of its bag ends where the node ended (1e-9)
+    from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+
+    from pref_learner.bags import read_stream
+    from pref_learner.cli import main as cli_main
+    from pref_learner.posterior import ParticlePosterior
+    bag, out = tmp_path / 'session', tmp_path / 'offline'
+    sizes = dict(n_particles=400, n_alternatives=60)
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, model='less', record_bag=str(bag), **sizes)
+        client = rclpy.create_node('session_client', context=ctx)
+        bg = spinning(node, ctx)
+        bg.__enter__()
+        ex.add_node(client)
+        names = list(node.learner.robot.joint_names)
+        teacher = SimulatedTeacher(Learner(LearnerConfig(n_particles=1, n_alternatives=1)),
+                                   TRUE, TeacherConfig(seed=8))
+        _teach(ex, client, node, teacher, 2, names)
+        discard = client.create_client(Trigger, '/pref_learner/discard_last')
+        assert discard.wait_for_service(timeout_sec=5.0)
+        f = discard.call_async(Trigger.Request())
+        assert spin_until(ex, f.done, 30) and f.result().success, f.result()
+        assert node.learner.n_demonstrations == 1
+        traj = client.create_publisher(JointTrajectory, '/pref_learner/demonstration', 10)
+        assert spin_until(ex, lambda: traj.get_subscription_count() > 0, 10)
+        _, path = teacher.choose(5)
+        msg = JointTrajectory()
+        msg.joint_names = names
+        for j, row in enumerate(path):
+            pt = JointTrajectoryPoint()
+            pt.positions = row.tolist()
+            pt.time_from_start.nanosec = int(3e9 * j / (len(path) - 1)) % 10**9
+            pt.time_from_start.sec = int(3.0 * j / (len(path) - 1))
+            msg.points.append(pt)
+        traj.publish(msg)
+        assert spin_until(ex, lambda: node.learner.n_demonstrations == 2, 30)
+        assert node.set_parameters([Parameter('min_duration', value=0.25)])[0].successful
+        assert spin_until(ex, lambda: node.config.min_duration == 0.25, 10)
+        live = node.learner.posteriors['less'].summary().mean
+        bg.__exit__(None, None, None)
+        node.destroy_node()                                  # closes the bag
+        client.destroy_node()
+    kinds = [(e.kind, e.text) for e in read_stream(bag) if e.kind in ('event', 'trajectory')]
+    assert kinds == [('event', 'discard_last'), ('trajectory', ''),
+                     ('event', 'segmentation {"min_duration": 0.25}')]
+    assert cli_main(['learn', str(bag), '--out', str(out), '--particles', '400',
+                     '--alternatives', '60']) == 0
+    off = ParticlePosterior.load(out / 'state' / 'posterior_less')
+    assert len(off.records) == 2
+    np.testing.assert_allclose(off.summary().mean, live, atol=1e-9)

@@ -388,9 +388,10 @@ def test_moves_left_pending_are_not_dropped_by_the_next_update():
 def test_a_set_without_alternatives_is_refused():
     # a set of the demonstration alone carries no choice (its likelihood is 1 for every
     # weight) and broke the moves' screen once stored
-    from pref_learner.posterior import ChoiceRecord
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=50), 3,
+                                    np.random.default_rng(0))
     with pytest.raises(ValueError, match='at least one alternative'):
-        ChoiceRecord.build(np.ones((1, 3)), 0, with_similarity=False)
+        post.update((np.ones((1, 3)), 0), np.random.default_rng(1))
 
 
 def test_a_given_loglik_is_checked_as_a_weighed_one():

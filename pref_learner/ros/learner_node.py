@@ -29,7 +29,7 @@ import json
 import threading
 import time
 from dataclasses import dataclass, fields
-from typing import Tuple
+from typing import Optional, Tuple
 
 import numpy as np
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
@@ -245,6 +245,8 @@ class LearnerNode(Node):
         self._make_interfaces()
         self._js_topic = self.resolve_topic_name('joint_states')
         self._teach_topic = self.resolve_topic_name('~/teaching')
+        self._traj_topic = self.resolve_topic_name('~/demonstration')
+        self._event_topic = self.resolve_topic_name('~/session_events')
         self._cache = {}
         self._latency = float('nan')
         self._publish_estimates()
@@ -359,7 +361,10 @@ class LearnerNode(Node):
             JointState, 'joint_states', self._on_joint_states, SENSOR_QOS, raw=True,
             qos_overriding_options=QoSOverridingOptions.with_default_policies())
         self.create_subscription(Bool, '~/teaching', self._on_teaching, 10)
-        self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10)
+        # raw, as joint_states: the bag keeps the bytes as they came (rclpy's
+        # serialize_message pads its buffer, which other CDR readers refuse)
+        self.create_subscription(JointTrajectory, '~/demonstration', self._on_trajectory, 10,
+                                 raw=True)
         self.create_subscription(JointTrajectory, '~/candidate_tasks', self._on_candidate, 10)
         self._pubs = {}
         prefixes = [''] if len(self.config.models) == 1 else [f'{m}/' for m in self.config.models]
@@ -435,7 +440,7 @@ class LearnerNode(Node):
     def _on_teaching(self, msg: Bool, info):
         self._enqueue(('teach', *self._received(info), bool(msg.data)))
 
-    def _on_trajectory(self, msg: JointTrajectory):
+    def _on_trajectory(self, msg: bytes):
         self._enqueue(('traj', self._now(), msg))
 
     def _on_candidate(self, msg: JointTrajectory):
@@ -541,11 +546,11 @@ class LearnerNode(Node):
                 return
             self._results(self.learner.feed(stamp, msg.name, msg.position, t))
         elif kind == 'traj':
-            self._handle_trajectory(item[2])
+            self._handle_trajectory(item[2], item[1])
         elif kind == 'srv':
             _, recv, what, done, box = item
             try:
-                box['ok'], box['message'] = self._service(what)
+                box['ok'], box['message'] = self._service(what, recv)
             except Exception as exc:  # noqa: BLE001 -- the caller gets the reason
                 box['ok'], box['message'] = False, f'{type(exc).__name__}: {exc}'
                 self._warn('internal_error', f'service {what}: {box["message"]}')
@@ -559,6 +564,8 @@ class LearnerNode(Node):
         elif kind == 'config':
             self._apply_runtime(item[1])
         elif kind == 'skew':
+            if item[1] != self.learner.recorder.stamp_config.max_skew:
+                self._event(f'max_stamp_skew {json.dumps(item[1])}')
             self.learner.recorder.set_max_skew(item[1])
         elif kind == 'flush':
             self._flush_queued = False
@@ -592,18 +599,25 @@ class LearnerNode(Node):
             self.get_logger().info('state directory writable again; pending writes done')
         self._storage_error = err
 
-    def _service(self, what):
+    def _event(self, text: str, recv: Optional[int] = None) -> None:
+        """Record a session event (``SESSION_EVENTS``) that changes what is learned."""
+        t = self._log_time(self._now() if recv is None else recv)
+        self._record(lambda bag: bag.write(self._event_topic, bag.string(text), t))
+
+    def _service(self, what, recv=None):
         L = self.learner
         if what == 'start':
             if L.recorder.recording:
                 self._warn('start_while_recording', 'already recording a demonstration')
                 return False, 'already recording a demonstration'
+            self._event('start', recv)
             L.start()
             return True, 'recording'
         if what == 'stop':
             if not L.recorder.recording:
                 self._warn('stop_without_start', 'not recording: call start_demonstration first')
                 return False, 'not recording: call start_demonstration first'
+            self._event('stop', recv)
             out = L.stop()
             self._results(out)
             r = out[-1] if out else None
@@ -612,6 +626,7 @@ class LearnerNode(Node):
             return True, f'stopped; rejected: {r.reason}: {r.detail}' if r else 'stopped'
         if what == 'reset':
             where = L.reset()
+            self._event('reset', recv)
             self._publish_estimates()
             self._propose()
             return True, f'reset; previous state archived in {where}' if where else 'reset'
@@ -625,37 +640,28 @@ class LearnerNode(Node):
         if what == 'discard':
             if not L.discard_last():
                 return False, 'no demonstration to discard'
+            self._event('discard_last', recv)
             self._publish_estimates()
             self._propose()
             return True, f'discarded; {L.n_demonstrations} demonstrations remain'
         return False, f'unknown request {what}'
 
-    def _handle_trajectory(self, msg: JointTrajectory):
-        from ..demonstrations import Demonstration
+    def _handle_trajectory(self, raw: bytes, recv: int):
+        from ..demonstrations import DemonstrationError, trajectory_demonstration
+        t = self._log_time(recv)
+        self._record(lambda bag: bag.write_raw(self._traj_topic,
+                                               'trajectory_msgs/msg/JointTrajectory', t, raw))
+        msg = deserialize_message(raw, JointTrajectory)
         pts = msg.points
-        if len(pts) < 2:
-            self._warn('bad_trajectory', f'~/demonstration has {len(pts)} points; needs >= 2')
-            return
-        names = list(msg.joint_names)
-        idx = []
-        for j in self.learner.robot.joint_names:
-            if j not in names:
-                self._warn('bad_trajectory', f'~/demonstration lacks joint {j}')
-                return
-            idx.append(names.index(j))
         try:
-            q = np.array([[p.positions[i] for i in idx] for p in pts], dtype=np.float64)
-        except IndexError:
-            self._warn('bad_trajectory', '~/demonstration points have fewer positions than '
-                       'joint_names')
+            demo = trajectory_demonstration(
+                msg.joint_names, [p.positions for p in pts],
+                [p.time_from_start.sec + p.time_from_start.nanosec * 1e-9 for p in pts],
+                self.learner.robot.joint_names)
+        except DemonstrationError as exc:
+            self._warn('bad_trajectory', f'~/demonstration {exc}')
             return
-        t = np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9 for p in pts])
-        if not np.all(np.isfinite(q)) or np.any(np.diff(t) <= 0):
-            self._warn('bad_trajectory', '~/demonstration has NaN positions or non-increasing '
-                       'time_from_start')
-            return
-        self._results(self.learner.add_demonstration(
-            Demonstration(t - t[0], q, self.learner.robot.joint_names)))
+        self._results(self.learner.add_demonstration(demo))
 
     def _apply_runtime(self, cfg: LearnerConfig):
         """Apply new segmentation settings; during a demonstration, after it ends."""
@@ -663,6 +669,10 @@ class LearnerNode(Node):
             self._pending_config = cfg
             return
         self._pending_config = None
+        changed = {f.name: getattr(cfg, f.name) for f in fields(LearnerConfig)
+                   if f.name in _RUNTIME and getattr(cfg, f.name) != getattr(self.config, f.name)}
+        if changed:
+            self._event(f'segmentation {json.dumps(changed)}')
         self.learner.reconfigure_segmentation(cfg)
         self.config = cfg
         self.get_logger().info('segmentation settings updated')
