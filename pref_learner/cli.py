@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .safety import CAUTION, SIMULATED_JOINT_STATES
+from .safety import CAUTION, SIMULATED_JOINT_STATES, keep_local, network_exposure
 
 
 class CliError(Exception):
@@ -43,14 +43,12 @@ def _ros_env(allow_network: bool) -> dict:
         os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
         os.environ.setdefault('ROS_DOMAIN_ID', domain)
         return dict(os.environ)
-    was = os.environ.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '')
-    peers = os.environ.pop('ROS_STATIC_PEERS', '')
-    os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
+    was = network_exposure()
+    keep_local(os.environ)
     os.environ['ROS_DOMAIN_ID'] = domain
-    if was.upper() not in ('LOCALHOST', '') or peers:
-        print(f'pref-learner demo: discovery forced to LOCALHOST (was {was or "unset"}'
-              f'{", static peers dropped" if peers else ""}); --allow-network keeps yours',
-              file=sys.stderr)
+    if was:
+        print(f'pref-learner demo: discovery forced to this machine (was: {was}); '
+              '--allow-network keeps yours', file=sys.stderr)
     return dict(os.environ)
 
 

@@ -27,23 +27,49 @@ SIMULATED_JOINT_STATES = '/simulated_teacher/joint_states'
 
 #: Discovery ranges that keep DDS traffic on this machine.
 LOCAL_RANGES = ('LOCALHOST', 'OFF')
+#: Distributions without the discovery range: only ``ROS_LOCALHOST_ONLY=1`` keeps them local.
+LOCALHOST_ONLY_DISTROS = ('foxy', 'galactic', 'humble')
+#: Middleware configuration that can name peers on other machines.
+PROFILE_VARIABLES = ('FASTRTPS_DEFAULT_PROFILES_FILE', 'FASTDDS_DEFAULT_PROFILES_FILE',
+                     'CYCLONEDDS_URI')
 
 
 def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
     """Say why DDS discovery could reach other machines, or return '' if it cannot.
 
     Reads ``ROS_AUTOMATIC_DISCOVERY_RANGE`` (unset counts as the ROS 2
-    default, SUBNET) and ``ROS_STATIC_PEERS`` (any peer is another host).
+    default, SUBNET) and ``ROS_STATIC_PEERS`` (any peer is another host); on
+    a distribution without the range (``ROS_DISTRO`` Humble or older)
+    ``ROS_LOCALHOST_ONLY`` instead. A middleware profile
+    (:data:`PROFILE_VARIABLES`) counts too: it can list other hosts.
     """
     env = os.environ if env is None else env
-    rng = env.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '').strip().upper()
-    peers = env.get('ROS_STATIC_PEERS', '').strip()
     reasons = []
-    if rng not in LOCAL_RANGES:
-        reasons.append(f'ROS_AUTOMATIC_DISCOVERY_RANGE={rng or "(unset: SUBNET)"}')
-    if peers:
-        reasons.append(f'ROS_STATIC_PEERS={peers}')
+    distro = env.get('ROS_DISTRO', '').strip().lower()
+    if distro in LOCALHOST_ONLY_DISTROS:
+        only = env.get('ROS_LOCALHOST_ONLY', '').strip()
+        if only != '1':
+            reasons.append(f'ROS_DISTRO={distro} reads ROS_LOCALHOST_ONLY, which is '
+                           f'{only or "unset (0)"}')
+    else:
+        rng = env.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '').strip().upper()
+        peers = env.get('ROS_STATIC_PEERS', '').strip()
+        if rng not in LOCAL_RANGES:
+            reasons.append(f'ROS_AUTOMATIC_DISCOVERY_RANGE={rng or "(unset: SUBNET)"}')
+        if peers:
+            reasons.append(f'ROS_STATIC_PEERS={peers}')
+    reasons += [f'{v}={env[v]} (a middleware profile can name other hosts)'
+                for v in PROFILE_VARIABLES if env.get(v, '').strip()]
     return ', '.join(reasons)
+
+
+def keep_local(env) -> None:
+    """Set ``env`` (a mutable mapping) to loopback discovery: range, Humble's flag, no peers."""
+    env['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
+    if env.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
+        env['ROS_LOCALHOST_ONLY'] = '1'
+    for v in ('ROS_STATIC_PEERS',) + PROFILE_VARIABLES:
+        env.pop(v, None)
 
 
 def refuse_network_reason(allow_network: bool,
@@ -53,8 +79,9 @@ def refuse_network_reason(allow_network: bool,
     if not why or allow_network:
         return ''
     return (f'refusing to publish simulated joint states: {why} would let them reach other '
-            'machines; use ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST, or allow_network:=true '
-            '(--allow-network) if you mean it')
+            'machines; use ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST (ROS_LOCALHOST_ONLY=1 on '
+            'Humble) and no middleware profile, or allow_network:=true (--allow-network) if '
+            'you mean it')
 
 
 def allow_network_requested(argv, param: str = 'allow_network') -> bool:

@@ -45,6 +45,17 @@ def test_caution_is_one_line_naming_the_standards():
     ({'ROS_AUTOMATIC_DISCOVERY_RANGE': 'localhost'}, False),
     ({'ROS_AUTOMATIC_DISCOVERY_RANGE': 'OFF'}, False),
     ({'ROS_AUTOMATIC_DISCOVERY_RANGE': 'LOCALHOST', 'ROS_STATIC_PEERS': '192.168.1.7'}, True),
+    # Humble has no discovery range, only ROS_LOCALHOST_ONLY (ROS 2 Humble and Iron
+    # documentation, from memory: the range arrived with Iron)
+    ({'ROS_DISTRO': 'humble', 'ROS_AUTOMATIC_DISCOVERY_RANGE': 'LOCALHOST'}, True),
+    ({'ROS_DISTRO': 'humble', 'ROS_LOCALHOST_ONLY': '0'}, True),
+    ({'ROS_DISTRO': 'humble', 'ROS_LOCALHOST_ONLY': '1'}, False),
+    ({'ROS_DISTRO': 'jazzy', 'ROS_AUTOMATIC_DISCOVERY_RANGE': 'LOCALHOST'}, False),
+    # a middleware profile can list peers on other hosts (Fast DDS XML profiles,
+    # Cyclone DDS configuration; common practice)
+    ({'ROS_AUTOMATIC_DISCOVERY_RANGE': 'LOCALHOST',
+      'FASTRTPS_DEFAULT_PROFILES_FILE': '/etc/dds/peers.xml'}, True),
+    ({'ROS_AUTOMATIC_DISCOVERY_RANGE': 'LOCALHOST', 'CYCLONEDDS_URI': 'file:///c.xml'}, True),
 ])
 def test_network_exposure_and_refusal(env, exposed):
     assert bool(network_exposure(env)) == exposed
@@ -120,6 +131,11 @@ def test_demo_forces_loopback_and_remaps_the_learner(monkeypatch, tmp_path):
     assert 'ROS_STATIC_PEERS' not in env and network_exposure(env) == ''
     assert 1 <= int(env['ROS_DOMAIN_ID']) <= 101          # a fresh domain, not the robot's 0
     assert os.environ['ROS_DOMAIN_ID'] == env['ROS_DOMAIN_ID']   # the demo's own rclpy too
+    monkeypatch.setenv('ROS_DISTRO', 'humble')                 # a Humble install
+    monkeypatch.setenv('CYCLONEDDS_URI', 'file:///etc/dds/peers.xml')
+    env = _ros_env(allow_network=False)
+    assert env['ROS_LOCALHOST_ONLY'] == '1' and 'CYCLONEDDS_URI' not in env
+    assert network_exposure(env) == ''
     args = build_parser().parse_args(['demo'])
     learner, teacher = demo_commands(args, tmp_path / 's', tmp_path / 'b', np.ones(6))
     assert learner[learner.index('-r') + 1] == f'joint_states:={SIMULATED_JOINT_STATES}'

@@ -42,13 +42,13 @@ def node_benchmarks(quick: bool = False) -> Dict[str, float]:
 
     from ..features import load_scenario
     from ..learner import LearnerConfig
+    from ..safety import keep_local
     from ..task import TaskModel
     from .common import publish_paced
     from ..sim import SimulatedTeacher, TeacherConfig
     out: Dict[str, float] = {}
     # simulated joint states: loopback only, on this benchmark's own topic
-    os.environ['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
-    os.environ.pop('ROS_STATIC_PEERS', None)
+    keep_local(os.environ)
     env = dict(os.environ)
     proc = subprocess.Popen([sys.executable, '-m', 'pref_learner.ros.learner_node',
                              '--ros-args', '-p', 'model:=less', '--log-level', 'error',

@@ -12,6 +12,8 @@ import rclpy
 from rcl_interfaces.msg import ParameterDescriptor
 from sensor_msgs.msg import JointState
 
+from ..safety import LOCALHOST_ONLY_DISTROS
+
 
 def run_node(factory, args=None, name='pref_learner', done=None) -> None:
     """Run a node as ``main``: loopback DDS unless told otherwise, spin until interrupted.
@@ -20,6 +22,8 @@ def run_node(factory, args=None, name='pref_learner', done=None) -> None:
     ``done(node) -> bool``: stop spinning once it is true (checked every 0.1 s).
     """
     os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    if os.environ.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
+        os.environ.setdefault('ROS_LOCALHOST_ONLY', '1')       # Humble has no range
     from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
     try:
         with rclpy.init(args=args):
