@@ -9,10 +9,16 @@ VENV ?= .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-# DDS stays on this machine whatever the environment says (an exported SUBNET range or
-# static peers are overridden); a random domain keeps parallel runs apart.
+# DDS stays on this machine whatever the environment says (an exported SUBNET range,
+# static peers or a middleware profile that could name other hosts are overridden; a
+# sourced Humble, which has no range, gets ROS_LOCALHOST_ONLY=1); a random domain keeps
+# parallel runs apart.
 export ROS_AUTOMATIC_DISCOVERY_RANGE := LOCALHOST
-unexport ROS_STATIC_PEERS
+unexport ROS_STATIC_PEERS FASTRTPS_DEFAULT_PROFILES_FILE FASTDDS_DEFAULT_PROFILES_FILE
+unexport CYCLONEDDS_URI ROS_DISCOVERY_SERVER
+ifneq ($(filter foxy galactic humble,$(ROS_DISTRO)),)
+export ROS_LOCALHOST_ONLY := 1
+endif
 export ROS_DOMAIN_ID ?= $(shell python3 -c 'import random; print(random.randint(1, 101))')
 export RMW_IMPLEMENTATION ?= rmw_fastrtps_cpp
 export MPLBACKEND := Agg

@@ -3,12 +3,14 @@
 """rosbag2 bags through the pure-Python ``rosbags`` library (no ROS install needed).
 
 Reading: :func:`read_stream` yields the learner's inputs from a bag (joint
-states and teaching signals, sqlite3 or MCAP storage) in the order they were
-logged. Writing: :class:`BagWriter` writes MCAP by default, with standard
-message types, CDR encoding and offered-QoS metadata, so any rosbag2 tool
-reads it; :func:`read_task_record` returns the task record a learner node
-recorded; :func:`estimate_messages` builds the estimate topics the node
-publishes (the same types, names and layouts).
+states, teaching signals and what a learner node records besides: its
+session events and whole demonstrations; sqlite3 or MCAP storage) in the
+order they were logged, and :func:`replay_bag` feeds them to a learner.
+Writing: :class:`BagWriter` writes MCAP by default, with standard message
+types, CDR encoding and offered-QoS metadata, so any rosbag2 tool reads it;
+:func:`read_task_record` returns the task record a learner node recorded;
+:func:`estimate_messages` builds the estimate topics the node publishes (the
+same types, names and layouts).
 """
 
 from __future__ import annotations
@@ -16,7 +18,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Iterable, Iterator, List, Optional, Sequence, Tuple
+from typing import Iterable, Iterator, List, Optional, Sequence, Tuple, Union
 
 import numpy as np
 
@@ -39,14 +41,15 @@ class StreamEvent:
 
     ``event``: ``text`` is a :data:`SESSION_EVENTS` word, then JSON for the
     settings ones; ``trajectory`` (a whole demonstration on ``~/demonstration``):
-    ``names``, ``positions (points, joints)`` and ``times`` (time_from_start, s).
+    ``names``, ``positions`` (a list of one array per point, in ``names``'
+    order) and ``times`` (time_from_start, s).
     """
 
     kind: str
     log_ns: int
     stamp_ns: int = 0
     names: Tuple[str, ...] = ()
-    positions: Optional[np.ndarray] = None
+    positions: Optional[Union[np.ndarray, List[np.ndarray]]] = None
     value: bool = False
     text: str = ''
     times: Optional[np.ndarray] = None
@@ -122,12 +125,14 @@ class BagWriter:
 
 def read_stream(path, joint_topic: Optional[str] = None,
                 teaching_topic: Optional[str] = None) -> Iterator[StreamEvent]:
-    """Joint states and teaching signals of a bag, in log-time order.
+    """Yield a bag's learner inputs (:class:`StreamEvent`) in log-time order.
 
     Without explicit topics, the joint-state topic is the one of type
-    ``sensor_msgs/msg/JointState`` (there must be exactly one) and the
-    teaching topic any ``std_msgs/msg/Bool`` topic whose name ends in
-    ``teaching``.
+    ``sensor_msgs/msg/JointState`` (there must be exactly one, unless the bag
+    holds a learner node's whole demonstrations or session events only) and
+    the teaching topic any ``std_msgs/msg/Bool`` topic whose name ends in
+    ``teaching``; a learner node's ``session_events`` (std_msgs/String) and
+    ``demonstration`` (trajectory_msgs/JointTrajectory) topics come too.
     """
     from rosbags.rosbag2 import Reader
     path = Path(path)
@@ -143,7 +148,12 @@ def read_stream(path, joint_topic: Optional[str] = None,
         conns = reader.connections
         js = [c for c in conns if c.msgtype == 'sensor_msgs/msg/JointState'
               and (joint_topic is None or c.topic == joint_topic)]
-        if not js:
+        # what a learner node records besides: its session events and whole demonstrations
+        ev = [c for c in conns if c.msgtype == 'std_msgs/msg/String'
+              and c.topic.endswith('session_events')]
+        tr = [c for c in conns if c.msgtype == 'trajectory_msgs/msg/JointTrajectory'
+              and c.topic.endswith('/demonstration')]
+        if not js and (joint_topic or not (ev or tr)):
             raise ValueError(f'bag {path} has no sensor_msgs/JointState topic'
                              + (f' named {joint_topic}' if joint_topic else ''))
         if len({c.topic for c in js}) > 1:
@@ -152,11 +162,6 @@ def read_stream(path, joint_topic: Optional[str] = None,
                              '--joint-topic; study: joint_topic in the study: block)')
         tc = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool'
               and (c.topic == teaching_topic if teaching_topic else c.topic.endswith('teaching'))]
-        # what a learner node records besides: its session events and whole demonstrations
-        ev = [c for c in conns if c.msgtype == 'std_msgs/msg/String'
-              and c.topic.endswith('session_events')]
-        tr = [c for c in conns if c.msgtype == 'trajectory_msgs/msg/JointTrajectory'
-              and c.topic.endswith('/demonstration')]
         js_ids, ev_ids = {c.id for c in js}, {c.id for c in ev}
         tc_ids = {c.id for c in tc}
         for conn, log_ns, raw in reader.messages(connections=js + tc + ev + tr):
@@ -180,13 +185,20 @@ def read_stream(path, joint_topic: Optional[str] = None,
         reader.close()
 
 
-class BagDamaged(ValueError):
-    """A bag that could not be read to its end; ``messages`` were read (and fed) before."""
+class BagUnreadable(ValueError):
+    """A bag whose learner inputs cannot be read (what is wrong with it in the message)."""
+
+
+class BagDamaged(BagUnreadable):
+    """A bag that could not be read to its end; what came before was read (and fed)."""
 
     def __init__(self, messages: int, exc: BaseException):
         super().__init__(f'the bag is damaged after {messages} messages '
                          f'({type(exc).__name__}: {exc}); the rest is not read')
-        self.messages = messages
+
+
+class WrongRobot(ValueError):
+    """A bag whose joint states name none of the learner's chain (nothing learned)."""
 
 
 @dataclass
@@ -195,21 +207,29 @@ class Replay:
 
     messages: int = 0
     teaching_signals: int = 0
+    session_inputs: int = 0
     notes: List[str] = field(default_factory=list)
 
 
 def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay:
     """Feed a bag's events (:func:`read_stream`) to ``learner`` as a live node takes them.
 
-    ``on_output(outputs, event)`` receives what each event gave (results and
-    rejections). Raises :class:`BagDamaged` when reading fails part-way
-    (after feeding what came before) and ``ValueError`` when the bag's joints
-    are not the learner's robot's (nothing learned, every sample missing a
-    joint). The notes say when the bag ends during a demonstration and when it
-    has no teaching signal under ``segmentation: signal``.
+    Joint states, teaching signals and what a learner node records besides
+    (its session events and whole demonstrations, :data:`SESSION_EVENTS`):
+    a segmentation change that arrives during a demonstration applies once
+    it ends, as in the node; an event this version cannot apply is skipped
+    with a note. ``on_output(outputs, event)`` receives what each event gave
+    (results and rejections; ``[]`` for the other events). Raises
+    :class:`BagUnreadable` when the bag cannot be read from the start,
+    :class:`BagDamaged` when reading fails part-way (after feeding what came
+    before) and :class:`WrongRobot` when its joints are not the learner's
+    robot's. The notes say when the bag ends during a demonstration and
+    when nothing was learned without a teaching signal under
+    ``segmentation: signal``.
     """
     rep = Replay()
     first_names = None
+    pending: list = []                         # segmentation changes held during a recording
     it = iter(events)
     while True:
         try:
@@ -217,8 +237,9 @@ def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay
         except StopIteration:
             break
         except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
-            if rep.messages == 0 and isinstance(exc, ValueError):
-                raise                      # unreadable from the start (read_stream says why)
+            if rep.messages == 0:
+                raise BagUnreadable(str(exc) if isinstance(exc, ValueError) else
+                                    f'{type(exc).__name__}: {exc}') from None
             raise BagDamaged(rep.messages, exc) from None
         rep.messages += 1
         if e.kind == 'joint_states':
@@ -229,25 +250,38 @@ def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay
             rep.teaching_signals += 1
             out = learner.set_teaching(e.value)
         else:
-            out = _session_input(learner, e, rep)
+            rep.session_inputs += 1
+            out = _session_input(learner, e, rep, pending)
+        while pending and not learner.recorder.recording:
+            _reconfigure(learner, pending.pop(0), rep)
         if on_output is not None:
             on_output(out, e)
     counters = learner.recorder.counters
     if learner.n_demonstrations == 0 and counters['missing_joint'] and not counters['samples']:
-        raise ValueError(f'wrong robot: the bag\'s joint states name {list(first_names or ())}, '
+        raise WrongRobot(f'wrong robot: the bag\'s joint states name {list(first_names or ())}, '
                          f'the chain needs {list(learner.robot.joint_names)}')
     if learner.recorder.recording:
         rep.notes.append('the bag ends during a demonstration; that part is not learned')
-    if learner.config.segmentation == 'signal' and rep.teaching_signals == 0:
+    if (learner.n_demonstrations == 0 and learner.config.segmentation == 'signal'
+            and rep.teaching_signals == 0 and rep.session_inputs == 0):
         rep.notes.append('the bag has no teaching signal (a std_msgs/Bool topic ending in '
                          '"teaching"); set segmentation: motion in a parameters file')
     return rep
 
 
-def _session_input(learner, e: StreamEvent, rep: Replay) -> list:
-    """Apply a recorded session event or whole demonstration, as the node did."""
+def _reconfigure(learner, e: StreamEvent, rep: Replay) -> None:
+    """Apply a recorded segmentation change (skipped with a note if it cannot be)."""
     from dataclasses import replace as _replace
+    try:
+        learner.reconfigure_segmentation(
+            _replace(learner.config, **json.loads(e.text.partition(' ')[2])))
+    except (ValueError, TypeError) as exc:
+        rep.notes.append(f'session event {e.text!r} at log time {e.log_ns} ns cannot be '
+                         f'applied ({exc}); skipped')
 
+
+def _session_input(learner, e: StreamEvent, rep: Replay, pending: list) -> list:
+    """Apply a recorded session event or whole demonstration, as the node did."""
     from .demonstrations import DemonstrationError, trajectory_demonstration
     if e.kind == 'trajectory':
         try:
@@ -267,12 +301,15 @@ def _session_input(learner, e: StreamEvent, rep: Replay) -> list:
     elif word == 'reset':
         learner.reset()
     elif word == 'segmentation':
-        learner.reconfigure_segmentation(_replace(learner.config, **json.loads(arg)))
+        pending.append(e)
     elif word == 'max_stamp_skew':
-        learner.recorder.set_max_skew(float(json.loads(arg)))
+        try:
+            learner.recorder.set_max_skew(float(json.loads(arg)))
+        except (ValueError, TypeError) as exc:
+            rep.notes.append(f'session event {e.text!r} cannot be applied ({exc}); skipped')
     else:
-        rep.notes.append(f'session event {e.text!r} at log time {e.log_ns} ns is unknown; '
-                         'skipped')
+        rep.notes.append(f'session event {e.text!r} at log time {e.log_ns} ns is unknown '
+                         f'(known: {", ".join(SESSION_EVENTS)}); skipped')
     return []
 
 

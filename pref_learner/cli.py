@@ -215,15 +215,16 @@ def cmd_learn(args) -> int:
     notes = []
 
     def write_estimates(outputs, event):
+        # after each learned demonstration, and after a discard or reset (as the node)
         nonlocal n_ok
-        for r in outputs:
-            if isinstance(r, StepResult):
-                n_ok += 1
-                for m, post in L.posteriors.items():
-                    pre = '' if len(L.posteriors) == 1 else f'{m}/'
-                    for topic, (data, dims) in estimate_arrays(post.summary(), post).items():
-                        w.write(f'/pref_learner/{pre}{topic}', w.float_array(data, dims),
-                                event.log_ns)
+        learned = sum(isinstance(r, StepResult) for r in outputs)
+        n_ok += learned
+        if learned or (event.kind == 'event' and event.text in ('discard_last', 'reset')):
+            for m, post in L.posteriors.items():
+                pre = '' if len(L.posteriors) == 1 else f'{m}/'
+                for topic, (data, dims) in estimate_arrays(post.summary(), post).items():
+                    w.write(f'/pref_learner/{pre}{topic}', w.float_array(data, dims),
+                            event.log_ns)
     try:
         notes = replay_bag(L, progress(itertools.chain([first], events), 'learning'),
                            write_estimates).notes

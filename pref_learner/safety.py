@@ -31,7 +31,7 @@ LOCAL_RANGES = ('LOCALHOST', 'OFF')
 LOCALHOST_ONLY_DISTROS = ('foxy', 'galactic', 'humble')
 #: Middleware configuration that can name peers on other machines.
 PROFILE_VARIABLES = ('FASTRTPS_DEFAULT_PROFILES_FILE', 'FASTDDS_DEFAULT_PROFILES_FILE',
-                     'CYCLONEDDS_URI')
+                     'CYCLONEDDS_URI', 'ROS_DISCOVERY_SERVER')
 
 
 def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
@@ -58,9 +58,16 @@ def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
             reasons.append(f'ROS_AUTOMATIC_DISCOVERY_RANGE={rng or "(unset: SUBNET)"}')
         if peers:
             reasons.append(f'ROS_STATIC_PEERS={peers}')
-    reasons += [f'{v}={env[v]} (a middleware profile can name other hosts)'
+    reasons += [f'{v}={env[v]} (middleware configuration can name other hosts)'
                 for v in PROFILE_VARIABLES if env.get(v, '').strip()]
     return ', '.join(reasons)
+
+
+def default_local(env) -> None:
+    """Make loopback discovery the default of ``env`` (a mutable mapping); set values stay."""
+    env.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    if env.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
+        env.setdefault('ROS_LOCALHOST_ONLY', '1')          # Humble has no range
 
 
 def keep_local(env) -> None:

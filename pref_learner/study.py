@@ -454,23 +454,32 @@ def _replay_state_dir(path: Path, L, notes: list, rows: list) -> None:
 
 
 def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list) -> None:
-    """Feed a bag's joint states and teaching signals to the learner, as ``learn`` does.
+    """Feed a bag's inputs to the learner, as ``learn`` does (:func:`bags.replay_bag`).
 
     Appends one row per demonstration to ``rows`` (kept when the session fails);
-    a bag that cannot be read to its end fails the session.
+    a demonstration the session discarded later (``discard_last``, ``reset``)
+    keeps its row with status ``discarded``; a bag that cannot be read to its
+    end fails the session.
     """
-    from .bags import BagDamaged, read_stream, replay_bag
+    from .bags import BagDamaged, BagUnreadable, WrongRobot, read_stream, replay_bag
     if task.max_stamp_skew > 0:
         L.recorder.set_max_skew(task.max_stamp_skew)
+
+    def on_output(out, event):
+        _collect(out, L, rows)
+        if event.kind == 'event' and event.text in ('discard_last', 'reset'):
+            kept = [r for r in rows if r['status'] == 'accepted']
+            for r in (kept[-1:] if event.text == 'discard_last' else kept):
+                r.update(status='discarded', reason=event.text)
     events = read_stream(path, task.joint_topic or None, task.teaching_topic or None)
     try:
-        rep = replay_bag(L, events, lambda out, _: _collect(out, L, rows))
+        rep = replay_bag(L, events, on_output)
     except BagDamaged as exc:
         raise _Failed(f'corrupt bag: {exc}') from None
-    except ValueError as exc:
-        reason = str(exc)
-        raise _Failed(reason if reason.startswith('wrong robot')
-                      else f'corrupt or unreadable bag: {reason}') from None
+    except BagUnreadable as exc:
+        raise _Failed(f'corrupt or unreadable bag: {exc}') from None
+    except WrongRobot as exc:
+        raise _Failed(str(exc)) from None
     notes.extend(rep.notes)
 
 

@@ -233,17 +233,29 @@ def test_the_session_bag_holds_every_input_that_changed_what_was_learned(tmp_pat
             msg.points.append(pt)
         traj.publish(msg)
         assert spin_until(ex, lambda: node.learner.n_demonstrations == 2, 30)
-        assert node.set_parameters([Parameter('min_duration', value=0.25)])[0].successful
-        assert spin_until(ex, lambda: node.config.min_duration == 0.25, 10)
+        # a run-time setting that refuses the next demonstration (too short now)
+        assert node.set_parameters([Parameter('min_duration', value=60.0)])[0].successful
+        assert spin_until(ex, lambda: node.config.min_duration == 60.0, 10)
+        pub, teach = teaching_publishers(client, ex)
+        stamps, q = teacher.stream(2, 1_700_001_000 * 10**9)
+        publish_stream(ex, pub, teach, stamps, q, names)
+        assert spin_until(ex, lambda: len(node.learner.rejections) == 1, 30)
+        assert node.learner.rejections[0]['reason'] == 'too_short'
         live = node.learner.posteriors['less'].summary().mean
         bg.__exit__(None, None, None)
         node.destroy_node()                                  # closes the bag
         client.destroy_node()
     kinds = [(e.kind, e.text) for e in read_stream(bag) if e.kind in ('event', 'trajectory')]
     assert kinds == [('event', 'discard_last'), ('trajectory', ''),
-                     ('event', 'segmentation {"min_duration": 0.25}')]
+                     ('event', 'segmentation {"min_duration": 60.0}')]
     assert cli_main(['learn', str(bag), '--out', str(out), '--particles', '400',
                      '--alternatives', '60']) == 0
     off = ParticlePosterior.load(out / 'state' / 'posterior_less')
     assert len(off.records) == 2
     np.testing.assert_allclose(off.summary().mean, live, atol=1e-9)
+    # the study replays the same session: two kept, one discarded, one refused
+    from pref_learner.study import ParticipantTask, analyse_participant
+    res = analyse_participant(ParticipantTask('p', str(bag), dict(sizes), 1, True))
+    assert res['status'] == 'ok', res['reason']
+    status = sorted(r['status'] for r in res['demonstrations'])
+    assert status == ['accepted', 'accepted', 'discarded', 'rejected'], status

@@ -12,7 +12,7 @@ import rclpy
 from rcl_interfaces.msg import ParameterDescriptor
 from sensor_msgs.msg import JointState
 
-from ..safety import LOCALHOST_ONLY_DISTROS
+from ..safety import default_local
 
 
 def run_node(factory, args=None, name='pref_learner', done=None) -> None:
@@ -21,9 +21,7 @@ def run_node(factory, args=None, name='pref_learner', done=None) -> None:
     A ``ValueError`` from the constructor (bad parameters) is one line and exit code 2.
     ``done(node) -> bool``: stop spinning once it is true (checked every 0.1 s).
     """
-    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    if os.environ.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
-        os.environ.setdefault('ROS_LOCALHOST_ONLY', '1')       # Humble has no range
+    default_local(os.environ)
     from rclpy.executors import ExternalShutdownException, SingleThreadedExecutor
     try:
         with rclpy.init(args=args):

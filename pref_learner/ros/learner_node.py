@@ -671,8 +671,9 @@ class LearnerNode(Node):
         self._pending_config = None
         changed = {f.name: getattr(cfg, f.name) for f in fields(LearnerConfig)
                    if f.name in _RUNTIME and getattr(cfg, f.name) != getattr(self.config, f.name)}
-        if changed:
-            self._event(f'segmentation {json.dumps(changed)}')
+        if not changed:          # reconfiguring would still restart the motion detector
+            return
+        self._event(f'segmentation {json.dumps(changed)}')
         self.learner.reconfigure_segmentation(cfg)
         self.config = cfg
         self.get_logger().info('segmentation settings updated')

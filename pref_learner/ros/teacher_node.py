@@ -27,7 +27,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, String
 
 from ..learner import LearnerConfig
-from ..safety import allow_network_requested, refuse_network_reason
+from ..safety import allow_network_requested, default_local, refuse_network_reason
 from ..sim import SimulatedTeacher, TeacherConfig
 from ..task import TaskModel, TaskRecord
 from .common import declare_feature_modules, declare_read_only, joint_state, run_node
@@ -217,7 +217,7 @@ class TeacherNode(Node):
 
 def main(args=None):
     import sys
-    os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    default_local(os.environ)
     # refuse before rclpy.init: not even discovery traffic leaves the machine
     refusal = refuse_network_reason(allow_network_requested(sys.argv if args is None else args))
     if refusal:
