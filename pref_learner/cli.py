@@ -319,6 +319,12 @@ def cmd_report(args) -> int:
     src = Path(args.source)
     if not src.exists():
         raise CliError(f'{src} does not exist')
+    if (src / 'manifest.json').exists():
+        given = [f'--{k.replace("_", "-")}' for k in _SESSION_OPTIONS
+                 if getattr(args, k, None) not in (None, [], '')]
+        if given:
+            print(f'note: a state directory is reported as it was learned; ignored: '
+                  f'{", ".join(given)}', file=sys.stderr)
     with tempfile.TemporaryDirectory() as tmp:
         state = _state_from(src, Path(tmp) / 'learned', args)
         path = write_report(state, Path(args.out))
@@ -345,6 +351,11 @@ class _Parser(argparse.ArgumentParser):
 
     def error(self, message):
         self.exit(2, f'{self.prog}: {message} (see --help)\n')
+
+
+#: the options of ``learn`` that decide what is learned (a state directory has its own)
+_SESSION_OPTIONS = ('model', 'particles', 'alternatives', 'beta', 'seed', 'params_file', 'urdf',
+                    'features', 'joints', 'tool_frame', 'joint_topic', 'teaching_topic')
 
 
 def _learning_options(p, choices=None, session: bool = False) -> None:

@@ -7,8 +7,9 @@ Two pieces of evidence, from a state directory's stored demonstrations:
 * leave-one-out predictive log-probability: for each demonstration, the
   posterior from all the others, then ``log sum_p w_p P(held-out choice |
   theta_p)`` under each model, on a set that depends only on the task (not on
-  the held-out path); the verdict needs a paired z of at least 2, else it says
-  the data cannot tell;
+  the held-out path); the verdict needs a paired t statistic of the
+  per-demonstration differences beyond Student's t critical value (95 %,
+  two-sided, k - 1 degrees of freedom), else it says the data cannot tell;
 * robustness: the spread (mean angle to their common direction) of each
   model's estimate when the alternative sets are redrawn with other seeds.
 """

@@ -2,7 +2,7 @@
 # SPDX-License-Identifier: Apache-2.0
 """HTML report with PNG plots, from a state directory's stored files only.
 
-Plots: each weight's posterior mean and 90% band after each demonstration;
+Plots: each weight's mean direction and 90% band after each demonstration;
 final marginals per feature; for each demonstration its place in its
 alternative set's feature density (the dense/sparse diagnostic); Boltzmann
 and LESS side by side when both ran. Tables: final estimates, what is still
@@ -94,7 +94,8 @@ def _plot_history(names, history, models, path):
         ax.set_title(names[j], fontsize=9)
         ax.set_xlabel('demonstrations', fontsize=8)
         ax.set_ylim(-1.05, 1.05)
-    _panels(len(names), 3, (4, 2.6), draw, 'posterior mean and 90% interval of each weight',
+    _panels(len(names), 3, (4, 2.6), draw,
+            'mean direction (normalised posterior mean) and 90% interval of each weight',
             path, legend=True)
 
 

@@ -232,6 +232,15 @@ def test_report_from_a_bag(demo_run, tmp_path):
     assert 'boltzmann mean' in html and 'less mean' in html
 
 
+def test_report_of_a_state_directory_names_the_options_it_ignores(demo_run, tmp_path):
+    out, _ = demo_run
+    res = json.loads((out / 'demo_result.json').read_text())
+    r = run(['report', res['state_dir'], '--out', str(tmp_path / 'rep'), '--particles', '10',
+             '--model', 'less'])
+    assert r.returncode == 0, r.stderr
+    assert 'ignored: --model, --particles' in r.stderr
+
+
 def test_guided_demo_demonstrates_the_proposed_tasks(tmp_path):
     from pref_learner.demonstrations import Demonstration
     from pref_learner.learner import Learner, LearnerConfig
