@@ -38,7 +38,7 @@ from .guidance import TaskOptions, information_gain, option_records
 from .posterior import (ParticlePosterior, PosteriorConfig, Summary, log_normalise,
                         set_log_similarity)
 from .robot import RobotModel
-from .store import StateStore
+from .store import StateStore, diagnostics_by_index
 from .task import TaskModel, TaskRecord, draft_record, learning_hash, scaled_record
 
 log = logging.getLogger('pref_learner')
@@ -335,7 +335,7 @@ class Learner:
         if len(self._diagnostics) != len(self._demos) and self.store is not None:
             # a state loaded without replay: read the stored history once, not per status
             n = len(self._demos)
-            stored = [h['diagnostics'] for h in self.store.read_history()][:n]
+            stored = diagnostics_by_index(self.store.read_history())[:n]
             self._diagnostics = stored + [{}] * (n - len(stored))
         return list(self._diagnostics)
 
@@ -690,7 +690,7 @@ class Learner:
         # the checks of the demonstration fill ``diag`` once the estimate is out: the
         # estimate never waits for them (the result handed out early holds this dict)
         diag: dict = {}
-        self._diagnostics = self._diagnostics[:index] + [diag]
+        self._diagnostics = (self._diagnostics + [{}] * index)[:index] + [diag]
         res = StepResult(index, {m: p.summary() for m, p in self.posteriors.items()}, infos,
                          time.perf_counter() - t0, diag, paths)
         if self.on_estimate is not None and persist:

@@ -23,7 +23,7 @@ import numpy as np
 
 from .posterior import ParticlePosterior, set_log_similarity
 from .safety import CAUTION
-from .store import StateStore
+from .store import StateStore, diagnostics_by_index
 
 COLOURS = {'boltzmann': '#1f77b4', 'less': '#d62728'}
 
@@ -108,14 +108,14 @@ def _plot_marginals(names, posts, path):
     _panels(len(names), 3, (4, 2.4), draw, 'final posterior marginals', path, legend=True)
 
 
-def _plot_density(post, path):
+def _plot_density(post, path, numbers):
     def draw(i, ax):
         r = post.records[i]
         ls = set_log_similarity([r], post.config.bandwidth)
         rel = ls - np.median(ls)
         ax.hist(rel, bins=30, color='0.6')
         ax.axvline(rel[r.chosen], color='k', lw=2)
-        ax.set_title(f'demonstration {i + 1}', fontsize=9)
+        ax.set_title(f'demonstration {numbers[i]}', fontsize=9)
         ax.set_xlabel('log density rel. to median', fontsize=8)
     _panels(len(post.records), 4, (3.2, 2.4), draw,
             'each demonstration (black) within its set\'s feature density', path)
@@ -160,8 +160,9 @@ def estimate_note_lines(summaries, option_labels, diagnostics) -> list:
         if not math.isnan(s.acceptance):
             lines.append(f'moves, {m}: acceptance {s.acceptance:.2f}')
     flagged = [i + 1 for i, dg in enumerate(diagnostics) if dg.get('atypical')]
-    if diagnostics:
-        lines.append(f'posterior predictive check: {len(flagged)} of {len(diagnostics)} '
+    checked = sum(1 for dg in diagnostics if dg)       # (a quarantined slot is empty)
+    if checked:
+        lines.append(f'posterior predictive check: {len(flagged)} of {checked} '
                      'demonstrations do not look like choices from the assumed options'
                      + (f' (#{", #".join(map(str, flagged))})' if flagged else ''))
     return lines
@@ -228,7 +229,10 @@ def write_report(state_dir, out_dir) -> Path:
     pngs.append(('Final marginals', 'marginals.png'))
     first = posts[models[0]]
     if first.records:
-        _plot_density(first, out / 'set_density.png')
+        numbers = [h['index'] + 1 for h in st['history']]      # seed indices, as the tables
+        if len(numbers) != len(first.records):
+            numbers = list(range(1, len(first.records) + 1))
+        _plot_density(first, out / 'set_density.png', numbers)
         pngs.append(('Demonstrations within their alternative sets', 'set_density.png'))
         plot_set(first.records[-1].features, first.records[-1].chosen, names,
                  out / 'last_set_features.png')
@@ -257,7 +261,7 @@ def write_report(state_dir, out_dir) -> Path:
         f'<td>{html.escape(gained(h["diagnostics"]))}</td></tr>' for h in st['history'])
     notes = estimate_note_lines({m: p.summary() for m, p in posts.items()},
                                 st['manifest'].get('option_models') or [],
-                                [h['diagnostics'] for h in st['history']])
+                                diagnostics_by_index(st['history']))
     notes_html = ''.join(f'<li>{html.escape(x)}</li>' for x in notes)
     sep_html = separation_note(names, [r.features for r in first.records])
     from .guidance import unknown_lines

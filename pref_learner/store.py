@@ -135,6 +135,19 @@ def read_npz(path) -> dict:
         return {k: z[k] for k in z.files}
 
 
+def diagnostics_by_index(history: List[dict]) -> List[dict]:
+    """Each history entry's diagnostics at its demonstration's seed index (``{}`` in gaps).
+
+    A quarantined demonstration keeps its index and has no history entry, so
+    the others keep their numbers (``index + 1``) on every screen.
+    """
+    n = 1 + max((int(h['index']) for h in history), default=-1)
+    out: List[dict] = [{} for _ in range(n)]
+    for h in history:
+        out[int(h['index'])] = h.get('diagnostics') or {}
+    return out
+
+
 class StateStore:
     """A state directory on disk."""
 

@@ -200,3 +200,21 @@ def test_leave_one_out_takes_stored_records_or_redrawn_sets_alike(state):
     for m in configs:
         np.testing.assert_allclose(a[m], b[m], rtol=1e-12)
         assert np.all(np.isfinite(a[m]))
+
+
+def test_demonstrations_keep_their_numbers_after_a_quarantined_one():
+    # a quarantined demonstration keeps its seed index: the history has no entry for it,
+    # and the checks must still name the others by their own numbers
+    from pref_learner.posterior import PosteriorConfig
+    from pref_learner.report import estimate_note_lines, estimate_status_values
+    from pref_learner.store import diagnostics_by_index
+    history = [{'index': 0, 'diagnostics': {'atypical': False}},
+               {'index': 2, 'diagnostics': {'atypical': True}},
+               {'index': 3, 'diagnostics': {'atypical': False}}]
+    diag = diagnostics_by_index(history)
+    assert diag == [{'atypical': False}, {}, {'atypical': True}, {'atypical': False}]
+    post = ParticlePosterior.create(PosteriorConfig(n_particles=50), 6,
+                                    np.random.default_rng(0))
+    lines = estimate_note_lines({'less': post.summary()}, [], diag)
+    assert any('1 of 3 demonstrations' in x and '(#3)' in x for x in lines), lines
+    assert estimate_status_values(post.summary(), [], diag)['atypical_demonstrations'] == '[3]'
