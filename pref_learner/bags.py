@@ -32,7 +32,8 @@ def typestore():
 
 #: a learner node's session events (std_msgs/String on ``~/session_events``, only in its
 #: bags): a service that changed what is learned, or a run-time setting
-SESSION_EVENTS = ('start', 'stop', 'discard_last', 'reset', 'segmentation', 'max_stamp_skew')
+SESSION_EVENTS = ('start', 'stop', 'discard_last', 'reset', 'segmentation', 'max_stamp_skew',
+                  'resumed')
 
 
 @dataclass(frozen=True)
@@ -302,6 +303,15 @@ def _session_input(learner, e: StreamEvent, rep: Replay, pending: list) -> list:
         learner.reset()
     elif word == 'segmentation':
         pending.append(e)
+    elif word == 'resumed':
+        try:
+            n = int(json.loads(arg)['demonstrations'])
+        except (ValueError, TypeError, KeyError):
+            n = '?'
+        rep.notes.append(f'the node resumed a session of {n} demonstrations learned before '
+                         'this bag; they are not in it (learn the state directory for the '
+                         'whole session), and a discard_last of one of them replays as a '
+                         'discard of the last one here')
     elif word == 'max_stamp_skew':
         try:
             learner.recorder.set_max_skew(float(json.loads(arg)))

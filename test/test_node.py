@@ -259,3 +259,22 @@ def test_the_session_bag_holds_every_input_that_changed_what_was_learned(tmp_pat
     assert res['status'] == 'ok', res['reason']
     status = sorted(r['status'] for r in res['demonstrations'])
     assert status == ['accepted', 'accepted', 'discarded', 'rejected'], status
+
+
+def test_a_resumed_session_says_so_in_its_bag(tmp_path):
+    # a node resuming a state directory records that the bag lacks what came before, and the
+    # replay says so instead of passing the bag off as the whole session
+    from pref_learner.bags import read_stream, replay_bag
+    sizes = dict(model='less', n_particles=200, n_alternatives=30)
+    before = Learner(LearnerConfig(state_dir=str(tmp_path / 'state'), **sizes))
+    SimulatedTeacher(before, TRUE, TeacherConfig(seed=3)).feed_session(before, 1)
+    before.flush_storage()
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, state_dir=str(tmp_path / 'state'), record_bag=str(tmp_path / 'bag'),
+                     **sizes)
+        assert node.learner.n_demonstrations == 1
+        node.destroy_node()
+    events = [e.text for e in read_stream(tmp_path / 'bag') if e.kind == 'event']
+    assert events == ['resumed {"demonstrations": 1}']
+    rep = replay_bag(Learner(LearnerConfig(**sizes)), read_stream(tmp_path / 'bag'))
+    assert any(n.startswith('the node resumed a session of 1 demonstrations') for n in rep.notes)

@@ -247,6 +247,9 @@ class LearnerNode(Node):
         self._teach_topic = self.resolve_topic_name('~/teaching')
         self._traj_topic = self.resolve_topic_name('~/demonstration')
         self._event_topic = self.resolve_topic_name('~/session_events')
+        if self.learner.n_demonstrations:     # learned before this run: not in its bag
+            self._event('resumed ' + json.dumps({'demonstrations':
+                                                 self.learner.n_demonstrations}))
         self._cache = {}
         self._latency = float('nan')
         self._publish_estimates()
