@@ -55,6 +55,11 @@ class StreamEvent:
     text: str = ''
     times: Optional[np.ndarray] = None
 
+    @property
+    def removes_demonstrations(self) -> bool:
+        """Tell whether this is a ``discard_last`` or ``reset`` session event."""
+        return self.kind == 'event' and self.text in ('discard_last', 'reset')
+
 
 class BagWriter:
     """Write messages into a new rosbag2 bag directory (MCAP unless told sqlite3)."""

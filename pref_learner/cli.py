@@ -201,9 +201,9 @@ def cmd_learn(args) -> int:
     events = read_stream(bag, args.joint_topic, args.teaching_topic)
     try:
         first = next(events, None)
-    except ValueError:
-        raise
     except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
+        if isinstance(exc, ValueError):        # read_stream's own, naming what is wrong
+            raise
         raise CliError(f'bag {bag} cannot be read: {type(exc).__name__}: {exc}') from None
     if first is None:
         raise CliError(f'bag {bag} has no joint states')
@@ -219,7 +219,7 @@ def cmd_learn(args) -> int:
         nonlocal n_ok
         learned = sum(isinstance(r, StepResult) for r in outputs)
         n_ok += learned
-        if learned or (event.kind == 'event' and event.text in ('discard_last', 'reset')):
+        if learned or event.removes_demonstrations:
             for m, post in L.posteriors.items():
                 pre = '' if len(L.posteriors) == 1 else f'{m}/'
                 for topic, (data, dims) in estimate_arrays(post.summary(), post).items():

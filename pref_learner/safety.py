@@ -34,6 +34,11 @@ PROFILE_VARIABLES = ('FASTRTPS_DEFAULT_PROFILES_FILE', 'FASTDDS_DEFAULT_PROFILES
                      'CYCLONEDDS_URI', 'ROS_DISCOVERY_SERVER')
 
 
+def _localhost_only(env: Mapping[str, str]) -> bool:
+    """Tell whether ``env`` names a distribution that reads ``ROS_LOCALHOST_ONLY`` only."""
+    return env.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS
+
+
 def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
     """Say why DDS discovery could reach other machines, or return '' if it cannot.
 
@@ -45,11 +50,11 @@ def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
     """
     env = os.environ if env is None else env
     reasons = []
-    distro = env.get('ROS_DISTRO', '').strip().lower()
-    if distro in LOCALHOST_ONLY_DISTROS:
+    if _localhost_only(env):
         only = env.get('ROS_LOCALHOST_ONLY', '').strip()
         if only != '1':
-            reasons.append(f'ROS_DISTRO={distro} reads ROS_LOCALHOST_ONLY, which is '
+            reasons.append(f'ROS_DISTRO={env["ROS_DISTRO"].strip().lower()} reads '
+                           'ROS_LOCALHOST_ONLY, which is '
                            f'{only or "unset (0)"}')
     else:
         rng = env.get('ROS_AUTOMATIC_DISCOVERY_RANGE', '').strip().upper()
@@ -66,14 +71,14 @@ def network_exposure(env: Optional[Mapping[str, str]] = None) -> str:
 def default_local(env) -> None:
     """Make loopback discovery the default of ``env`` (a mutable mapping); set values stay."""
     env.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-    if env.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
+    if _localhost_only(env):
         env.setdefault('ROS_LOCALHOST_ONLY', '1')          # Humble has no range
 
 
 def keep_local(env) -> None:
     """Set ``env`` (a mutable mapping) to loopback discovery: range, Humble's flag, no peers."""
     env['ROS_AUTOMATIC_DISCOVERY_RANGE'] = 'LOCALHOST'
-    if env.get('ROS_DISTRO', '').strip().lower() in LOCALHOST_ONLY_DISTROS:
+    if _localhost_only(env):
         env['ROS_LOCALHOST_ONLY'] = '1'
     for v in ('ROS_STATIC_PEERS',) + PROFILE_VARIABLES:
         env.pop(v, None)

@@ -467,7 +467,7 @@ def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list)
 
     def on_output(out, event):
         _collect(out, L, rows)
-        if event.kind == 'event' and event.text in ('discard_last', 'reset'):
+        if event.removes_demonstrations:
             kept = [r for r in rows if r['status'] == 'accepted']
             for r in (kept[-1:] if event.text == 'discard_last' else kept):
                 r.update(status='discarded', reason=event.text)
