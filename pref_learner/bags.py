@@ -129,16 +129,59 @@ class BagWriter:
         self.close()
 
 
+#: a learner node's own topics in its bags (``~/<name>``) and their types
+LEARNER_TOPICS = {'session_events': 'std_msgs/msg/String',
+                  'demonstration': 'trajectory_msgs/msg/JointTrajectory',
+                  'task_record': 'std_msgs/msg/String',
+                  'teaching': 'std_msgs/msg/Bool'}
+
+
+def _learner_node(path, conns, learner_node: Optional[str]) -> Optional[str]:
+    """Return the learner node whose own topics a bag's inputs come from (None: no node's).
+
+    The nodes are the namespaces of the bag's :data:`LEARNER_TOPICS` other than
+    ``teaching`` (a robot's own teaching signal may end the same way); one
+    must be chosen when there are several, so two learners' sessions in one
+    recording are never mixed.
+    """
+    nodes = sorted({c.topic.rsplit('/', 1)[0] for c in conns
+                    for name, typ in LEARNER_TOPICS.items()
+                    if name != 'teaching' and c.msgtype == typ
+                    and c.topic.endswith('/' + name)})
+    if learner_node:
+        node = '/' + learner_node.strip('/')
+        if node not in nodes:
+            raise ValueError(f'bag {path} has no learner node {node} in it '
+                             f'(its learner nodes: {nodes})')
+        return node
+    if len(nodes) > 1:
+        raise ValueError(f'bag {path} holds the topics of several learner nodes {nodes}; '
+                         'choose one (learn and report: --learner-node; study: learner_node '
+                         'in the study: block)')
+    return nodes[0] if nodes else None
+
+
+def _own(conns, node: Optional[str], name: str) -> list:
+    """Return the connections of ``node``'s own topic ``name`` (none without a node)."""
+    return [c for c in conns if node and c.topic == f'{node}/{name}'
+            and c.msgtype == LEARNER_TOPICS[name]]
+
+
 def read_stream(path, joint_topic: Optional[str] = None,
-                teaching_topic: Optional[str] = None) -> Iterator[StreamEvent]:
+                teaching_topic: Optional[str] = None,
+                learner_node: Optional[str] = None) -> Iterator[StreamEvent]:
     """Yield a bag's learner inputs (:class:`StreamEvent`) in log-time order.
 
     Without explicit topics, the joint-state topic is the one of type
     ``sensor_msgs/msg/JointState`` (there must be exactly one, unless the bag
-    holds a learner node's whole demonstrations or session events only) and
-    the teaching topic any ``std_msgs/msg/Bool`` topic whose name ends in
-    ``teaching``; a learner node's ``session_events`` (std_msgs/String) and
-    ``demonstration`` (trajectory_msgs/JointTrajectory) topics come too.
+    holds a learner node's whole demonstrations or session events only).
+    A learner node's own ``session_events`` (std_msgs/String) and
+    ``demonstration`` (trajectory_msgs/JointTrajectory) topics come too: of
+    ``learner_node`` (its full name, e.g. ``/pref_learner``), or of the only
+    learner node in the bag (several are refused, see :func:`_learner_node`).
+    The teaching signal is ``teaching_topic``, else that node's
+    ``teaching``, else the only ``std_msgs/msg/Bool`` topic whose name ends
+    in ``teaching`` (several are refused, naming them).
     """
     from rosbags.rosbag2 import Reader
     path = Path(path)
@@ -155,10 +198,8 @@ def read_stream(path, joint_topic: Optional[str] = None,
         js = [c for c in conns if c.msgtype == 'sensor_msgs/msg/JointState'
               and (joint_topic is None or c.topic == joint_topic)]
         # what a learner node records besides: its session events and whole demonstrations
-        ev = [c for c in conns if c.msgtype == 'std_msgs/msg/String'
-              and c.topic.endswith('session_events')]
-        tr = [c for c in conns if c.msgtype == 'trajectory_msgs/msg/JointTrajectory'
-              and c.topic.endswith('/demonstration')]
+        node = _learner_node(path, conns, learner_node)
+        ev, tr = _own(conns, node, 'session_events'), _own(conns, node, 'demonstration')
         if not js and (joint_topic or not (ev or tr)):
             raise ValueError(f'bag {path} has no sensor_msgs/JointState topic'
                              + (f' named {joint_topic}' if joint_topic else ''))
@@ -166,8 +207,14 @@ def read_stream(path, joint_topic: Optional[str] = None,
             raise ValueError(f'bag {path} has several joint-state topics '
                              f'{sorted({c.topic for c in js})}; choose one (learn and report: '
                              '--joint-topic; study: joint_topic in the study: block)')
-        tc = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool'
-              and (c.topic == teaching_topic if teaching_topic else c.topic.endswith('teaching'))]
+        bools = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool']
+        tc = ([c for c in bools if c.topic == teaching_topic] if teaching_topic else
+              _own(conns, node, 'teaching')
+              or [c for c in bools if c.topic.endswith('teaching')])
+        if len({c.topic for c in tc}) > 1:
+            raise ValueError(f'bag {path} has several teaching topics '
+                             f'{sorted({c.topic for c in tc})}; choose one (learn and report: '
+                             '--teaching-topic; study: teaching_topic in the study: block)')
         js_ids, ev_ids = {c.id for c in js}, {c.id for c in ev}
         tc_ids = {c.id for c in tc}
         for conn, log_ns, raw in reader.messages(connections=js + tc + ev + tr):
@@ -328,23 +375,32 @@ def _session_input(learner, e: StreamEvent, rep: Replay, pending: list) -> list:
     return []
 
 
-def read_task_record(path) -> Optional[str]:
+def read_task_record(path, learner_node: Optional[str] = None) -> Optional[str]:
     """Return the JSON text of the first task record in a bag (None when it has none).
 
     The learner node records its ``~/task_record`` (std_msgs/String) when it
-    records a bag; any String topic whose name ends in ``task_record`` counts.
+    records a bag: ``learner_node``'s, or the only learner node's in the bag
+    (several are refused, as in :func:`read_stream`).
     """
     from rosbags.rosbag2 import Reader
     try:
-        with Reader(Path(path)) as reader:
-            conns = [c for c in reader.connections if c.msgtype == 'std_msgs/msg/String'
-                     and c.topic.endswith('task_record')]
-            if not conns:                  # (no connections would read every message)
-                return None
-            for conn, _, raw in reader.messages(connections=conns):
-                return typestore().deserialize_cdr(raw, conn.msgtype).data
+        reader = Reader(Path(path))
+        reader.open()
     except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
         raise ValueError(f'bag {path} cannot be read: {exc}') from None
+    try:
+        conns = _own(reader.connections, _learner_node(path, reader.connections, learner_node),
+                     'task_record')
+        if not conns:                  # (no connections would read every message)
+            return None
+        for conn, _, raw in reader.messages(connections=conns):
+            return typestore().deserialize_cdr(raw, conn.msgtype).data
+    except ValueError:
+        raise
+    except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
+        raise ValueError(f'bag {path} cannot be read: {exc}') from None
+    finally:
+        reader.close()
     return None
 
 

@@ -198,7 +198,7 @@ def cmd_learn(args) -> int:
         raise CliError(str(exc)) from None
     # streamed (an hour of 1 kHz joint states is gigabytes as a list); the first event is
     # read before anything is written, so a bag that cannot be read leaves no output
-    events = read_stream(bag, args.joint_topic, args.teaching_topic)
+    events = read_stream(bag, args.joint_topic, args.teaching_topic, args.learner_node)
     try:
         first = next(events, None)
     except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
@@ -355,7 +355,8 @@ class _Parser(argparse.ArgumentParser):
 
 #: the options of ``learn`` that decide what is learned (a state directory has its own)
 _SESSION_OPTIONS = ('model', 'particles', 'alternatives', 'beta', 'seed', 'params_file', 'urdf',
-                    'features', 'joints', 'tool_frame', 'joint_topic', 'teaching_topic')
+                    'features', 'joints', 'tool_frame', 'joint_topic', 'teaching_topic',
+                    'learner_node')
 
 
 def _learning_options(p, choices=None, session: bool = False) -> None:
@@ -386,7 +387,11 @@ def _learning_options(p, choices=None, session: bool = False) -> None:
         p.add_argument('--joint-topic', help='the bag\'s sensor_msgs/JointState topic '
                        '(default: its only one)')
         p.add_argument('--teaching-topic', help='the bag\'s std_msgs/Bool teaching signal '
-                       '(default: any Bool topic whose name ends in "teaching")')
+                       '(default: the learner node\'s, else the only Bool topic whose name '
+                       'ends in "teaching")')
+        p.add_argument('--learner-node', metavar='NAME',
+                       help='the learner node whose session topics the bag is read with, '
+                       'by full name (e.g. /pref_learner; default: the only one in the bag)')
 
 
 def _bag_task(args, bag: Path):
@@ -401,7 +406,7 @@ def _bag_task(args, bag: Path):
     if any(getattr(args, k, None) for k in ('params_file', 'urdf', 'features', 'joints',
                                             'tool_frame')):
         return None
-    text = read_task_record(bag)
+    text = read_task_record(bag, args.learner_node)
     if text is None:
         return None
     over = {k: v for k, v in (('model', args.model), ('n_alternatives', args.alternatives))
@@ -527,7 +532,7 @@ def build_parser() -> argparse.ArgumentParser:
     st.add_argument('--params', required=True, metavar='PARAMS.yaml',
                     help='learner settings (flat keys or a ROS 2 params file) and an optional '
                     'study: block (group_angle, min_group, n_groups, leave_one_out, joint_topic, '
-                    'teaching_topic)')
+                    'teaching_topic, learner_node)')
     st.add_argument('--out', required=True, help='new directory for report, tables, summary')
     _executor_options(st, 'participants')
     _feature_module_option(st)

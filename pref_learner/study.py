@@ -63,7 +63,7 @@ QUANTILES = (0.05, 0.25, 0.5, 0.75, 0.95)
 WORKER_ENV = {'OPENBLAS_NUM_THREADS': '1', 'OMP_NUM_THREADS': '1', 'MKL_NUM_THREADS': '1'}
 #: the parameters file's ``study:`` block and its defaults
 STUDY_DEFAULTS = {'group_angle': 60.0, 'min_group': 2, 'n_groups': 0, 'leave_one_out': True,
-                  'joint_topic': '', 'teaching_topic': ''}
+                  'joint_topic': '', 'teaching_topic': '', 'learner_node': ''}
 
 
 # ================================================================ executors
@@ -217,6 +217,7 @@ class StudySettings:
     max_stamp_skew: float = 0.0
     joint_topic: str = ''
     teaching_topic: str = ''
+    learner_node: str = ''
     notes: Tuple[str, ...] = ()
     source: str = ''
 
@@ -295,6 +296,7 @@ def load_settings(path) -> StudySettings:
                         leave_one_out=bool(s['leave_one_out']), max_stamp_skew=max_skew,
                         joint_topic=str(s['joint_topic'] or ''),
                         teaching_topic=str(s['teaching_topic'] or ''),
+                        learner_node=str(s['learner_node'] or ''),
                         notes=tuple(notes), source=f'{path} ({where})')
     if not 0.0 < out.group_angle < 180.0:
         raise ValueError(f'parameters file {path}: study.group_angle must be in (0, 180) '
@@ -320,6 +322,7 @@ class ParticipantTask:
     feature_modules: Tuple[str, ...] = ()
     joint_topic: str = ''
     teaching_topic: str = ''
+    learner_node: str = ''
 
 
 def participant_seed(study_seed: int, participant: str) -> int:
@@ -471,7 +474,8 @@ def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list)
             kept = [r for r in rows if r['status'] == 'accepted']
             for r in (kept[-1:] if event.text == 'discard_last' else kept):
                 r.update(status='discarded', reason=event.text)
-    events = read_stream(path, task.joint_topic or None, task.teaching_topic or None)
+    events = read_stream(path, task.joint_topic or None, task.teaching_topic or None,
+                         task.learner_node or None)
     try:
         rep = replay_bag(L, events, on_output)
     except BagDamaged as exc:
@@ -952,7 +956,8 @@ def run_study(folder, params, out, workers: int = 1, scheduler: Optional[str] = 
                              participant_seed(settings.seed, p),
                              settings.leave_one_out, settings.max_stamp_skew,
                              tuple(feature_modules), settings.joint_topic,
-                             settings.teaching_topic) for p, path in sessions]
+                             settings.teaching_topic, settings.learner_node)
+             for p, path in sessions]
     executor = make_executor(workers, scheduler)
     raw = executor.map(analyse_participant, tasks, 'participants')
     results = []

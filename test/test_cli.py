@@ -178,6 +178,73 @@ def test_learn_chooses_among_several_joint_state_topics(tmp_path):
     assert res['status'] == 'ok' and res['n_accepted'] == 1, res.get('reason')
 
 
+def _two_learners_bag(path):
+    """`ros2 bag record -a` on a bench with two learner nodes: each one's own topics."""
+    with BagWriter(path) as w:
+        for i, node in enumerate(('/bench_a/pref_learner', '/bench_b/pref_learner')):
+            w.write(f'{node}/task_record', w.string(f'{{"node": {i}}}'), 1 + 100 * i)
+            w.write(f'{node}/session_events', w.string('discard_last'), 10 + 100 * i)
+            w.write(f'{node}/teaching', w.boolean(bool(i)), 20 + 100 * i)
+        w.write('/joint_states', w.joint_state(130, ['j0'], [0.0]), 130)
+    return path
+
+
+def test_a_bag_of_two_learner_nodes_is_not_mixed(tmp_path):
+    # one learner's session events, whole demonstrations, task record and teaching
+    # signal, never a mix of two: an ambiguous bag is refused, naming the nodes
+    from pref_learner.bags import read_task_record
+    bag = _two_learners_bag(tmp_path / 'two')
+    for read in (lambda: list(read_stream(bag)), lambda: read_task_record(bag)):
+        with pytest.raises(ValueError, match=r"several learner nodes \['/bench_a/pref_learner', "
+                           r"'/bench_b/pref_learner'\]; choose one \(learn and report: "
+                           r'--learner-node; study: learner_node'):
+            read()
+    ev = list(read_stream(bag, learner_node='/bench_b/pref_learner'))
+    assert [(e.kind, e.log_ns) for e in ev] == [('event', 110), ('teaching', 120),
+                                                ('joint_states', 130)]
+    assert ev[1].value is True          # bench_b's own teaching signal, not bench_a's
+    assert read_task_record(bag, 'bench_a/pref_learner/') == '{"node": 0}'
+    with pytest.raises(ValueError, match=r"no learner node /bench_c in it \(its learner "
+                       r"nodes: \['/bench_a/pref_learner', '/bench_b/pref_learner'\]\)"):
+        list(read_stream(bag, learner_node='/bench_c'))
+    # a study names the node in its study: block
+    from pref_learner.study import ParticipantTask, analyse_participant, load_settings
+    params = tmp_path / 'study.yaml'
+    params.write_text('n_particles: 300\nn_alternatives: 40\nstudy:\n'
+                      '  learner_node: /bench_b/pref_learner\n')
+    st = load_settings(params)
+    reasons = [analyse_participant(ParticipantTask('p', str(bag), st.learner, 1, False,
+                                                   learner_node=node))['reason']
+               for node in ('', st.learner_node)]
+    assert 'several learner nodes' in reasons[0], reasons
+    assert reasons[1].startswith("wrong robot: the bag's joint states name ['j0']"), reasons
+
+
+def test_a_bag_of_two_teaching_signals_is_not_mixed(tmp_path):
+    # two Bool topics ending in "teaching" and no learner node's own: refused, naming them
+    with BagWriter(tmp_path / 'b') as w:
+        w.write('/arm/teaching', w.boolean(True), 1)
+        w.write('/ui/teaching', w.boolean(False), 2)
+        w.write('/joint_states', w.joint_state(3, ['j0'], [0.0]), 3)
+    with pytest.raises(ValueError, match=r"several teaching topics \['/arm/teaching', "
+                       r"'/ui/teaching'\]; choose one \(learn and report: --teaching-topic"):
+        list(read_stream(tmp_path / 'b'))
+    ev = list(read_stream(tmp_path / 'b', teaching_topic='/ui/teaching'))
+    assert [(e.kind, e.value) for e in ev] == [('teaching', False), ('joint_states', False)]
+
+
+def test_learn_takes_the_learner_node_option(tmp_path):
+    bag = _two_learners_bag(tmp_path / 'two')
+    r = run(['learn', str(bag), '--out', str(tmp_path / 'o'), '--particles', '300',
+             '--alternatives', '40'])
+    assert r.returncode == 2 and 'several learner nodes' in r.stderr, r.stderr
+    r = run(['learn', str(bag), '--out', str(tmp_path / 'o'), '--particles', '300',
+             '--alternatives', '40', '--learner-node', '/bench_a/pref_learner'])
+    # the node's task record is read ({"node": 0} is not one): the error names it
+    assert r.returncode == 2 and 'several learner nodes' not in r.stderr, r.stderr
+    assert 'task record' in r.stderr, r.stderr
+
+
 def test_replay_keeps_what_came_before_a_read_error(tmp_path):
     # a storage error part-way (a disk, a truncated copy): the demonstrations before it are
     # learned, and the error says how far the bag was read
