@@ -716,7 +716,8 @@ class Learner:
         It hands out a provisional estimate (once; ``handed`` records it) when
         every model has one: those updated before ``m`` their update
         (``new``), ``m`` the one it is called with, those after it their
-        one-step reweighting, if its ESS is at least ``floor``.
+        one-step reweighting, if its ESS (copies merged,
+        :meth:`ParticlePosterior.distinct_ess`) is at least ``floor``.
         """
         def hand(rest: ParticlePosterior):
             quick = dict(new)
@@ -724,7 +725,7 @@ class Learner:
             for j, p in before.items():
                 if j not in quick:
                     quick[j] = p.reweighted(recs[j], lls[j])
-                    if quick[j].ess < floor:
+                    if quick[j].distinct_ess() < floor:
                         return
             handed.append(True)
             self.on_estimate(StepResult(index, {j: quick[j].summary() for j in before}, {},

@@ -65,6 +65,11 @@ def ess_from_log_weights(log_w: np.ndarray) -> float:
     return float(1.0 / np.sum(np.exp(2.0 * lw)))
 
 
+#: irrational weights that make :meth:`ParticlePosterior.distinct_ess`'s key of a particle
+_KEY_WEIGHTS = np.sqrt(np.array([2.0, 3.0, 5.0, 7.0, 11.0, 13.0, 17.0, 19.0, 23.0, 29.0, 31.0,
+                                 37.0, 41.0, 43.0, 47.0, 53.0]))
+
+
 def systematic_resample(log_w: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Draw indices ``(N,)`` by systematic resampling from log-weights ``(N,)``."""
     w = np.exp(log_normalise(np.asarray(log_w, dtype=np.float64)))
@@ -1333,7 +1338,31 @@ class ParticlePosterior:
 
     @property
     def ess(self) -> float:
+        """Return the ESS of the weights (Kong 1992): copies of a particle count one by one."""
         return ess_from_log_weights(self.log_weights)
+
+    def distinct_ess(self, log_w: Optional[np.ndarray] = None) -> float:
+        """Return the ESS with identical particles merged: what a published estimate rests on.
+
+        Kish's ``(sum w)^2 / sum w^2`` over the distinct particles (the same
+        direction, rationality and level), each weighing the sum of its
+        copies' weights (``log_w``, default the posterior's). Resampling makes
+        copies and a move round leaves some unmoved, so this is at most
+        :attr:`ess`, and it is the one a user sees (:class:`Summary`) and the
+        provisional estimate's floor. Tempering keeps :attr:`ess`.
+        """
+        lw = log_normalise(np.asarray(self.log_weights if log_w is None else log_w,
+                                      dtype=np.float64))
+        # one number per particle, equal for copies (the same bits in, the same bits out);
+        # distinct particles share one only by a coincidence of measure zero
+        key = self.theta @ _KEY_WEIGHTS[:self.d]
+        if self.log_beta is not None:
+            key = key + 1e3 * self.log_beta
+        if self.level is not None:
+            key = key + 1e6 * self.level
+        _, inverse = np.unique(key, return_inverse=True)
+        merged = np.bincount(inverse.ravel(), weights=np.exp(lw))
+        return float(1.0 / np.sum(merged * merged))
 
     def log_prior(self, theta: np.ndarray, log_beta: Optional[np.ndarray],
                   level: Optional[np.ndarray] = None) -> np.ndarray:
@@ -1514,7 +1543,8 @@ class ParticlePosterior:
         hand out before tempering ends: at the first point (before any step, or
         after a step's moves) where the particles would still temper and the
         rest of the likelihood weighed in at once (:meth:`reweighted` with
-        ``share = 1 - phi``) keeps an ESS of at least ``provisional_ess``.
+        ``share = 1 - phi``) keeps a :meth:`distinct_ess` of at least
+        ``provisional_ess``.
         Learning does not depend on it (it draws no random numbers; an
         exception it raises propagates).
         """
@@ -1536,8 +1566,9 @@ class ParticlePosterior:
         resampled = False
         while phi < 1.0:
             if on_provisional is not None:
-                ess_rest = ess_from_log_weights(cur.log_weights + (1.0 - phi) * ll)
-                if provisional_ess <= ess_rest < self.config.ess_target * n:
+                rest = cur.log_weights + (1.0 - phi) * ll
+                if (ess_from_log_weights(rest) < self.config.ess_target * n
+                        and cur.distinct_ess(rest) >= provisional_ess):
                     on_provisional(cur.reweighted(record, ll, 1.0 - phi))
                     on_provisional = None
             delta = _next_temperature(cur.log_weights, ll, 1.0 - phi,
@@ -1772,7 +1803,8 @@ class ParticlePosterior:
             bmean = self.config.beta
         counts = np.bincount(self.levels, weights=w, minlength=self.config.n_levels)
         levels = tuple(float(v) for v in counts)
-        return Summary(mean, map_, cov, std, lo, hi, self.ess, r_len, len(self.records),
+        return Summary(mean, map_, cov, std, lo, hi, self.distinct_ess(), r_len,
+                       len(self.records),
                        bmean, bci, levels, low_mass, float(self.acceptance),
                        self.log_beta is not None)
 

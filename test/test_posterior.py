@@ -3,6 +3,7 @@
 """Particle posterior against exact quadrature, an MCMC reference and properties."""
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -644,7 +645,8 @@ def test_provisional_estimate_after_a_tempering_step_matches_quadrature(model):
     np.testing.assert_array_equal(post.log_weights, ref.log_weights)
     assert len(got) == 1 and info.tempering_steps > 1
     early = got[0]
-    assert early.ess >= floor and not np.array_equal(early.theta, prior.theta)
+    # the floor holds with copies of a particle counted once
+    assert early.distinct_ess() >= floor and not np.array_equal(early.theta, prior.theta)
     # after a step the particles are equally weighted, so the log-weights are the rest of
     # the likelihood, (1 - phi) ll + const, with 0 < 1 - phi < 1 (a least-squares fit)
     ll_early = early.record_loglik(rec, early.theta, early.beta, early.level)
@@ -658,3 +660,26 @@ def test_provisional_estimate_after_a_tempering_step_matches_quadrature(model):
     prior.update(rec, np.random.default_rng(92), loglik=ll, on_provisional=none.append,
                  provisional_ess=float(cfg.n_particles))
     assert none == []
+
+
+def test_published_ess_counts_copies_of_a_particle_once():
+    # Kish's effective sample size (sum w)^2 / sum w^2 (Kish 1965, Survey Sampling), with
+    # identical particles (the copies resampling makes) merged before counting, worked by
+    # hand. The tempering rule keeps the ESS of the weights themselves (Kong 1992).
+    cfg = PosteriorConfig(n_particles=4, model='less', beta_range=(0.5, 50.0), n_levels=2)
+    post = ParticlePosterior.create(cfg, 3, np.random.default_rng(0))
+    post = replace(post, log_beta=np.zeros(4), level=np.zeros(4, dtype=np.int64))
+    copies = post._take(np.array([0, 0, 1, 2]))          # equal weights 1/4
+    assert copies.ess == pytest.approx(4.0)
+    # merged weights 1/2, 1/4, 1/4: 1 / (1/4 + 1/16 + 1/16) = 8/3
+    assert copies.distinct_ess() == pytest.approx(8.0 / 3.0)
+    assert copies.summary().ess == pytest.approx(8.0 / 3.0)
+    # weights 0.1, 0.2, 0.3, 0.4 on particles 0, 0, 1, 2: merged 0.3, 0.3, 0.4,
+    # 1 / (0.09 + 0.09 + 0.16) = 1 / 0.34
+    lw = np.log([0.1, 0.2, 0.3, 0.4])
+    assert copies.distinct_ess(lw) == pytest.approx(1.0 / 0.34)
+    # the same direction with another rationality or level is another particle
+    other = replace(copies, log_beta=copies.log_beta + np.array([0.0, 0.5, 0.0, 0.0]))
+    assert other.distinct_ess() == pytest.approx(4.0)
+    lev = replace(copies, level=np.array([0, 1, 0, 0]))
+    assert lev.distinct_ess() == pytest.approx(4.0)
