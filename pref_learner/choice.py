@@ -178,15 +178,46 @@ def log_similarity_sums(features: np.ndarray, bandwidth: BandwidthSpec = 'scott'
 
 
 # ---------------------------------------------------------------- models
-def _rewards(features: np.ndarray, theta: np.ndarray, beta: np.ndarray) -> np.ndarray:
-    """Scaled rewards ``beta_n theta_n . phi_j`` : (N, K)."""
-    r = theta @ features.T
-    r *= beta[:, None]
-    return r
+def _utilities(features: np.ndarray, theta: np.ndarray, beta: np.ndarray,
+               offsets: np.ndarray | None) -> np.ndarray:
+    """Return ``beta_n theta_n . phi_j - o_j`` : (N, K) as one matrix product.
+
+    ``[beta theta, 1] . [phi, -o]``: the scaling and the offsets go into the
+    (N, d + 1) and (K, d + 1) factors, so the (N, K) result is written once
+    (an offset of ``+inf``, a row a level excludes, gives ``-inf``).
+    """
+    n, d = theta.shape
+    extra = offsets is not None
+    u = np.empty((n, d + extra))
+    np.multiply(theta, np.broadcast_to(np.asarray(beta, dtype=np.float64), (n,))[:, None],
+                out=u[:, :d])
+    if not extra:
+        return u @ features.T
+    u[:, d] = 1.0
+    x = np.empty((features.shape[0], d + 1))
+    x[:, :d] = features
+    np.negative(offsets, out=x[:, d])
+    return u @ x.T
 
 
-def logsumexp_rows(r: np.ndarray) -> np.ndarray:
-    """Row-wise logsumexp of an (N, K) matrix, overwriting it (saves a copy)."""
+#: below this bound on ``|r|`` :func:`logsumexp_rows` takes ``exp`` directly: ``exp(600)``
+#: times 10^6 options stays below the largest float64 (about ``exp(709.8)``) and
+#: ``exp(-600)`` far above the smallest normal one (about ``exp(-708.4)``)
+DIRECT_LSE_BOUND = 600.0
+
+
+def logsumexp_rows(r: np.ndarray, bound: float = math.inf) -> np.ndarray:
+    """Row-wise logsumexp of an (N, K) matrix, overwriting it (saves a copy).
+
+    ``bound``: a bound on ``|r|`` known to the caller (for utilities,
+    ``max_n beta_n |theta_n| max_j |phi_j|`` plus the largest offset). Below
+    :data:`DIRECT_LSE_BOUND` no term can overflow or every term underflow,
+    so the row maximum is not subtracted (two passes over the matrix fewer);
+    the result then differs from the shifted one by rounding alone.
+    """
+    if bound < DIRECT_LSE_BOUND:
+        np.exp(r, out=r)
+        return np.log(r.sum(axis=1))
     m = r.max(axis=1)
     r -= m[:, None]
     np.exp(r, out=r)
@@ -229,10 +260,7 @@ class ChoiceModel:
     def utilities(self, features: np.ndarray, theta: np.ndarray, beta: np.ndarray,
                   offsets: np.ndarray | None = None) -> np.ndarray:
         """Utilities ``beta_n theta_n . phi_j - o_j`` : (N, K), unchecked (a new array)."""
-        r = _rewards(features, theta, beta)
-        if offsets is not None:
-            r -= offsets[None, :]
-        return r
+        return _utilities(features, theta, beta, offsets)
 
     def _checked_offsets(self, x, log_sim, bandwidth):
         """Return the set's offsets: the given similarity term (checked) or :meth:`set_offsets`."""

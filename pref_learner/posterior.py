@@ -37,6 +37,7 @@ passed in.
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 from dataclasses import asdict, dataclass, field, replace
@@ -457,6 +458,27 @@ class ChoiceRecord:
         ls[0] = self.log_sim_chosen[level]
         return ls
 
+    @functools.cached_property
+    def utility_bounds(self) -> Tuple[float, float, float]:
+        """Return ``max_j |phi_j|`` and the largest finite ``|offset|`` with and without LESS.
+
+        With them ``|beta theta.phi_j - o_j| <= beta |theta| max|phi| + max|o|``
+        on every row a level compares (a row beyond a pooled level's reach,
+        offset ``+inf``, gives utility ``-inf``, which ``exp`` takes exactly), so
+        :func:`choice.logsumexp_rows` may skip the row maximum. Computed once
+        per record.
+        """
+        fmax = float(np.sqrt(np.max(np.einsum('ij,ij->i', self.features, self.features))))
+
+        def largest(less):
+            try:
+                vals = [self.offsets(g, None, less) for g in range(self.n_levels)]
+            except ValueError:                 # no similarity term: never asked with LESS
+                return math.inf
+            vals = [np.abs(v[np.isfinite(v)]) for v in vals if v is not None]
+            return float(max((v.max() for v in vals if v.size), default=0.0))
+        return fmax, largest(True), largest(False)
+
     def offsets(self, level: int, cols: Optional[np.ndarray] = None,
                 less: bool = True) -> Optional[np.ndarray]:
         """Return what the utilities at ``level`` subtract per row, ordered as :meth:`columns`.
@@ -712,13 +734,24 @@ class SubsetScreen:
         self.offsets = np.concatenate(off).reshape(self.n_sets, 1 + kk)
         self.chosen = np.asarray(chosen, dtype=np.float64)
         self.constant = constant
+        # |u.x_j + offset_j| <= |u| max|x| + max|offset|: below choice.DIRECT_LSE_BOUND the
+        # log-sum-exps need no shift (as in ParticlePosterior.record_loglik)
+        finite = np.abs(self.offsets[np.isfinite(self.offsets)])
+        self.bound_terms = (float(np.sqrt(np.max(np.einsum('ij,ij->j', self.x, self.x)))),
+                            float(finite.max()) if finite.size else 0.0)
 
     def __call__(self, u: np.ndarray) -> np.ndarray:
         """Return the screen's summed log-likelihood at ``u = beta theta (n, d)``, ``(n,)``."""
         out = u @ self.chosen + self.constant
+        xmax, omax = self.bound_terms
+        norms = np.sqrt(np.einsum('ij,ij->i', u, u))
         for a in range(0, u.shape[0], self.BLOCK):
             e = (u[a:a + self.BLOCK] @ self.x).reshape(-1, self.n_sets, self.offsets.shape[1])
             e += self.offsets
+            if float(norms[a:a + self.BLOCK].max()) * xmax + omax < choice.DIRECT_LSE_BOUND:
+                np.exp(e, out=e)
+                out[a:a + self.BLOCK] -= np.log(e.sum(axis=2)).sum(axis=1)
+                continue
             top = e.max(axis=2, keepdims=True)
             e -= top
             np.exp(e, out=e)
@@ -1411,14 +1444,18 @@ class ParticlePosterior:
         """
         n = theta.shape[0]
         out = np.full(n, -np.inf)
+        fmax, o_less, o_plain = record.utility_bounds
+        omax = o_less if self.config.choice_model.uses_similarity else o_plain
+        scale = np.asarray(beta, dtype=np.float64) * np.sqrt(np.einsum('ij,ij->i', theta, theta))
         for a in range(0, n, _PARTICLE_BLOCK):     # blocks keep the (rows, K) utilities in cache
             b = min(n, a + _PARTICLE_BLOCK)
             part = out[a:b]
+            bound = float(scale[a:b].max()) * fmax + omax
             for g, sel, _, r in self._level_utilities(record, theta[a:b], beta[a:b],
                                                       None if level is None else level[a:b]):
                 chosen = r[:, 0].copy()
-                part[sel] = chosen - choice.logsumexp_rows(r) + (record.log_density[g]
-                                                                 if with_density else 0.0)
+                part[sel] = chosen - choice.logsumexp_rows(r, bound) + (
+                    record.log_density[g] if with_density else 0.0)
         return out
 
     def total_loglik(self, theta: np.ndarray, beta: np.ndarray,

@@ -228,3 +228,51 @@ def test_a_registered_model_is_used_by_the_posterior(monkeypatch):
     np.testing.assert_array_equal(posts['boltzmann'].theta, posts['boltzmann_copy'].theta)
     np.testing.assert_array_equal(posts['boltzmann'].log_lik,
                                   posts['boltzmann_copy'].log_lik)
+
+
+@pytest.mark.parametrize('scale', [1.0, 150.0, 599.0, 2000.0])
+def test_row_logsumexp_with_a_known_bound_matches_scipy(scale):
+    # Reference: scipy.special.logsumexp (shifted by the row maximum). Given a bound on
+    # |r| below choice.DIRECT_LSE_BOUND the kernel skips the shift; the results agree to
+    # rounding, also at the bound, with rows excluded (-inf) and a row whose every term is
+    # near -bound; at and beyond the threshold it shifts as scipy does.
+    from scipy.special import logsumexp
+    rng = np.random.default_rng(5)
+    r = rng.uniform(-scale, scale, size=(64, 1000))
+    r[3, 1:] = -np.inf                              # one row left
+    r[4] = -scale + rng.uniform(0.0, 1e-3, 1000)    # every term near the bottom
+    r[5] = scale - rng.uniform(0.0, 1e-3, 1000)     # every term near the top
+    ref = logsumexp(r, axis=1)
+    got = choice.logsumexp_rows(r.copy(), bound=scale)
+    np.testing.assert_allclose(got, ref, rtol=1e-13, atol=1e-12 * scale)
+    assert np.all(np.isfinite(got))
+    np.testing.assert_allclose(choice.logsumexp_rows(r.copy()), ref, rtol=1e-13,
+                               atol=1e-12 * scale)
+
+
+def test_record_loglik_takes_the_direct_kernel_within_its_bound(monkeypatch):
+    # The posterior's likelihood with the shift skipped equals, to rounding, the same
+    # likelihood with the shift (the kernel's threshold patched to 0), for both models and
+    # particles of any rationality; the Boltzmann one also the checked choice model's
+    # (scipy's logsumexp).
+    from pref_learner.posterior import ParticlePosterior, PosteriorConfig
+    rng = np.random.default_rng(8)
+    x = rng.normal(size=(300, 4)) * 3.0
+    th = rng.normal(size=(500, 4))
+    th /= np.linalg.norm(th, axis=1, keepdims=True)
+    beta = np.exp(rng.uniform(np.log(0.5), np.log(50.0), 500))
+    for model in ('boltzmann', 'less'):
+        post = ParticlePosterior.create(PosteriorConfig(n_particles=10, model=model), 4, rng)
+        rec = post.prepare(x, 7)
+        fmax, _, _ = rec.utility_bounds
+        assert fmax == pytest.approx(np.linalg.norm(x, axis=1).max(), rel=1e-15)
+        got = post.record_loglik(rec, th, beta)
+        with monkeypatch.context() as m:
+            m.setattr(choice, 'DIRECT_LSE_BOUND', 0.0)
+            shifted = post.record_loglik(rec, th, beta)
+        np.testing.assert_allclose(got, shifted, rtol=1e-12, atol=1e-10)
+        assert not np.array_equal(got, shifted)        # the other path was taken
+        if model == 'boltzmann':
+            np.testing.assert_allclose(post.record_loglik(rec, th, beta, with_density=False),
+                                       choice.get_model(model)(x, 7, th, beta),
+                                       rtol=1e-12, atol=1e-10)
