@@ -136,34 +136,49 @@ LEARNER_TOPICS = {'session_events': 'std_msgs/msg/String',
                   'teaching': 'std_msgs/msg/Bool'}
 
 
-def _learner_node(path, conns, learner_node: Optional[str]) -> Optional[str]:
-    """Return the learner node whose own topics a bag's inputs come from (None: no node's).
+class AmbiguousBag(ValueError):
+    """A bag whose learner inputs could come from several topics or learner nodes.
+
+    The message names them and the option that chooses one; it is the bag's
+    content, not damage, so the replay passes it on as it is.
+    """
+
+
+def _learner_node(path, conns, learner_node: Optional[str]):
+    """Return ``(node, nodes)``: the learner node a bag's inputs come from, and all of them.
 
     The nodes are the namespaces of the bag's :data:`LEARNER_TOPICS` other than
-    ``teaching`` (a robot's own teaching signal may end the same way); one
-    must be chosen when there are several, so two learners' sessions in one
-    recording are never mixed.
+    ``teaching`` (a robot's own teaching signal may end the same way); ``''``
+    is a node at the root. ``node`` is ``learner_node`` (full name, slashes
+    optional) when the bag has its topics, its teaching signal included;
+    None when the bag holds no learner node's topics; the only node when
+    none is named. Several, or a named one the bag lacks among others, raise
+    :class:`AmbiguousBag`, so two learners' sessions are never mixed.
     """
     nodes = sorted({c.topic.rsplit('/', 1)[0] for c in conns
                     for name, typ in LEARNER_TOPICS.items()
                     if name != 'teaching' and c.msgtype == typ
                     and c.topic.endswith('/' + name)})
+    shown = [n or '/' for n in nodes]
     if learner_node:
-        node = '/' + learner_node.strip('/')
-        if node not in nodes:
-            raise ValueError(f'bag {path} has no learner node {node} in it '
-                             f'(its learner nodes: {nodes})')
-        return node
+        node = learner_node.strip('/')
+        node = '/' + node if node else ''
+        if node in nodes or _own(conns, node, 'teaching'):
+            return node, nodes
+        if not nodes:
+            return None, nodes
+        raise AmbiguousBag(f'bag {path} has no learner node {node or "/"} in it '
+                           f'(its learner nodes: {shown})')
     if len(nodes) > 1:
-        raise ValueError(f'bag {path} holds the topics of several learner nodes {nodes}; '
-                         'choose one (learn and report: --learner-node; study: learner_node '
-                         'in the study: block)')
-    return nodes[0] if nodes else None
+        raise AmbiguousBag(f'bag {path} holds the topics of several learner nodes {shown}; '
+                           'choose one (learn and report: --learner-node; study: learner_node '
+                           'in the study: block)')
+    return (nodes[0] if nodes else None), nodes
 
 
 def _own(conns, node: Optional[str], name: str) -> list:
     """Return the connections of ``node``'s own topic ``name`` (none without a node)."""
-    return [c for c in conns if node and c.topic == f'{node}/{name}'
+    return [c for c in conns if node is not None and c.topic == f'{node}/{name}'
             and c.msgtype == LEARNER_TOPICS[name]]
 
 
@@ -198,23 +213,25 @@ def read_stream(path, joint_topic: Optional[str] = None,
         js = [c for c in conns if c.msgtype == 'sensor_msgs/msg/JointState'
               and (joint_topic is None or c.topic == joint_topic)]
         # what a learner node records besides: its session events and whole demonstrations
-        node = _learner_node(path, conns, learner_node)
+        node, nodes = _learner_node(path, conns, learner_node)
         ev, tr = _own(conns, node, 'session_events'), _own(conns, node, 'demonstration')
         if not js and (joint_topic or not (ev or tr)):
             raise ValueError(f'bag {path} has no sensor_msgs/JointState topic'
                              + (f' named {joint_topic}' if joint_topic else ''))
         if len({c.topic for c in js}) > 1:
-            raise ValueError(f'bag {path} has several joint-state topics '
-                             f'{sorted({c.topic for c in js})}; choose one (learn and report: '
-                             '--joint-topic; study: joint_topic in the study: block)')
+            raise AmbiguousBag(f'bag {path} has several joint-state topics '
+                               f'{sorted({c.topic for c in js})}; choose one (learn and '
+                               'report: --joint-topic; study: joint_topic in the study: block)')
         bools = [c for c in conns if c.msgtype == 'std_msgs/msg/Bool']
+        others = {f'{n}/teaching' for n in nodes if n != node}   # other learners' own
         tc = ([c for c in bools if c.topic == teaching_topic] if teaching_topic else
               _own(conns, node, 'teaching')
-              or [c for c in bools if c.topic.endswith('teaching')])
+              or [c for c in bools if c.topic.endswith('teaching') and c.topic not in others])
         if len({c.topic for c in tc}) > 1:
-            raise ValueError(f'bag {path} has several teaching topics '
-                             f'{sorted({c.topic for c in tc})}; choose one (learn and report: '
-                             '--teaching-topic; study: teaching_topic in the study: block)')
+            raise AmbiguousBag(f'bag {path} has several teaching topics '
+                               f'{sorted({c.topic for c in tc})}; choose one (learn and '
+                               'report: --teaching-topic; study: teaching_topic in the study: '
+                               'block)')
         js_ids, ev_ids = {c.id for c in js}, {c.id for c in ev}
         tc_ids = {c.id for c in tc}
         for conn, log_ns, raw in reader.messages(connections=js + tc + ev + tr):
@@ -289,6 +306,8 @@ def replay_bag(learner, events: Iterable[StreamEvent], on_output=None) -> Replay
             e = next(it)
         except StopIteration:
             break
+        except AmbiguousBag:                    # the bag's content: the user chooses
+            raise
         except Exception as exc:  # noqa: BLE001 -- storage and CDR errors vary
             if rep.messages == 0:
                 raise BagUnreadable(str(exc) if isinstance(exc, ValueError) else
@@ -380,7 +399,7 @@ def read_task_record(path, learner_node: Optional[str] = None) -> Optional[str]:
 
     The learner node records its ``~/task_record`` (std_msgs/String) when it
     records a bag: ``learner_node``'s, or the only learner node's in the bag
-    (several are refused, as in :func:`read_stream`).
+    (several raise :class:`AmbiguousBag`, as in :func:`read_stream`).
     """
     from rosbags.rosbag2 import Reader
     try:
@@ -389,16 +408,15 @@ def read_task_record(path, learner_node: Optional[str] = None) -> Optional[str]:
     except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
         raise ValueError(f'bag {path} cannot be read: {exc}') from None
     try:
-        conns = _own(reader.connections, _learner_node(path, reader.connections, learner_node),
-                     'task_record')
+        node, _ = _learner_node(path, reader.connections, learner_node)
+        conns = _own(reader.connections, node, 'task_record')
         if not conns:                  # (no connections would read every message)
             return None
-        for conn, _, raw in reader.messages(connections=conns):
-            return typestore().deserialize_cdr(raw, conn.msgtype).data
-    except ValueError:
-        raise
-    except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
-        raise ValueError(f'bag {path} cannot be read: {exc}') from None
+        try:
+            for conn, _, raw in reader.messages(connections=conns):
+                return typestore().deserialize_cdr(raw, conn.msgtype).data
+        except Exception as exc:  # noqa: BLE001 -- rosbags raises several types
+            raise ValueError(f'bag {path} cannot be read: {exc}') from None
     finally:
         reader.close()
     return None

@@ -66,11 +66,6 @@ def ess_from_log_weights(log_w: np.ndarray) -> float:
     return float(1.0 / np.sum(np.exp(2.0 * lw)))
 
 
-#: irrational weights that make :meth:`ParticlePosterior.distinct_ess`'s key of a particle
-_KEY_WEIGHTS = np.sqrt(np.array([2.0, 3.0, 5.0, 7.0, 11.0, 13.0, 17.0, 19.0, 23.0, 29.0, 31.0,
-                                 37.0, 41.0, 43.0, 47.0, 53.0]))
-
-
 def systematic_resample(log_w: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     """Draw indices ``(N,)`` by systematic resampling from log-weights ``(N,)``."""
     w = np.exp(log_normalise(np.asarray(log_w, dtype=np.float64)))
@@ -1386,14 +1381,12 @@ class ParticlePosterior:
         """
         lw = log_normalise(np.asarray(self.log_weights if log_w is None else log_w,
                                       dtype=np.float64))
-        # one number per particle, equal for copies (the same bits in, the same bits out);
-        # distinct particles share one only by a coincidence of measure zero
-        key = self.theta @ _KEY_WEIGHTS[:self.d]
-        if self.log_beta is not None:
-            key = key + 1e3 * self.log_beta
-        if self.level is not None:
-            key = key + 1e6 * self.level
-        _, inverse = np.unique(key, return_inverse=True)
+        cols = [self.theta] + [np.asarray(a, dtype=np.float64)[:, None]
+                               for a in (self.log_beta, self.level) if a is not None]
+        rows = np.ascontiguousarray(np.hstack(cols))
+        # each row's bytes as one item: copies are bit-identical rows (exact, any d)
+        items = rows.view(np.dtype((np.void, rows.dtype.itemsize * rows.shape[1]))).ravel()
+        _, inverse = np.unique(items, return_inverse=True)
         merged = np.bincount(inverse.ravel(), weights=np.exp(lw))
         return float(1.0 / np.sum(merged * merged))
 
@@ -1444,8 +1437,12 @@ class ParticlePosterior:
         """
         n = theta.shape[0]
         out = np.full(n, -np.inf)
+        model = self.config.choice_model
         fmax, o_less, o_plain = record.utility_bounds
-        omax = o_less if self.config.choice_model.uses_similarity else o_plain
+        # the bound holds for the linear utilities beta theta.phi - o (a model that
+        # overrides them takes the shifted log-sum-exp)
+        omax = ((o_less if model.uses_similarity else o_plain)
+                if type(model).utilities is choice.ChoiceModel.utilities else math.inf)
         scale = np.asarray(beta, dtype=np.float64) * np.sqrt(np.einsum('ij,ij->i', theta, theta))
         for a in range(0, n, _PARTICLE_BLOCK):     # blocks keep the (rows, K) utilities in cache
             b = min(n, a + _PARTICLE_BLOCK)

@@ -464,7 +464,8 @@ def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list)
     keeps its row with status ``discarded``; a bag that cannot be read to its
     end fails the session.
     """
-    from .bags import BagDamaged, BagUnreadable, WrongRobot, read_stream, replay_bag
+    from .bags import (AmbiguousBag, BagDamaged, BagUnreadable, WrongRobot, read_stream,
+                       replay_bag)
     if task.max_stamp_skew > 0:
         L.recorder.set_max_skew(task.max_stamp_skew)
 
@@ -478,6 +479,8 @@ def _replay_bag(path: Path, L, task: 'ParticipantTask', notes: list, rows: list)
                          task.learner_node or None)
     try:
         rep = replay_bag(L, events, on_output)
+    except AmbiguousBag as exc:
+        raise _Failed(str(exc)) from None
     except BagDamaged as exc:
         raise _Failed(f'corrupt bag: {exc}') from None
     except BagUnreadable as exc:

@@ -216,8 +216,46 @@ def test_a_bag_of_two_learner_nodes_is_not_mixed(tmp_path):
     reasons = [analyse_participant(ParticipantTask('p', str(bag), st.learner, 1, False,
                                                    learner_node=node))['reason']
                for node in ('', st.learner_node)]
-    assert 'several learner nodes' in reasons[0], reasons
+    assert 'several learner nodes' in reasons[0] and 'corrupt' not in reasons[0], reasons
     assert reasons[1].startswith("wrong robot: the bag's joint states name ['j0']"), reasons
+
+
+def test_a_learner_nodes_bag_takes_no_other_nodes_teaching_signal(tmp_path):
+    # bench a segments by motion (no teaching topic of its own), bench b by a pedal: a's
+    # replay never takes b's pedal; a node at the root keeps its events; a node whose only
+    # own topic is its teaching signal can be named; a named node is not required of a bag
+    # that holds no learner node's topics (one study setting for every participant)
+    with BagWriter(tmp_path / 'ab') as w:
+        w.write('/a/pref_learner/session_events', w.string('start'), 1)
+        w.write('/b/pref_learner/session_events', w.string('start'), 2)
+        w.write('/b/pref_learner/teaching', w.boolean(True), 3)
+        w.write('/joint_states', w.joint_state(4, ['j0'], [0.0]), 4)
+    assert [e.kind for e in read_stream(tmp_path / 'ab', learner_node='/a/pref_learner')] \
+        == ['event', 'joint_states']
+    with BagWriter(tmp_path / 'root') as w:
+        w.write('/session_events', w.string('discard_last'), 1)
+        w.write('/joint_states', w.joint_state(2, ['j0'], [0.0]), 2)
+    for node in (None, '/'):
+        assert [e.kind for e in read_stream(tmp_path / 'root', learner_node=node)] \
+            == ['event', 'joint_states']
+    with BagWriter(tmp_path / 'pedal') as w:
+        w.write('/pref_learner/teaching', w.boolean(True), 1)
+        w.write('/joint_states', w.joint_state(2, ['j0'], [0.0]), 2)
+    for node in ('/pref_learner', '/other'):
+        assert [e.kind for e in read_stream(tmp_path / 'pedal', learner_node=node)] \
+            == ['teaching', 'joint_states']
+
+
+def test_a_task_record_that_cannot_be_decoded_names_the_bag(tmp_path):
+    # a CDR string (encapsulation header, length, bytes, NUL; the OMG DDS-XTypes CDR
+    # layout) whose bytes are not UTF-8
+    import struct
+    with BagWriter(tmp_path / 'b') as w:
+        w.write_raw('/pref_learner/task_record', 'std_msgs/msg/String', 1,
+                    b'\x00\x01\x00\x00' + struct.pack('<I', 3) + b'\xff\xfe\x00')
+    from pref_learner.bags import read_task_record
+    with pytest.raises(ValueError, match=rf"bag {tmp_path / 'b'} cannot be read: "):
+        read_task_record(tmp_path / 'b')
 
 
 def test_a_bag_of_two_teaching_signals_is_not_mixed(tmp_path):

@@ -683,3 +683,17 @@ def test_published_ess_counts_copies_of_a_particle_once():
     assert other.distinct_ess() == pytest.approx(4.0)
     lev = replace(copies, level=np.array([0, 1, 0, 0]))
     assert lev.distinct_ess() == pytest.approx(4.0)
+
+
+def test_distinct_ess_in_many_dimensions_and_odd_particle_counts():
+    # the merge compares whole rows: any number of features, any particle count (copies
+    # of one particle are one however the linear algebra rounds); Kish's ESS by hand
+    for d, n in ((17, 1003), (40, 301)):
+        cfg = PosteriorConfig(n_particles=n, model='less')
+        post = ParticlePosterior.create(cfg, d, np.random.default_rng(d))
+        one = post._take(np.zeros(n, dtype=np.int64))
+        assert one.distinct_ess() == pytest.approx(1.0)
+        two = post._take(np.arange(n) % 2)                  # two particles, near-equal shares
+        share = np.bincount(np.arange(n) % 2) / n
+        assert two.distinct_ess() == pytest.approx(1.0 / np.sum(share ** 2))
+        assert np.isfinite(post.summary().ess)
