@@ -96,6 +96,20 @@ def test_services_never_block_intake_are_never_dropped_and_report_errors(tmp_pat
             assert not r.success and r.message == 'ZeroDivisionError: float division by zero'
             assert node.counters['internal_error'] == 1
             assert _call(ex, saves[0]).success         # and the node goes on
+            # a held teaching signal that fails to apply before a service: the service is
+            # still answered, with the reason, and the next one succeeds
+            node._last_js = time.monotonic() + 60     # the idle handler leaves it held
+            set_teaching = node.learner.set_teaching
+
+            def failing(on):
+                raise RuntimeError('teaching failed')
+            node.learner.set_teaching = failing
+            t = time.time_ns()
+            node._worker.put_control(('teach', t, t, True))
+            r = _call(ex, saves[0], timeout=10)
+            assert not r.success and r.message == 'RuntimeError: teaching failed'
+            node.learner.set_teaching = set_teaching
+            assert _call(ex, saves[0]).success
         node.destroy_node()
         client.destroy_node()
 

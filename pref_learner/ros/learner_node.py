@@ -408,11 +408,13 @@ class LearnerNode(Node):
         self._srv_exec.add_node(self._srv_node)
 
         def spin():
-            try:
-                while not self._closing.is_set() and self.context.ok():
+            while not self._closing.is_set() and self.context.ok():
+                try:
                     self._srv_exec.spin_once(timeout_sec=0.1)
-            except ExternalShutdownException:
-                pass
+                except ExternalShutdownException:
+                    return
+                except Exception as exc:  # noqa: BLE001 -- the services keep answering
+                    self._warn('internal_error', f'service thread: {type(exc).__name__}: {exc}')
         self._srv_thread = threading.Thread(target=spin, name='pref_learner_services',
                                             daemon=True)
         self._srv_thread.start()
@@ -441,10 +443,12 @@ class LearnerNode(Node):
         self._enqueue(('js', *self._received(info), raw))
 
     def _on_teaching(self, msg: Bool, info):
-        self._enqueue(('teach', *self._received(info), bool(msg.data)))
+        # an edge is never dropped (the control queue; the order with samples is kept)
+        self._worker.put_control(('teach', *self._received(info), bool(msg.data)))
 
     def _on_trajectory(self, msg: bytes):
-        self._enqueue(('traj', self._now(), msg))
+        # a whole demonstration is never dropped for a full sample queue
+        self._worker.put_control(('traj', self._now(), msg))
 
     def _on_candidate(self, msg: JointTrajectory):
         self._worker.put_control(('task', msg))
@@ -459,8 +463,8 @@ class LearnerNode(Node):
                 resp.success = False
                 resp.message = 'the node is shutting down'
                 return resp
-        resp.success = bool(box['ok'])
-        resp.message = str(box['message'])
+        resp.success = bool(box.get('ok', False))
+        resp.message = str(box.get('message', 'the request was not handled'))
         return resp
 
     def _warn(self, key, text):
@@ -529,10 +533,24 @@ class LearnerNode(Node):
             self._record(lambda bag: bag.write(self._teach_topic, bag.boolean(on), t))
             self._results(self.learner.set_teaching(on))
 
+    def _handle_service(self, recv, what, done, box):
+        """Apply the held teaching signals, then the service ``what``; always answer."""
+        try:
+            self._release_teaching(float('inf'))
+            box['ok'], box['message'] = self._service(what, recv)
+        except Exception as exc:  # noqa: BLE001 -- the caller gets the reason
+            box['ok'], box['message'] = False, f'{type(exc).__name__}: {exc}'
+            self._warn('internal_error', f'service {what}: {box["message"]}')
+        finally:
+            done.set()
+
     def _handle(self, item):
         kind = item[0]
         if kind == 'teach':
             self._held_teaching.append(item[1:])
+            return
+        if kind == 'srv':           # answered whatever happens, so the caller never waits on
+            self._handle_service(*item[1:])
             return
         self._release_teaching(item[1] if kind == 'js' else float('inf'))
         if kind == 'js':
@@ -550,15 +568,6 @@ class LearnerNode(Node):
             self._results(self.learner.feed(stamp, msg.name, msg.position, t))
         elif kind == 'traj':
             self._handle_trajectory(item[2], item[1])
-        elif kind == 'srv':
-            _, recv, what, done, box = item
-            try:
-                box['ok'], box['message'] = self._service(what, recv)
-            except Exception as exc:  # noqa: BLE001 -- the caller gets the reason
-                box['ok'], box['message'] = False, f'{type(exc).__name__}: {exc}'
-                self._warn('internal_error', f'service {what}: {box["message"]}')
-            finally:
-                done.set()
         elif kind == 'task':
             if self._add_user_task(item[1]):
                 self._propose()
