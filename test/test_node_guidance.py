@@ -16,6 +16,7 @@ from pref_learner.features import default_features_path, load_scenario
 from pref_learner.guidance import TaskGuide
 from pref_learner.learner import Learner, LearnerConfig
 from pref_learner.ros.learner_node import LearnerNode
+from pref_learner.safety import CAUTION
 from pref_learner.sim import SimulatedTeacher, TeacherConfig
 from ros_util import LATCHED, follow_status, ros_context, spin_until, spinning
 
@@ -94,6 +95,7 @@ def test_node_proposes_a_task_after_a_demonstration_and_a_user_task_can_win(tmp_
         np.testing.assert_allclose(msg.points[1].positions, best[2])
         assert float(status['next_task_gain']) == np.round(gains[-1], 4)
         assert json.loads(status['unknown'])                   # words on what is unknown
+        assert status['caution'] == CAUTION                    # beside the learned weights
         # markers: tool at start and goal, in the URDF's root frame (FK from the robot model)
         mk = markers[-1].markers
         tool = robot.frame_poses(np.stack([best[1], best[2]]), [robot.tool_frame]).positions

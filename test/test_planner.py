@@ -2,6 +2,8 @@
 # SPDX-License-Identifier: Apache-2.0
 """The trajectory optimiser: gradients, closed forms, preferences honoured, regret."""
 
+import json
+
 import numpy as np
 import pytest
 from scipy.optimize import check_grad
@@ -287,7 +289,9 @@ def test_planner_node_over_dds(capfd):
     from pref_learner.ros.planner_node import LATCHED, PlannerNode
     from pref_learner.safety import CAUTION, PLANNER_WARNING
     from ros_util import ros_context, spin_until, spinning
-    L = Learner(LearnerConfig(n_particles=1, n_alternatives=1))
+    # the session's waypoint count comes from its task record (48 here, the node's own
+    # default is 0: the record's)
+    L = Learner(LearnerConfig(n_particles=1, n_alternatives=1, n_waypoints=48))
     _, s, g = L.tasks()[0]
     with ros_context() as (ctx, ex):
         node = PlannerNode(context=ctx)
@@ -323,6 +327,23 @@ def test_planner_node_over_dds(capfd):
             assert spin_until(ex, lambda: node.counters['bad_request'] == 2, 10)
             wpub.publish(Float64MultiArray(data=[1.0, 0.0, 0.0, 0.0, 0.0, 0.0]))
             assert spin_until(ex, lambda: node.weights is not None, 10)
+            # malformed inputs are refused by name and the node keeps what it had
+            from std_msgs.msg import MultiArrayDimension, MultiArrayLayout
+            ppub = client.create_publisher(Float64MultiArray, '/pref_learner/particles',
+                                           LATCHED)
+            ppub.publish(Float64MultiArray(layout=MultiArrayLayout(dim=[
+                MultiArrayDimension(size=3), MultiArrayDimension(size=7)]), data=[1.0]))
+            assert spin_until(ex, lambda: node.counters['bad_particles'] == 1, 10)
+            assert 'particles refused: 1 values for a layout of 3 x 7' in node.last_warning
+            wpub.publish(Float64MultiArray(data=[float('nan')] * 6))
+            assert spin_until(ex, lambda: node.counters['bad_weights'] == 1, 10)
+            assert node.weights[0] == 1.0 and node.particles is None
+            broken = json.loads(L.record.to_json())
+            broken['joint_names'] = None
+            rpub.publish(String(data=json.dumps(broken)))
+            assert spin_until(ex, lambda: node.counters['bad_task_record'] == 1, 10)
+            assert node.task is not None and 'task record refused' in node.last_warning
+            wpub.publish(Float64MultiArray(data=[1.0, 0.0, 0.0, 0.0, 0.0, 0.0]))
             request([s])               # one point
             bad = s.copy()
             bad[1] = 3.0
@@ -336,7 +357,9 @@ def test_planner_node_over_dds(capfd):
         assert 'plan converged after' in capfd.readouterr().err
         # markers are expressed in the URDF's root link, not a fixed name
         assert markers[-1].markers[0].header.frame_id == node.robot.root_link
+        assert markers[-1].markers[1].text == CAUTION       # where the plan is shown
         traj = got[0]
+        assert len(traj.points) == 48
         q = np.array([p.positions for p in traj.points])
         t = np.array([p.time_from_start.sec + p.time_from_start.nanosec * 1e-9
                       for p in traj.points])

@@ -46,6 +46,7 @@ from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from visualization_msgs.msg import Marker, MarkerArray
 
+from ..safety import CAUTION
 from ..bags import estimate_arrays
 from ..choice import MODEL_CHOICES
 from ..guidance import TaskGuide, unknown_lines
@@ -262,7 +263,6 @@ class LearnerNode(Node):
         self.get_logger().info(
             f'learning {list(self.learner.names)} with model {self.config.model}; '
             f'{self.learner.n_demonstrations} demonstrations loaded')
-        from ..safety import CAUTION
         self.get_logger().warning(CAUTION)
 
     # ------------------------------------------------------------ parameters
@@ -895,6 +895,7 @@ class LearnerNode(Node):
                    ('next_task_ms', f'{self._proposal_ms:.1f}'),
                    ('candidate_tasks', json.dumps([t[0] for t in self._candidates()]))]
         common += [(f'samples_{k}', str(rc.get(k, 0))) for k in _SAMPLE_COUNTERS]
+        common += [('caution', CAUTION)]          # every screen of learned weights shows it
         common += [(f'node_{k}', str(v)) for k, v in sorted(self.counters.items())]
         models = []
         diagnostics = L.history_diagnostics()

@@ -49,7 +49,8 @@ class PlannerNode(Node):
             'alpha': (0.1, 'tail fraction for uncertainty_objective cvar'),
             'smoothness': (0.01, 'weight of the acceleration term'),
             'restarts': (1, 'seeded restarts besides the straight line'),
-            'n_waypoints': (64, 'waypoints per plan'),
+            'n_waypoints': (0, 'waypoints per plan; 0: the task record\'s, as the learner '
+                            'scores trajectories (another value is warned about)'),
             'max_acceleration': (2.0, 'joint acceleration limit for timing, rad/s^2'),
             'velocity_scale': (0.5, 'fraction of the URDF velocity limits used for timing'),
             'max_tool_speed': (0.25, 'cap on the tool frame\'s Cartesian speed for timing, m/s '
@@ -63,9 +64,18 @@ class PlannerNode(Node):
         self.get_logger().warning(CAUTION)
         self.get_logger().warning(PLANNER_WARNING)
         g = lambda k: self.get_parameter(k).value  # noqa: E731
+        checks = (('velocity_scale', 0.0 < g('velocity_scale') <= 1.0, 'in (0, 1]'),
+                  ('max_acceleration', g('max_acceleration') > 0.0, '> 0'),
+                  ('max_tool_speed', g('max_tool_speed') >= 0.0, '>= 0'),
+                  ('n_waypoints', g('n_waypoints') == 0 or g('n_waypoints') >= 4,
+                   '0 (the task record\'s) or >= 4'))
+        for key, ok, what in checks:
+            if not ok:
+                raise ValueError(f'parameter {key} must be {what}, got {g(key)!r}')
         self.planner_config = PlannerConfig(
-            n_waypoints=g('n_waypoints'), smoothness=g('smoothness'), restarts=g('restarts'),
-            uncertainty_objective=g('uncertainty_objective'), alpha=g('alpha'))
+            n_waypoints=g('n_waypoints') or 64, smoothness=g('smoothness'),
+            restarts=g('restarts'), uncertainty_objective=g('uncertainty_objective'),
+            alpha=g('alpha'))
         # (TaskModel of the learner's record, its robot, the planner), set at once
         self._model = (None, None, None)
         self.rng = np.random.default_rng(g('seed'))
@@ -90,13 +100,21 @@ class PlannerNode(Node):
         self.get_logger().warning(text)
 
     def _on_record(self, msg):
+        from dataclasses import replace
+
         from ..task import TaskModel, TaskRecord
         try:
             task = TaskModel.from_record(TaskRecord.from_json(msg.data))
-        except ValueError as exc:
-            self._warn('bad_task_record', f'task record refused: {exc}')
+        except Exception as exc:  # noqa: BLE001 -- any malformed record: named, node goes on
+            self._warn('bad_task_record', f'task record refused: {type(exc).__name__}: {exc}')
             return
-        planner = TrajectoryPlanner(task.features, self.planner_config)
+        n = self.get_parameter('n_waypoints').value or task.n_waypoints
+        if n != task.n_waypoints:
+            self._warn('waypoints_differ', f'planning with {n} waypoints where the learner '
+                       f'scores trajectories at {task.n_waypoints}: the planned features are '
+                       'not those the weights were learned on')
+        planner = TrajectoryPlanner(task.features, replace(self.planner_config, n_waypoints=n))
+        # (the estimates are kept: latched topics arrive in any order at start-up)
         self._model = (task, task.robot, planner)
         self.get_logger().info(f'task model received: {len(task.robot.joint_names)} joints, '
                                f'features {list(task.names)}')
@@ -115,13 +133,28 @@ class PlannerNode(Node):
         return self._model[2]
 
     def _on_weights(self, msg):
-        self.weights = np.array(msg.data)
+        w = np.array(msg.data, dtype=np.float64)
+        if w.ndim != 1 or w.size == 0 or not np.all(np.isfinite(w)):
+            self._warn('bad_weights', f'weights refused: {w.size} values, finite: '
+                       f'{bool(np.all(np.isfinite(w)))}; the previous ones are kept')
+            return
+        self.weights = w
 
     def _on_particles(self, msg):
         dims = msg.layout.dim
-        if len(dims) == 2:
-            arr = np.array(msg.data).reshape(dims[0].size, dims[1].size)
-            self.particles = arr
+        data = np.array(msg.data, dtype=np.float64)
+        shape = tuple(int(x.size) for x in dims)
+        d = None if self._model[2] is None else self._model[2].features.d
+        why = ('the layout is not (particles, columns)' if len(shape) != 2 else
+               f'{data.size} values for a layout of {shape[0]} x {shape[1]}'
+               if data.size != shape[0] * shape[1] or data.size == 0 else
+               f'{shape[1]} columns for {d} weights and a log-weight'
+               if d is not None and shape[1] < d + 1 else
+               'non-finite values' if not np.all(np.isfinite(data)) else '')
+        if why:
+            self._warn('bad_particles', f'particles refused: {why}; the previous ones are kept')
+            return
+        self.particles = data.reshape(shape)
 
     def _on_request(self, msg):
         self._worker.put(msg)
@@ -193,7 +226,17 @@ class PlannerNode(Node):
         mk.color.a, mk.color.r, mk.color.g = 1.0, 0.9, 0.5
         mk.pose.orientation.w = 1.0
         mk.points = [Point(x=float(a), y=float(b), z=float(c)) for a, b, c in tool]
-        self.marker_pub.publish(MarkerArray(markers=[mk]))
+        note = Marker()                    # the caution goes wherever the plan is shown
+        note.header.frame_id = robot.root_link
+        note.ns, note.id = 'plan_caution', 0
+        note.type = Marker.TEXT_VIEW_FACING
+        note.scale.z = 0.03
+        note.color.a, note.color.r, note.color.g, note.color.b = 1.0, 1.0, 0.3, 0.2
+        note.pose.orientation.w = 1.0
+        note.pose.position = Point(x=float(tool[-1, 0]), y=float(tool[-1, 1]),
+                                   z=float(tool[-1, 2]) + 0.1)
+        note.text = CAUTION
+        self.marker_pub.publish(MarkerArray(markers=[mk, note]))
         self.counters['plans'] += 1
 
     def destroy_node(self):
