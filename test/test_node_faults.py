@@ -299,3 +299,31 @@ def test_a_held_teaching_signal_is_due_when_the_stream_has_been_quiet(monkeypatc
     assert LearnerNode._on_idle(stub) is None and released == [float('inf')]
     stub._held_teaching.clear()
     assert LearnerNode._on_idle(stub) is None and len(released) == 1
+
+
+def test_run_time_settings_changed_one_by_one_all_apply():
+    # rclpy calls the parameter callbacks once per set_parameters; each change is checked
+    # and built on the ones accepted before it, also while a recording holds them back
+    import threading as th
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, segmentation='manual', **SMALL)
+
+        def srv(kind):
+            done, box = th.Event(), {}
+            node._worker.put_control(('srv', node._now(), kind, done, box))
+            assert done.wait(10)
+            return box
+        assert srv('start')['ok']
+        for name, value in (('speed_start', 0.5), ('speed_stop', 0.3), ('dwell', 1.0),
+                            ('min_duration', 1.0)):
+            res = node.set_parameters([Parameter(name, value=value)])
+            assert res[0].successful, (name, res[0].reason)
+        refused = node.set_parameters([Parameter('speed_stop', value=0.6)])
+        assert not refused[0].successful and 'speed_stop' in refused[0].reason
+        srv('stop')
+        want = dict(speed_start=0.5, speed_stop=0.3, dwell=1.0, min_duration=1.0)
+        end = time.time() + 10
+        while time.time() < end and any(getattr(node.config, k) != v for k, v in want.items()):
+            time.sleep(0.05)
+        assert {k: getattr(node.config, k) for k in want} == want
+        node.destroy_node()

@@ -345,7 +345,15 @@ class LearnerNode(Node):
         return SetParametersResult(successful=True)
 
     def _runtime_config(self, changes) -> LearnerConfig:
+        """Return the config of every run-time parameter's current value with ``changes``.
+
+        Built on the parameters, not on ``self.config``: rclpy calls the set
+        callbacks once per parameter, and a change a recording holds back
+        (``_pending_config``) is not in ``self.config`` yet, so each change
+        keeps, and is checked against, those accepted before it.
+        """
         d = {f.name: getattr(self.config, f.name) for f in fields(LearnerConfig)}
+        d.update({k: self.get_parameter(k).value for k in _RUNTIME if k in d})
         d.update({k: v for k, v in changes.items() if k in d})
         return LearnerConfig(**d)
 
