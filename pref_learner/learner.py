@@ -780,7 +780,16 @@ class Learner:
         self._persist_rebuilt(history)
 
     def reset(self) -> Optional[Path]:
-        """Forget everything learned; the state directory is archived, not deleted."""
+        """Forget everything learned; the state directory is archived, not deleted.
+
+        Refused (ValueError, nothing changed) while writes of this session are
+        still pending (:meth:`flush_storage` fails): the archive would lack them.
+        """
+        if self.store is not None and self.store.pending and not self.store.flush():
+            raise ValueError(f'reset refused: {len(self.store.pending)} writes of this '
+                             f'session are not on disk yet ({self.store.error}); they are '
+                             'retried with every write: free the state directory\'s disk and '
+                             'reset again')
         where = self.store.archive() if self.store is not None else None
         self._record_stored = False
         self._demos = []

@@ -151,6 +151,23 @@ def test_os_errors_keep_learning_write_nothing_partial_and_recover(tmp_path, mon
     np.testing.assert_array_equal(L2.posteriors['less'].theta, L.posteriors['less'].theta)
 
 
+def test_reset_with_writes_pending_is_refused_and_loses_nothing(tmp_path, monkeypatch):
+    # a reset archives the state directory; writes still pending (disk full) would be
+    # lost with it, so it is refused, naming them, until they are on disk
+    L = _session(tmp_path, 1)
+    disk = Disk(monkeypatch)
+    disk.full = True
+    SimulatedTeacher(L, TRUE, TeacherConfig(seed=8)).feed_session(L, 1, 2 * 10**18)
+    assert L.n_demonstrations == 2 and L.storage_error.startswith('ENOSPC')
+    with pytest.raises(ValueError, match=r'reset refused: \d+ writes of this session are not '
+                       r'on disk yet \(ENOSPC'):
+        L.reset()
+    assert L.n_demonstrations == 2 and not (tmp_path / 'archive').exists()
+    disk.full = False
+    where = L.reset()
+    assert 'demos/demo_000001.npz' in _files(where) and L.n_demonstrations == 0
+
+
 def test_failed_append_is_cut_back(tmp_path, monkeypatch):
     p = tmp_path / 'log.jsonl'
     store_mod.append_line(p, '{"a": 1}')

@@ -645,7 +645,10 @@ class LearnerNode(Node):
                 return True, f'stopped; demonstration {r.index + 1} learned'
             return True, f'stopped; rejected: {r.reason}: {r.detail}' if r else 'stopped'
         if what == 'reset':
-            where = L.reset()
+            try:
+                where = L.reset()
+            except ValueError as exc:        # writes still pending: refused, nothing lost
+                return False, str(exc)
             self._event('reset', recv)
             self._publish_estimates()
             self._propose()
