@@ -627,8 +627,10 @@ def resample(t: np.ndarray, q: np.ndarray, n_waypoints: int, method: str = 'time
     """Resample ``q : (S, n)`` at times ``t : (S,)`` to ``(n_waypoints, n)``.
 
     ``time``: equally spaced in time; ``arc_length``: equally spaced along the
-    tool path ``tool_positions : (S, 3)``. Linear interpolation between
-    samples; the first and last samples are kept exactly.
+    tool path ``tool_positions : (S, 3)`` (by time when the tool never moves).
+    Linear interpolation between samples; the first and last samples are
+    kept exactly (motion that moves no tool point at the end, e.g. a wrist
+    turn about an axis through it, lies between the last two waypoints).
     """
     if method == 'time':
         return _interp_rows(np.linspace(t[0], t[-1], n_waypoints), t, q)
@@ -636,8 +638,12 @@ def resample(t: np.ndarray, q: np.ndarray, n_waypoints: int, method: str = 'time
         raise ValueError('arc_length resampling needs tool positions')
     s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(tool_positions, axis=0),
                                                         axis=1))])
+    if not s[-1] > 1e-9:      # the tool never moves: by time (the alternatives keep theirs)
+        return _interp_rows(np.linspace(t[0], t[-1], n_waypoints), t, q)
     keep = np.concatenate([[True], np.diff(s) > 0])
-    return _interp_rows(np.linspace(0.0, s[-1], n_waypoints), s[keep], q[keep])
+    out = _interp_rows(np.linspace(0.0, s[-1], n_waypoints), s[keep], q[keep])
+    out[-1] = q[-1]           # also when the tool stood still through the last samples
+    return out
 
 
 def lowpass(t: np.ndarray, q: np.ndarray, cutoff_hz: float) -> np.ndarray:

@@ -126,6 +126,26 @@ def test_resampling_keeps_endpoints_and_arc_length_spacing(arm):
     assert seg.max() / seg.mean() - 1 < 0.02 and 1 - seg.min() / seg.mean() < 0.02
 
 
+def test_arc_length_resampling_keeps_the_last_sample_when_the_tool_stands_still():
+    # a final turn of the wrist about an axis through the tool point moves no tool: the
+    # last waypoint is still the last sample; a demonstration whose tool never moves is
+    # resampled by time (numpy.interp), as the alternatives' retiming leaves such rows
+    t = np.linspace(0.0, 2.0, 300)
+    q = np.zeros((300, 2))
+    q[:200, 0] = np.linspace(0.0, 1.0, 200)
+    q[200:, 0] = 1.0
+    q[200:, 1] = np.linspace(0.0, 0.5, 100)              # the wrist alone
+    tool = np.zeros((300, 3))
+    tool[:200, 0] = np.linspace(0.0, 0.3, 200)
+    tool[200:, 0] = 0.3
+    out = resample(t, q, 16, 'arc_length', tool)
+    np.testing.assert_array_equal(out[-1], q[-1])
+    np.testing.assert_array_equal(out[0], q[0])
+    still = resample(t, q, 16, 'arc_length', np.zeros((300, 3)))
+    ref = np.stack([np.interp(np.linspace(0.0, 2.0, 16), t, q[:, j]) for j in range(2)], 1)
+    np.testing.assert_allclose(still, ref, rtol=0, atol=1e-12)
+
+
 def test_batch_arc_length_retiming_matches_numpy_interp_row_by_row():
     # Reference: numpy.interp (linear interpolation) of each joint at equal steps of the
     # row's normalised tool-path length; a row whose tool does not move stays as it was.
