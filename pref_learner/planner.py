@@ -20,12 +20,15 @@ Smooth surrogate. ``min``/``max`` aggregates and distances at zero have no
 gradient at their kinks, which stalls a quasi-Newton method. The optimiser
 therefore minimises ``J`` with smooth surrogates of the features, each with
 temperature ``t_j = soft_temperature * scale_j`` in feature j's units
-(:attr:`TrajectoryPlanner.temperatures`; 0.02 of the scale by default, 1.6 mm
-for the shipped operator-zone distance): a min/max aggregate becomes the
-log-sum-exp soft min/max, within ``t_j log T`` of the exact one; the
-Euclidean distance of ``point_distance`` / ``capsule_distance`` and each
-segment of ``path_length`` are rounded off at zero, within ``t_j`` of the
-exact value. The plan's reported cost, reward and features are the exact ones.
+(:attr:`TrajectoryPlanner.temperatures`; 0.02 of the scale by default): a
+min/max aggregate becomes the log-sum-exp soft min/max, within ``t_j log T``
+of the exact one; the Euclidean distance of ``point_distance`` /
+``capsule_distance`` and each segment of ``path_length`` are rounded off at
+zero, within ``t_j`` of the exact value at each waypoint, at the same
+``t_j``. A distance under a min/max aggregate gets both, within
+``t_j (1 + log T)``; under a mean or integral the rounding of each waypoint
+is weighed as the aggregate weighs it. The plan's reported cost, reward and
+features are the exact ones.
 
 Optimiser. The waypoints are the straight line plus a clamped cubic B-spline
 (:func:`spline_basis`) whose controls live in a box that keeps every
