@@ -460,10 +460,17 @@ def time_parametrize(q: np.ndarray, v_max: np.ndarray, a_max: np.ndarray) -> np.
     """Time waypoints ``q : (T, n)`` with one uniform step; returns ``(T,)``.
 
     The step keeps finite-difference joint speeds below ``v_max`` and
-    accelerations below ``a_max`` (both ``(n,)``, > 0).
+    accelerations below ``a_max`` (both ``(n,)``, finite and > 0), the
+    robot at rest before the first waypoint and after the last (so the
+    first and last steps count as accelerations from and to rest).
     """
+    v_max, a_max = np.asarray(v_max, dtype=np.float64), np.asarray(a_max, dtype=np.float64)
+    for name, lim in (('velocity', v_max), ('acceleration', a_max)):
+        if not np.all(np.isfinite(lim) & (lim > 0)):
+            raise ValueError(f'joint {name} limits must be finite and > 0, got {lim.tolist()}')
     dq = np.abs(np.diff(q, axis=0))
-    ddq = np.abs(np.diff(q, n=2, axis=0)) if len(q) > 2 else np.zeros((1, q.shape[1]))
+    inner = np.abs(np.diff(q, n=2, axis=0)) if len(q) > 2 else np.zeros((0, q.shape[1]))
+    ddq = np.concatenate([dq[:1], inner, dq[-1:]]) if dq.size else inner
     dt_v = float(np.max(dq / v_max)) if dq.size else 0.0
     dt_a = float(np.sqrt(np.max(ddq / a_max))) if ddq.size else 0.0
     dt = max(dt_v, dt_a, 1e-3)

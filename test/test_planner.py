@@ -277,7 +277,17 @@ def test_time_parametrization_respects_limits():
     t = time_parametrize(q, v, a)
     dt = np.diff(t)
     assert np.all(np.abs(np.diff(q, axis=0)) / dt[:, None] <= v + 1e-12)
-    assert np.all(np.abs(np.diff(q, n=2, axis=0)) / dt[0] ** 2 <= a + 1e-12)
+    # finite-difference accelerations (common practice), the robot at rest before the
+    # first waypoint and after the last (the waypoints padded with copies of the ends)
+    rest = np.concatenate([q[:1], q, q[-1:]])
+    assert np.all(np.abs(np.diff(rest, n=2, axis=0)) / dt[0] ** 2 <= a + 1e-12)
+    # a straight line at constant speed: the start from rest bounds the step
+    line = np.linspace(0.0, 1.0, 64)[:, None]
+    step = time_parametrize(line, np.array([1.0]), np.array([2.0]))[1]
+    assert step == pytest.approx(np.sqrt((1.0 / 63) / 2.0), rel=1e-12)
+    for bad in (np.array([-0.5]), np.array([0.0]), np.array([np.nan])):
+        with pytest.raises(ValueError, match='limits must be finite and > 0'):
+            time_parametrize(line, bad, np.array([2.0]))
 
 
 def test_planner_node_over_dds(capfd):
