@@ -358,7 +358,7 @@ def _session_input(learner, e: StreamEvent, rep: Replay, pending: list) -> list:
     if e.kind == 'trajectory':
         try:
             demo = trajectory_demonstration(e.names, e.positions, e.times,
-                                            learner.robot.joint_names)
+                                            learner.robot.joint_names, learner.recorder.config)
         except DemonstrationError as exc:     # the node refused it too (bad_trajectory)
             rep.notes.append(f'a ~/demonstration at log time {e.log_ns} ns {exc}; not learned')
             return []

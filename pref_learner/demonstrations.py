@@ -62,6 +62,7 @@ its alternatives, so sensor noise cannot tell them apart.
 from __future__ import annotations
 
 import collections
+import math
 from dataclasses import dataclass, replace
 from typing import Deque, Dict, List, Optional, Sequence, Tuple, Union
 
@@ -105,29 +106,50 @@ class Demonstration:
                    int(arrays['stamp_ns']))
 
 
-def trajectory_demonstration(joint_names, rows, times, chain: Sequence[str]) -> Demonstration:
+def trajectory_demonstration(joint_names, rows, times, chain: Sequence[str],
+                             config: Optional['SegmentConfig'] = None) -> Demonstration:
     """Return a demonstration given whole, as a ``trajectory_msgs/JointTrajectory`` has it.
 
     ``joint_names`` and ``rows`` (one position list per point) in the
     message's order, ``times`` the points' ``time_from_start`` in seconds;
-    the chain's joints are taken in its order. Raises
-    :class:`DemonstrationError` naming what is wrong (the text follows the
-    topic's name in a warning).
+    the chain's joints are taken in its order. With ``config``, the
+    acceptance checks of a recorded segment apply too (``min_duration``,
+    ``min_motion``, ``max_duration``; not ``max_gap``: a trajectory's points
+    may be sparse).
+    Raises :class:`DemonstrationError` naming what is wrong and where (the
+    text follows the topic's name in a warning).
     """
     if len(rows) < 2:
         raise DemonstrationError(f'has {len(rows)} points; needs >= 2')
     names = list(joint_names)
+    twice = sorted({j for j in names if names.count(j) > 1})
+    if twice:
+        raise DemonstrationError(f'names joint {twice[0]} more than once')
     missing = [j for j in chain if j not in names]
     if missing:
         raise DemonstrationError(f'lacks joint {missing[0]}')
+    for k, row in enumerate(rows):
+        if len(row) != len(names):
+            raise DemonstrationError(f'point {k} has {len(row)} positions for '
+                                     f'{len(names)} joint_names')
     idx = [names.index(j) for j in chain]
-    try:
-        q = np.array([[row[i] for i in idx] for row in rows], dtype=np.float64)
-    except IndexError:
-        raise DemonstrationError('points have fewer positions than joint_names') from None
+    q = np.array([[row[i] for i in idx] for row in rows], dtype=np.float64)
     t = np.asarray(times, dtype=np.float64)
-    if not np.all(np.isfinite(q)) or np.any(np.diff(t) <= 0):
-        raise DemonstrationError('has NaN positions or non-increasing time_from_start')
+    bad = np.flatnonzero(~np.all(np.isfinite(q), axis=1))
+    if bad.size:
+        raise DemonstrationError(f'point {bad[0]} has a NaN or infinite position')
+    back = np.flatnonzero(~(np.diff(t) > 0))
+    if back.size:
+        raise DemonstrationError(f'time_from_start does not increase at point {back[0] + 1} '
+                                 f'({t[back[0]]:g} s, then {t[back[0] + 1]:g} s)')
+    if config is not None:
+        if t[-1] - t[0] > config.max_duration:
+            raise DemonstrationError(f'is refused: too_long: {t[-1] - t[0]:.3f} s > '
+                                     f'max_duration {config.max_duration} s')
+        rej = check_segment(np.round((t - t[0]) * 1e9).astype(np.int64), q, 0,
+                            replace(config, max_gap=math.inf))
+        if rej is not None:
+            raise DemonstrationError(f'is refused: {rej.reason}: {rej.detail}')
     return Demonstration(t - t[0], q, tuple(chain))
 
 

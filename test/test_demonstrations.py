@@ -2,6 +2,8 @@
 # SPDX-License-Identifier: Apache-2.0
 """Segmentation, cleaning, resampling and alternative sets."""
 
+import re
+
 import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
@@ -255,3 +257,29 @@ def test_prepare_keeps_a_demonstration_along_a_joint_limit_within_it(arm):
     out = prepare(demo, PrepareConfig(64, 'arc_length', 10.0, 1e-4), arm)   # the node's
     assert np.all(out >= arm.lower) and np.all(out <= arm.upper)
     assert out[-1, 1] == pytest.approx(arm.upper[1])
+
+
+def test_a_whole_trajectory_is_checked_as_a_recorded_one_and_faults_are_named():
+    # ~/demonstration: each fault named with its point; the recorded segments' acceptance
+    # checks (min_duration, min_motion, max_duration) apply, max_gap not (sparse points)
+    from pref_learner.demonstrations import (DemonstrationError, SegmentConfig,
+                                             trajectory_demonstration)
+    names = ['a', 'b']
+    cfg = SegmentConfig(min_duration=0.5, min_motion=0.05, max_duration=30.0, max_gap=0.1)
+    rows = [[0.0, 0.0], [0.2, 0.1], [0.4, 0.3]]
+    demo = trajectory_demonstration(names, rows, [1.0, 2.0, 3.0], names, cfg)
+    np.testing.assert_array_equal(demo.t, [0.0, 1.0, 2.0])     # 1 s gaps pass
+    cases = [
+        ((['a', 'a'], rows, [0, 1, 2]), 'names joint a more than once'),
+        ((names, [[0.0, 0.0], [0.1], [0.2, 0.2]], [0, 1, 2]), 'point 1 has 1 positions for 2'),
+        ((names, [[0.0, 0.0], [0.1, 0.1], [0.2, 0.2, 9.0]], [0, 1, 2]), 'point 2 has 3'),
+        ((names, [[0.0, 0.0], [np.nan, 0.1], [0.2, 0.2]], [0, 1, 2]),
+         'point 1 has a NaN or infinite position'),
+        ((names, rows, [0.0, 1.0, 1.0]), 'time_from_start does not increase at point 2'),
+        ((names, rows, [0.0, 0.1, 0.2]), 'too_short: 0.200 s < min_duration 0.5 s'),
+        ((names, [[0.0, 0.0], [0.01, 0.0], [0.02, 0.01]], [0, 1, 2]), 'too_little_motion'),
+        ((names, rows, [0.0, 20.0, 40.0]), 'too_long: 40.000 s > max_duration 30.0 s'),
+    ]
+    for args, words in cases:
+        with pytest.raises(DemonstrationError, match=re.escape(words)):
+            trajectory_demonstration(*args, names, cfg)

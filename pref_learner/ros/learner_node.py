@@ -680,7 +680,7 @@ class LearnerNode(Node):
             demo = trajectory_demonstration(
                 msg.joint_names, [p.positions for p in pts],
                 [p.time_from_start.sec + p.time_from_start.nanosec * 1e-9 for p in pts],
-                self.learner.robot.joint_names)
+                self.learner.robot.joint_names, self.learner.recorder.config)
         except DemonstrationError as exc:
             self._warn('bad_trajectory', f'~/demonstration {exc}')
             return
