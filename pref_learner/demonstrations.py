@@ -233,6 +233,11 @@ class _Track:
         self.samples: Deque[Tuple[int, int, np.ndarray]] = collections.deque(maxlen=maxlen)
 
 
+#: the counters of samples the recorder refuses (a rejection names those of its segment)
+REFUSED_SAMPLES = ('mismatched_lengths', 'missing_joint', 'zero_stamp', 'stamp_out_of_range',
+                   'invalid', 'duplicate', 'out_of_order', 'stamp_ahead', 'unconfirmed')
+
+
 class Recorder:
     """Segments a joint-state stream into demonstrations (see module docstring)."""
 
@@ -255,6 +260,7 @@ class Recorder:
         self._ring: Deque[Tuple[int, np.ndarray]] = collections.deque()
         self._seg: Optional[List[Tuple[int, np.ndarray]]] = None
         self._seg_invalid = 0
+        self._seg_counts: Dict[str, int] = {}       # the refusal counters when it began
         self._quiet_since: Optional[int] = None
         self._win: Deque[Tuple[int, np.ndarray]] = collections.deque()
         self._ema: Optional[np.ndarray] = None
@@ -403,6 +409,7 @@ class Recorder:
                                         self._seg[0][0]))
                 self._seg = []
                 self._seg_invalid = 0
+                self._mark()
         self._tracks = []
         self._timeline = True
         self._first_candidate = None
@@ -480,6 +487,7 @@ class Recorder:
                 self._seg = list(self._ring)
                 self._ring.clear()
                 self._seg_invalid = 0
+                self._mark()
                 self._quiet_since = None
             return []
         if v < c.speed_stop:
@@ -502,6 +510,7 @@ class Recorder:
             self._seg.append(self._ring[-1])  # the last sample before the start
         self._ring.clear()
         self._seg_invalid = 0
+        self._mark()
         return []
 
     def stop(self) -> list:
@@ -534,7 +543,21 @@ class Recorder:
         self._ring.clear()
 
     # ------------------------------------------------------------ finishing
+    def _mark(self) -> None:
+        """Note the refusal counters as a segment begins (:meth:`_refused`)."""
+        self._seg_counts = {k: self.counters[k] for k in REFUSED_SAMPLES}
+
+    def _refused(self) -> str:
+        """Return what the recorder refused since the segment began ('' when nothing)."""
+        got = [(k, self.counters[k] - self._seg_counts.get(k, 0)) for k in REFUSED_SAMPLES]
+        got = [(k, n) for k, n in got if n > 0]
+        if not got:
+            return ''
+        return (f'; {sum(n for _, n in got)} samples refused meanwhile ('
+                + ', '.join(f'{k} {n}' for k, n in got) + ')')
+
     def _reject(self, reason, detail, stamp):
+        detail = detail + self._refused()
         self.counters['rejected'] += 1
         self.counters['rejected_' + reason] += 1
         self.last_reason = f'{reason}: {detail}'

@@ -283,3 +283,22 @@ def test_a_whole_trajectory_is_checked_as_a_recorded_one_and_faults_are_named():
     for args, words in cases:
         with pytest.raises(DemonstrationError, match=re.escape(words)):
             trajectory_demonstration(*args, names, cfg)
+
+
+def test_a_rejection_names_the_samples_refused_during_its_segment():
+    # a driver that never stamps its messages: the demonstration has no samples, and the
+    # rejection says why (the counters of this segment alone, not the earlier ones)
+    rec = Recorder(NAMES, SegmentConfig(mode='manual'))
+    rec.feed(0, NAMES, np.zeros(7))                       # before the segment
+    rec.start()
+    for k in range(200):
+        rec.feed(0, NAMES, np.zeros(7))
+    rec.feed(10**9, NAMES[:3], np.zeros(3))               # a message lacking joints
+    out = rec.stop()
+    assert out[0].reason == 'too_short'
+    assert out[0].detail == ('no samples; 201 samples refused meanwhile (missing_joint 1, '
+                             'zero_stamp 200)')
+    rec.start()                                           # the next segment starts afresh
+    for k in range(30):
+        rec.feed(10**9 + k * 10**7, NAMES, np.full(7, 0.01 * k))
+    assert 'refused' not in rec.stop()[0].detail
