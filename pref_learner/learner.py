@@ -596,7 +596,8 @@ class Learner:
         """Learn from one accepted demonstration (stored first, then the posterior).
 
         Raises :class:`DemonstrationError` for data that cannot be learned from; any
-        other exception is a fault of the program and leaves the learner as it was.
+        other exception is a fault of the program and leaves the learner as it was,
+        the stored demonstration moved to ``quarantine/`` with the reason.
         """
         self._check_demonstration(demo)
         index = len(self._demos)
@@ -606,15 +607,23 @@ class Learner:
         posteriors = dict(self.posteriors)
         try:
             return self._learn_stored(demo)
-        except BaseException:
-            del self._demos[index:]             # as it was: not learned, not kept
+        except BaseException as exc:
+            del self._demos[index:]             # as it was: not learned
             del self._diagnostics[index:]
             self.posteriors = posteriors
             if store is not None:
                 try:
+                    path = store.demo_dir / f'demo_{index:06d}.npz'
+                    if isinstance(exc, Exception) and path.exists():
+                        # a fault of the program, not of the data: the recording is kept
+                        # aside with the reason (not a rejection of the demonstration)
+                        why = (f'demonstration {index} was not learned: internal error '
+                               f'{type(exc).__name__}: {exc}')
+                        store.quarantine_demo(path, why)
+                        self.quarantined.append(why)
                     store.forget_demo(index)
-                except OSError as exc:
-                    store.fail(exc)
+                except OSError as err:
+                    store.fail(err)
             raise
 
     def _learn_stored(self, demo: Demonstration) -> StepResult:

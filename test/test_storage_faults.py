@@ -110,6 +110,12 @@ def test_programming_errors_are_not_recorded_as_bad_demonstrations(tmp_path, mon
         SimulatedTeacher(L, TRUE, TeacherConfig(seed=7)).feed_session(L, 1, 2 * 10**18)
     assert L.rejections == [] and L.n_demonstrations == 1
     assert _files(tmp_path / 'demos') == ['demo_000000.npz']
+    # the recording is not lost: kept aside with the fault that stopped it
+    kept = _files(tmp_path / 'quarantine')
+    assert [f.split('_')[:2] for f in kept] == [['demo', '000001']] * 2
+    assert 'internal error ValueError: operands could not be broadcast' in \
+        (tmp_path / 'quarantine' / kept[1]).read_text()
+    assert L.quarantined[-1].startswith('demonstration 1 was not learned: internal error')
     np.testing.assert_array_equal(L.posteriors['less'].theta, theta)
     monkeypatch.undo()
     # a data problem still is a recorded rejection

@@ -185,11 +185,19 @@ class PlannerNode(Node):
                                  f'{len(names)} joint names')
             ends.append(np.array([p.positions[i] for i in idx], dtype=np.float64))
         if self.weights is None:
-            raise ValueError('no weights received yet')
+            topic = self.get_parameter('weights_topic').value
+            raise ValueError(f'no weights received yet on {topic} (a learner with model both '
+                             'publishes ~/boltzmann/weights and '
+                             '~/less/weights: set weights_topic and particles_topic to one)')
         d = planner.features.d
         if len(self.weights) != d:
             raise ValueError(f'{len(self.weights)} weights for the task record\'s {d} features')
-        if planner.config.uncertainty_objective == 'cvar' and self.particles is not None:
+        cvar = planner.config.uncertainty_objective == 'cvar'
+        if cvar and self.particles is None:
+            self._warn('cvar_without_particles', 'uncertainty_objective cvar, but no particles '
+                       f'received yet on {self.get_parameter("particles_topic").value}: planned '
+                       'on the mean weights')
+        if cvar and self.particles is not None:
             parts = self.particles
             theta = parts[:, :d]
             lw = parts[:, -1]
