@@ -372,6 +372,11 @@ class Recorder:
         if not self._timeline:
             # no timeline yet (start, or the receive clock went back): watch for `quiet`
             # seconds, then follow the confirmed track stamped closest to the receive clock
+            if self._first_candidate is not None and recv < self._first_candidate - tol:
+                # the receive clock went back before a timeline was confirmed (a simulation
+                # reset at start-up): watch afresh from now, with this sample's track alone
+                self._tracks = [track]
+                self._first_candidate = None
             if self._first_candidate is None:
                 self._first_candidate = recv
             if recv - self._first_candidate < sc.quiet * 1e9:

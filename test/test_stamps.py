@@ -267,3 +267,16 @@ def test_a_new_timeline_among_wrong_clocks_is_adopted_after_quiet():
                             timeline_changes=1)
     assert clean.counters['timeline_changes'] == 1
     assert messy.counters['samples'] == clean.counters['samples']   # none of it lost
+
+
+def test_a_clock_reset_before_any_timeline_is_followed_at_once():
+    # simulated time reset at start-up (stamps and receive times both back to 0) before the
+    # recorder confirmed a timeline: the new clock is followed after the usual quiet
+    # period, not only once it passes the old time (1,000 s later)
+    rec = Recorder(NAMES, SegmentConfig(mode='manual'))
+    old = 1000 * 10**9
+    for k in range(50):
+        rec.feed(old + k * 10**7, NAMES, np.zeros(7), receive_ns=old + k * 10**7)
+    for k in range(1, 500):                      # 5 s of the new clock
+        rec.feed(k * 10**7, NAMES, np.zeros(7), receive_ns=k * 10**7)
+    assert rec.counters['samples'] > 0, dict(rec.counters)
