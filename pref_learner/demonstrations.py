@@ -234,8 +234,9 @@ class _Track:
 
 
 #: the counters of samples the recorder refuses (a rejection names those of its segment)
-REFUSED_SAMPLES = ('mismatched_lengths', 'missing_joint', 'zero_stamp', 'stamp_out_of_range',
-                   'invalid', 'duplicate', 'out_of_order', 'stamp_ahead', 'unconfirmed')
+REFUSED_SAMPLES = ('mismatched_lengths', 'missing_joint', 'repeated_joint_name', 'zero_stamp',
+                   'stamp_out_of_range', 'invalid', 'duplicate', 'out_of_order', 'stamp_ahead',
+                   'unconfirmed')
 
 
 class Recorder:
@@ -276,15 +277,18 @@ class Recorder:
     def buffered(self) -> int:
         return len(self._ring) + (len(self._seg) if self._seg is not None else 0)
 
-    def _map(self, names: Sequence[str]) -> Optional[np.ndarray]:
+    def _map(self, names: Sequence[str]) -> Union[np.ndarray, str]:
+        """Return the chain's columns in a message's names, or why there are none."""
         key = tuple(names)
         idx = self._index_cache.get(key, False)
         if idx is False:
             pos = {n: i for i, n in enumerate(key)}
-            if all(j in pos for j in self.joint_names):
+            if len(pos) < len(key):           # which of the two values is meant is unknown
+                idx = 'repeated_joint_name'
+            elif all(j in pos for j in self.joint_names):
                 idx = np.array([pos[j] for j in self.joint_names])
             else:
-                idx = None
+                idx = 'missing_joint'
             if len(self._index_cache) > 64:
                 self._index_cache.clear()
             self._index_cache[key] = idx
@@ -306,8 +310,8 @@ class Recorder:
             self.counters['mismatched_lengths'] += 1
             return []
         idx = self._map(names)
-        if idx is None:
-            self.counters['missing_joint'] += 1
+        if isinstance(idx, str):
+            self.counters[idx] += 1
             return []
         stamp = int(stamp_ns)
         if stamp <= 0:

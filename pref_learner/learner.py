@@ -802,7 +802,9 @@ class Learner:
         where = self.store.archive() if self.store is not None else None
         self._record_stored = False
         self._demos = []
+        self._diagnostics = []
         self.rejections = []
+        self.quarantined = []
         self.recorder.cancel()
         self._reset_posteriors()
         return where

@@ -302,3 +302,15 @@ def test_a_rejection_names_the_samples_refused_during_its_segment():
     for k in range(30):
         rec.feed(10**9 + k * 10**7, NAMES, np.full(7, 0.01 * k))
     assert 'refused' not in rec.stop()[0].detail
+
+
+def test_a_message_naming_a_joint_twice_is_refused_by_name():
+    # which of the two positions is meant cannot be known: the sample is refused and counted
+    rec = Recorder(NAMES, SegmentConfig(mode='manual'))
+    rec.start()
+    names = list(NAMES) + [NAMES[0]]
+    for k in range(10):
+        rec.feed(10**9 + k * 10**7, names, np.zeros(8))
+    assert rec.counters['repeated_joint_name'] == 10 and rec.counters['samples'] == 0
+    assert rec.stop()[0].detail == ('no samples; 10 samples refused meanwhile '
+                                    '(repeated_joint_name 10)')

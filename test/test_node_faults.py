@@ -36,6 +36,14 @@ def _teacher():
                             TeacherConfig(seed=11))
 
 
+def _srv(node, kind):
+    """Ask the node's worker for service ``kind`` as the service thread does; its answer."""
+    done, box = threading.Event(), {}
+    node._worker.put_control(('srv', node._now(), kind, done, box))
+    assert done.wait(10)
+    return box
+
+
 def _call(ex, client, timeout=30):
     fut = client.call_async(Trigger.Request())
     assert spin_until(ex, fut.done, timeout)
@@ -304,15 +312,11 @@ def test_a_held_teaching_signal_is_due_when_the_stream_has_been_quiet(monkeypatc
 def test_run_time_settings_changed_one_by_one_all_apply():
     # rclpy calls the parameter callbacks once per set_parameters; each change is checked
     # and built on the ones accepted before it, also while a recording holds them back
-    import threading as th
     with ros_context() as (ctx, ex):
         node = _node(ctx, segmentation='manual', **SMALL)
 
         def srv(kind):
-            done, box = th.Event(), {}
-            node._worker.put_control(('srv', node._now(), kind, done, box))
-            assert done.wait(10)
-            return box
+            return _srv(node, kind)
         assert srv('start')['ok']
         for name, value in (('speed_start', 0.5), ('speed_stop', 0.3), ('dwell', 1.0),
                             ('min_duration', 1.0)):
@@ -326,4 +330,25 @@ def test_run_time_settings_changed_one_by_one_all_apply():
         while time.time() < end and any(getattr(node.config, k) != v for k, v in want.items()):
             time.sleep(0.05)
         assert {k: getattr(node.config, k) for k in want} == want
+        node.destroy_node()
+
+
+def test_reset_and_discard_say_what_they_did():
+    # a reset during a recording says the recording was dropped; a failure to propose the
+    # next task afterwards is warned, and the change is still reported as done
+    with ros_context() as (ctx, ex):
+        node = _node(ctx, segmentation='manual', **SMALL)
+        assert _srv(node, 'start')['ok']
+        box = _srv(node, 'reset')
+        assert box['ok'] and box['message'] == \
+            'reset; the demonstration being recorded was dropped', box
+        assert not node.learner.recorder.recording
+
+        def broken():
+            raise RuntimeError('no candidates')
+        node._propose = broken
+        box = _srv(node, 'reset')
+        assert box['ok'] and box['message'] == 'reset', box
+        assert node.last_warning == ('internal_error: next task not proposed: RuntimeError: '
+                                     'no candidates')
         node.destroy_node()

@@ -172,6 +172,7 @@ def test_reset_with_writes_pending_is_refused_and_loses_nothing(tmp_path, monkey
     disk.full = False
     where = L.reset()
     assert 'demos/demo_000001.npz' in _files(where) and L.n_demonstrations == 0
+    assert L.history_diagnostics() == [] and L.quarantined == []
 
 
 def test_failed_append_is_cut_back(tmp_path, monkeypatch):

@@ -76,7 +76,7 @@ TEACH_QUIET_S = 0.02
 STATUS_MIN_S = 0.1
 _SERVICES = (('start_demonstration', 'start'), ('stop_demonstration', 'stop'),
              ('reset', 'reset'), ('save', 'save'), ('discard_last', 'discard'))
-_SAMPLE_COUNTERS = ('missing_joint', 'duplicate', 'out_of_order', 'invalid',
+_SAMPLE_COUNTERS = ('missing_joint', 'repeated_joint_name', 'duplicate', 'out_of_order', 'invalid',
                     'mismatched_lengths', 'zero_stamp', 'stamp_ahead', 'stamp_out_of_range',
                     'unconfirmed', 'recovered', 'timeline_changes')
 
@@ -645,14 +645,17 @@ class LearnerNode(Node):
                 return True, f'stopped; demonstration {r.index + 1} learned'
             return True, f'stopped; rejected: {r.reason}: {r.detail}' if r else 'stopped'
         if what == 'reset':
+            dropped = L.recorder.recording
             try:
                 where = L.reset()
             except ValueError as exc:        # writes still pending: refused, nothing lost
                 return False, str(exc)
             self._event('reset', recv)
             self._publish_estimates()
-            self._propose()
-            return True, f'reset; previous state archived in {where}' if where else 'reset'
+            self._after_change()
+            text = f'reset; previous state archived in {where}' if where else 'reset'
+            return True, text + ('; the demonstration being recorded was dropped'
+                                 if dropped else '')
         if what == 'save':
             if L.store is None:
                 return False, 'no state_dir configured'
@@ -665,7 +668,7 @@ class LearnerNode(Node):
                 return False, 'no demonstration to discard'
             self._event('discard_last', recv)
             self._publish_estimates()
-            self._propose()
+            self._after_change()
             return True, f'discarded; {L.n_demonstrations} demonstrations remain'
         return False, f'unknown request {what}'
 
@@ -780,6 +783,16 @@ class LearnerNode(Node):
 
     def _candidates(self):
         return self._scenario_tasks + [(n, s, g) for n, (s, g) in self._user_tasks.items()]
+
+    def _after_change(self):
+        """Propose the next task after a reset or discard; a failure is warned, not returned.
+
+        The change itself was made: the service reports it as done.
+        """
+        try:
+            self._propose()
+        except Exception as exc:  # noqa: BLE001 -- the change stands; the reason is warned
+            self._warn('internal_error', f'next task not proposed: {type(exc).__name__}: {exc}')
 
     def _propose(self):
         """Score the candidate tasks and publish the most informative one (worker thread)."""
