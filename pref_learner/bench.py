@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import math
 import os
-import random
 import subprocess
 import sys
 import time
@@ -677,22 +676,11 @@ def plan_benchmark(quick: bool = False, out_dir=None) -> dict:
     return out
 
 
-def bench_environment(env) -> None:
-    """Confine ``env`` (a mutable mapping) to this machine and a fresh random domain.
-
-    The benchmarks publish simulated demonstrations on the learner's own topic
-    names, so they never share the user's domain (a learner of a real robot on
-    this host would take them) and never leave loopback, whatever was set.
-    """
-    from .safety import keep_local
-    keep_local(env)
-    env['ROS_DOMAIN_ID'] = str(random.SystemRandom().randint(1, 101))
-
-
 def run_benchmarks(quick: bool = False, parts: List[str] = None,
                    out_dir=None) -> Dict[str, float]:
     """Run the benchmark groups in ``parts``; figures (PNG) go to ``out_dir`` when given."""
-    bench_environment(os.environ)
+    from .safety import private_session
+    private_session(os.environ)        # simulated demonstrations: never beyond this run
     parts = parts or ['core', 'speed', 'planner', 'node', 'demo', 'validate', 'calibration',
                       'guidance', 'study']
     res: Dict[str, float] = {'quick': bool(quick), 'cpu_count': os.cpu_count()}

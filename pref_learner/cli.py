@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .safety import CAUTION, SIMULATED_JOINT_STATES, keep_local, network_exposure
+from .safety import CAUTION, SIMULATED_JOINT_STATES, network_exposure, private_session
 
 
 class CliError(Exception):
@@ -38,14 +38,12 @@ def _ros_env(allow_network: bool) -> dict:
     simulated session meets no other node on this machine either, unless
     ``allow_network`` (then the user's settings stay, loopback if none).
     """
-    domain = str(random.SystemRandom().randint(1, 101))
     if allow_network:
         os.environ.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
-        os.environ.setdefault('ROS_DOMAIN_ID', domain)
+        os.environ.setdefault('ROS_DOMAIN_ID', str(random.SystemRandom().randint(1, 101)))
         return dict(os.environ)
     was = network_exposure()
-    keep_local(os.environ)
-    os.environ['ROS_DOMAIN_ID'] = domain
+    private_session(os.environ)
     if was:
         print(f'pref-learner demo: discovery forced to this machine (was: {was}); '
               '--allow-network keeps yours', file=sys.stderr)

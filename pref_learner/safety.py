@@ -84,6 +84,19 @@ def keep_local(env) -> None:
         env.pop(v, None)
 
 
+def private_session(env) -> str:
+    """Confine ``env`` (a mutable mapping) to loopback and a fresh random domain; return it.
+
+    For the simulated sessions (the demo, the benchmarks): they publish on the
+    learner's own topic names, so they share neither the network nor the
+    user's domain (a learner of a real robot on this host would take them).
+    """
+    import random
+    keep_local(env)
+    env['ROS_DOMAIN_ID'] = str(random.SystemRandom().randint(1, 101))
+    return env['ROS_DOMAIN_ID']
+
+
 def refuse_network_reason(allow_network: bool,
                           env: Optional[Mapping[str, str]] = None) -> str:
     """Return a one-line refusal for a simulated source on a network, or '' when it may run."""

@@ -165,11 +165,10 @@ def _hostile_module(tmp_path):
 def test_benchmarks_never_share_the_users_domain_or_network():
     # the bench's simulated demonstrations use the learner's topic names: a workstation's
     # own domain (0 here) and subnet discovery are replaced, whatever was set
-    from pref_learner.bench import bench_environment
-    from pref_learner.safety import network_exposure
+    from pref_learner.safety import network_exposure, private_session
     env = {'ROS_DOMAIN_ID': '0', 'ROS_AUTOMATIC_DISCOVERY_RANGE': 'SUBNET',
            'ROS_STATIC_PEERS': '10.0.0.9'}
-    bench_environment(env)
+    private_session(env)
     assert 1 <= int(env['ROS_DOMAIN_ID']) <= 101 and network_exposure(env) == ''
     assert env['ROS_AUTOMATIC_DISCOVERY_RANGE'] == 'LOCALHOST' and 'ROS_STATIC_PEERS' not in env
 

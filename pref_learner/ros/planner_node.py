@@ -134,7 +134,7 @@ class PlannerNode(Node):
 
     def _on_weights(self, msg):
         w = np.array(msg.data, dtype=np.float64)
-        if w.ndim != 1 or w.size == 0 or not np.all(np.isfinite(w)):
+        if w.size == 0 or not np.all(np.isfinite(w)):
             self._warn('bad_weights', f'weights refused: {w.size} values, finite: '
                        f'{bool(np.all(np.isfinite(w)))}; the previous ones are kept')
             return
